@@ -1,0 +1,125 @@
+"""Trace-time shape/dtype checks and canonicalisation of user inputs.
+
+Everything here looks only at static shapes and dtypes, so it runs under
+``jit``/``vmap``/``grad`` and fails at trace time with a message that names the
+argument and the shape it should have.
+"""
+
+from __future__ import annotations
+
+from typing import NamedTuple, Optional
+
+import jax.numpy as jnp
+import numpy as np
+
+from .model import StateSpace
+
+
+class Dims(NamedTuple):
+    T: int  # time steps
+    n: int  # state size
+    p: int  # measurement size
+
+
+def _shape_str(shape) -> str:
+    return "(" + ", ".join(str(s) for s in shape) + ("," if len(shape) == 1 else "") + ")"
+
+
+def _require_float(name: str, x) -> None:
+    dt = jnp.asarray(x).dtype if not hasattr(x, "dtype") else x.dtype
+    if not jnp.issubdtype(dt, jnp.floating):
+        raise TypeError(
+            f"{name} must be a real floating-point array (float32 or float64); got dtype {dt}. "
+            f"Convert it with .astype(float) first."
+        )
+
+
+def _check_field(name: str, x, invariant: tuple, varying: Optional[tuple]) -> None:
+    shape = tuple(np.shape(x))
+    if shape == invariant or (varying is not None and shape == varying):
+        return
+    expected = _shape_str(invariant)
+    if varying is not None:
+        expected += f" (time-invariant) or {_shape_str(varying)} (time-varying)"
+    raise ValueError(f"model.{name} must have shape {expected}; got {_shape_str(shape)}.")
+
+
+def dims_of(model: StateSpace, y) -> Dims:
+    """Read T, n, p from the shapes of ``y`` and ``model.A``, checking both."""
+    y_shape = tuple(np.shape(y))
+    if len(y_shape) != 2:
+        raise ValueError(
+            f"y must have shape (T, p) (one row per time step); got {_shape_str(y_shape)}. "
+            "For a batch of trajectories, use jax.vmap over the leading axis."
+        )
+    T, p = y_shape
+    if T < 1:
+        raise ValueError("y must have at least one time step (T >= 1); got an empty series.")
+    a_shape = tuple(np.shape(model.A))
+    if len(a_shape) not in (2, 3) or a_shape[-1] != a_shape[-2]:
+        raise ValueError(
+            f"model.A must have shape (n, n) or (T-1, n, n) = (_, {T - 1}, n, n) with square "
+            f"blocks; got {_shape_str(a_shape)}."
+        )
+    return Dims(T=T, n=a_shape[-1], p=p)
+
+
+def check_model(model: StateSpace, dims: Dims) -> None:
+    """Raise ValueError/TypeError naming the first badly shaped or typed field."""
+    if not isinstance(model, StateSpace):
+        raise TypeError(f"model must be a kalmax.StateSpace; got {type(model).__name__}.")
+    T, n, p = dims
+    spec = {
+        "A": ((n, n), (T - 1, n, n)),
+        "Q": ((n, n), (T - 1, n, n)),
+        "b": ((n,), (T - 1, n)),
+        "C": ((p, n), (T, p, n)),
+        "R": ((p, p), (T, p, p)),
+        "d": ((p,), (T, p)),
+        "x0_mean": ((n,), None),
+        "x0_cov": ((n, n), None),
+    }
+    for name, (inv, var) in spec.items():
+        x = getattr(model, name)
+        if x is None:
+            if name in ("A", "C", "Q", "R"):
+                raise ValueError(f"model.{name} is required; got None.")
+            continue
+        _require_float(f"model.{name}", x)
+        _check_field(name, x, inv, var)
+    if model.x0_mean is not None and model.x0_cov is None:
+        raise ValueError(
+            "model.x0_mean is given without model.x0_cov: a prior needs a covariance "
+            "(leave both None for a flat prior on the first state)."
+        )
+
+
+def canonicalize(model: StateSpace, y, mask):
+    """Check shapes/dtypes; return (model, y, mask, dims, dtype) with arrays cast to one dtype.
+
+    ``mask`` of None means "observed wherever y is not NaN".
+    """
+    dims = dims_of(model, y)
+    _require_float("y", y)
+    check_model(model, dims)
+    y = jnp.asarray(y)
+    if mask is None:
+        mask = ~jnp.isnan(y)
+    else:
+        mask = jnp.asarray(mask)
+        if mask.dtype != jnp.bool_:
+            raise TypeError(
+                f"mask must be a boolean array (True = observed); got dtype {mask.dtype}. "
+                "Use mask.astype(bool) if it holds 0/1."
+            )
+        if mask.shape != y.shape:
+            raise ValueError(
+                f"mask must have the same shape as y, {_shape_str(y.shape)}; got {_shape_str(mask.shape)}."
+            )
+    leaves = [getattr(model, f) for f in ("A", "C", "Q", "R", "b", "d", "x0_mean", "x0_cov")]
+    dtype = jnp.result_type(*[x for x in leaves if x is not None], y)
+    cast = {
+        f: (None if getattr(model, f) is None else jnp.asarray(getattr(model, f), dtype))
+        for f in ("A", "C", "Q", "R", "b", "d", "x0_mean", "x0_cov")
+    }
+    return StateSpace(**cast), y.astype(dtype), mask, dims, dtype
