@@ -140,3 +140,37 @@ def matvec_blocks(diag, sub, x):
         y = y.at[1:].add(matvec(sub, x[:-1]))
         y = y.at[:-1].add(matvec(mT(sub), x[1:]))
     return y
+
+
+def selected_inverse(factor: BlockFactor):
+    r"""The block-tridiagonal part of Σ = H⁻¹ from the Cholesky factor: O(T n³).
+
+    From Σ L = L⁻ᵀ (block upper triangular with diagonal blocks L_t⁻ᵀ), reading
+    block rows t+1 and t of block column t, backwards from the last step:
+
+        Σ_{T-1,T-1} = L_{T-1}⁻ᵀ L_{T-1}⁻¹
+        Σ_{t+1,t}   = −Σ_{t+1,t+1} M_{t+1} L_t⁻¹
+        Σ_tt        = L_t⁻ᵀ L_t⁻¹ − Σ_{t+1,t}ᵀ M_{t+1} L_t⁻¹
+
+    Returns:
+        (diag (T, n, n), sub (T-1, n, n)) with diag[t] = Σ_tt and
+        sub[t] = Σ_{t+1,t}. NaN when the factorisation failed.
+    """
+    L, M = factor.L, factor.M
+    n = L.shape[-1]
+    eye = jnp.eye(n, dtype=L.dtype)
+    Linv = lsolve(L, jnp.broadcast_to(eye, L.shape))  # L_t⁻¹, (T, n, n)
+    last = mT(Linv[-1]) @ Linv[-1]
+
+    def step(S_next, xs):
+        Linv_t, M_next = xs
+        ML = M_next @ Linv_t  # M_{t+1} L_t⁻¹
+        S_sub = -S_next @ ML
+        S_t = mT(Linv_t) @ Linv_t - mT(S_sub) @ ML
+        S_t = 0.5 * (S_t + mT(S_t))  # keep exact symmetry against rounding
+        return S_t, (S_t, S_sub)
+
+    _, (diags, subs) = lax.scan(step, last, (Linv[:-1], M), reverse=True)
+    diag = jnp.concatenate([diags, last[None]], axis=0)
+    nan_if_bad = jnp.where(factor.ok, 1.0, jnp.nan).astype(L.dtype)
+    return diag * nan_if_bad, subs * nan_if_bad

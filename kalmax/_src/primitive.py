@@ -27,7 +27,7 @@ parallel-in-time variants can sit behind the same VJP. Each backend provides
 from __future__ import annotations
 
 from functools import partial
-from typing import Callable, Dict, NamedTuple
+from typing import Callable, Dict, NamedTuple, Optional
 
 import jax
 import jax.numpy as jnp
@@ -41,6 +41,9 @@ class Backend(NamedTuple):
     forward: Callable  # (model, y, w) -> (x (T, n), factor)
     adjoint: Callable  # (factor, v (T, n)) -> H⁻¹ v
     logdet: Callable  # (factor) -> log|H|
+    # (factor) -> (Σ_tt (T, n, n), Σ_{t+1,t} (T-1, n, n)), the band of H⁻¹.
+    # None: the factor is a blocktri.BlockFactor and blocktri.selected_inverse applies.
+    band_inverse: Optional[Callable] = None
 
 
 def _scan_forward(model, y, w):
@@ -69,6 +72,13 @@ def resolve_method(method: str) -> str:
 
 def get_backend(method: str) -> Backend:
     return _BACKENDS[resolve_method(method)]
+
+
+def band_inverse(backend: Backend, factor):
+    """The block-tridiagonal band of H⁻¹ from a backend's factor."""
+    if backend.band_inverse is not None:
+        return backend.band_inverse(factor)
+    return blocktri.selected_inverse(factor)
 
 
 def solve_with_factor(model: StateSpace, y, w, method: str):

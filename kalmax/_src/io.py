@@ -1,0 +1,345 @@
+"""Files: measurement tables (CSV, optional Parquet) and the versioned model file.
+
+Every writer goes through :class:`AtomicOutputs`: each output is written to a
+temporary file in its destination folder and renamed into place only after
+*all* outputs of a command were written, so a failure never leaves a partial
+or half-updated set of files behind (a rename within one folder is atomic on
+POSIX and Windows file systems).
+
+The model file is JSON (human-readable, no code execution on load, unlike
+pickle) with a format name and a format version; readers refuse other
+versions rather than guess, and cap the file size and the model sizes so that
+a hostile or corrupt file cannot exhaust memory.
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime as _dt
+import json
+import math
+import os
+import tempfile
+from pathlib import Path
+from typing import Dict, List, Sequence, Tuple
+
+from .spec import KINDS, ModelSpec
+
+FORMAT_NAME = "kalmax-model"
+FORMAT_VERSION = 1
+MAX_MODEL_FILE_BYTES = 1 << 20  # 1 MiB: a model file holds a few hundred numbers
+MAX_DIMS = 16
+MAX_COLUMNS = 256
+MAX_NAME_CHARS = 200
+
+
+class DataError(Exception):
+    """A measurement table cannot be read or does not fit the request."""
+
+
+class ModelFileError(Exception):
+    """A model file cannot be read, is from another format version, or is invalid."""
+
+
+# ----------------------------------------------------------------------------
+# Atomic outputs
+# ----------------------------------------------------------------------------
+
+
+class AtomicOutputs:
+    """Collect outputs in temporary files; rename them all into place on success.
+
+    Usage::
+
+        with AtomicOutputs() as out:
+            write_something(out.temp_for("result.csv"))
+            write_other(out.temp_for("report.png"))
+        # both exist now, or (after an exception) neither was touched
+    """
+
+    def __init__(self):
+        self._pending: List[Tuple[Path, Path]] = []
+
+    def temp_for(self, final) -> Path:
+        final = Path(final)
+        folder = final.parent if str(final.parent) else Path(".")
+        if not folder.is_dir():
+            raise DataError(f"cannot write {final}: folder {folder} does not exist.")
+        fd, tmp = tempfile.mkstemp(prefix=f".{final.name}.", suffix=".part", dir=folder)
+        os.close(fd)
+        self._pending.append((Path(tmp), final))
+        return Path(tmp)
+
+    def __enter__(self) -> "AtomicOutputs":
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> bool:
+        if exc_type is None:
+            for tmp, final in self._pending:
+                os.replace(tmp, final)
+        else:
+            for tmp, _ in self._pending:
+                try:
+                    tmp.unlink()
+                except FileNotFoundError:
+                    pass
+        return False
+
+
+# ----------------------------------------------------------------------------
+# Tables
+# ----------------------------------------------------------------------------
+
+
+def _format_of(path: Path) -> str:
+    suffix = path.suffix.lower()
+    if suffix in (".parquet", ".pq"):
+        return "parquet"
+    return "csv"
+
+
+def _need_pyarrow(path):
+    try:
+        import pyarrow  # noqa: F401
+        import pyarrow.parquet  # noqa: F401
+    except ImportError:
+        raise DataError(
+            f"{path}: Parquet files need the optional package pyarrow, which is not installed. "
+            "Install it with `pip install pyarrow` (or `pip install kalmax[parquet]`), or use a CSV file."
+        ) from None
+    import pyarrow.parquet as pq
+
+    return pq
+
+
+def read_table(path) -> Tuple[List[str], Dict[str, list]]:
+    """Read a CSV or Parquet table: (column names, {name: list of cell values}).
+
+    CSV cells are strings ('' for blank); Parquet cells are Python values
+    (None for null). The format follows the file extension (.parquet/.pq =
+    Parquet, anything else = CSV with a header row).
+    """
+    path = Path(path)
+    if not path.exists():
+        raise DataError(f"cannot read {path}: no such file.")
+    if path.is_dir():
+        raise DataError(f"cannot read {path}: it is a folder, not a file.")
+    if _format_of(path) == "parquet":
+        pq = _need_pyarrow(path)
+        try:
+            table = pq.read_table(path)
+        except Exception as e:  # pyarrow raises several unrelated types for bad files
+            raise DataError(f"cannot read {path} as Parquet: {e}") from None
+        data = table.to_pydict()
+        return list(table.column_names), data
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as f:
+            rows = list(csv.reader(f))
+    except UnicodeDecodeError as e:
+        raise DataError(f"cannot read {path} as CSV: it is not UTF-8 text ({e.reason} at byte {e.start}).") from None
+    except (OSError, csv.Error) as e:
+        raise DataError(f"cannot read {path} as CSV: {e}") from None
+    if not rows or not any(cell.strip() for cell in rows[0]):
+        raise DataError(f"{path} is empty: a CSV file needs a header row naming its columns.")
+    header = [h.strip() for h in rows[0]]
+    dupes = sorted({h for h in header if header.count(h) > 1})
+    if dupes:
+        raise DataError(f"{path}: the header names these columns more than once: {', '.join(dupes)}.")
+    cols: Dict[str, list] = {h: [] for h in header}
+    for lineno, row in enumerate(rows[1:], start=2):
+        if not row or (len(row) == 1 and not row[0].strip()):
+            continue  # blank line
+        if len(row) != len(header):
+            raise DataError(f"{path}, line {lineno}: {len(row)} cells, but the header has {len(header)} columns.")
+        for h, cell in zip(header, row):
+            cols[h].append(cell.strip())
+    return header, cols
+
+
+def _csv_cell(v) -> str:
+    if v is None:
+        return ""
+    if isinstance(v, float):
+        return "" if math.isnan(v) else repr(v)
+    return str(v)
+
+
+def write_table(path, names: Sequence[str], columns: Dict[str, Sequence], out: AtomicOutputs) -> None:
+    """Write a table to ``path`` (CSV or, by extension, Parquet) through ``out``.
+
+    Float NaN is written as a blank CSV cell / a Parquet null.
+    """
+    path = Path(path)
+    if _format_of(path) == "parquet":
+        pq = _need_pyarrow(path)
+        import pyarrow as pa
+
+        def clean(v):
+            return None if isinstance(v, float) and math.isnan(v) else v
+
+        arrays = {k: [clean(v) for v in columns[k]] for k in names}
+        tmp = out.temp_for(path)
+        pq.write_table(pa.table(arrays), tmp)
+        return
+    tmp = out.temp_for(path)
+    with open(tmp, "w", newline="", encoding="utf-8") as f:
+        w = csv.writer(f)
+        w.writerow(names)
+        n = len(columns[names[0]]) if names else 0
+        for i in range(n):
+            w.writerow([_csv_cell(columns[k][i]) for k in names])
+
+
+# ----------------------------------------------------------------------------
+# Model file
+# ----------------------------------------------------------------------------
+
+
+def spec_to_dict(spec: ModelSpec) -> dict:
+    """The JSON document of a :class:`ModelSpec` (see :func:`save_model`)."""
+    from .. import __version__
+
+    params = {k: (list(v) if isinstance(v, (list, tuple)) else v) for k, v in spec.params.items()}
+    return {
+        "format": FORMAT_NAME,
+        "format_version": FORMAT_VERSION,
+        "written_by": f"kalmax {__version__}",
+        "written_at": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "model": {
+            "kind": spec.kind,
+            "dims": spec.dims,
+            "states": list(spec.state_names()),
+            "time_column": spec.time_column,
+            "time_format": spec.time_format,
+            "jitter": spec.jitter,
+            "parameters": params,
+            "measurements": [
+                {"column": c, "state": s, "noise_variance": float(r)}
+                for c, s, r in zip(spec.columns, spec.measured, spec.noise)
+            ],
+        },
+        "fit": dict(spec.fit) if spec.fit is not None else None,
+        "notes": (
+            "Continuous-time model: parameters are in the units of the measurement columns and of "
+            "the time column (seconds when time_format is iso8601). Variances, not standard deviations."
+        ),
+    }
+
+
+def _reject_constant(name):
+    raise ValueError(f"non-standard JSON number {name}")
+
+
+def _require(cond, msg, path):
+    if not cond:
+        raise ModelFileError(f"{path}: {msg}")
+
+
+def spec_from_dict(doc, path="<model>") -> ModelSpec:
+    """Check a parsed model document and build the :class:`ModelSpec` (see :func:`load_model`)."""
+    _require(isinstance(doc, dict), "not a kalmax model file (the top level is not a JSON object).", path)
+    _require(doc.get("format") == FORMAT_NAME,
+             f"not a kalmax model file (format is {doc.get('format')!r}, expected {FORMAT_NAME!r}).", path)
+    version = doc.get("format_version")
+    if version != FORMAT_VERSION:
+        raise ModelFileError(
+            f"{path}: model file format version {version!r} (written by {doc.get('written_by', 'unknown')}); "
+            f"this kalmax reads format version {FORMAT_VERSION} only. Refit the model with this version, "
+            "or use the kalmax version that wrote the file."
+        )
+    m = doc.get("model")
+    _require(isinstance(m, dict), "the 'model' entry is missing or not an object.", path)
+    kind = m.get("kind")
+    _require(kind in KINDS, f"unknown model kind {kind!r}; known kinds: {', '.join(KINDS)}.", path)
+    dims = m.get("dims")
+    _require(isinstance(dims, int) and not isinstance(dims, bool) and 1 <= dims <= MAX_DIMS,
+             f"dims must be an integer from 1 to {MAX_DIMS}; got {dims!r}.", path)
+    meas = m.get("measurements")
+    _require(isinstance(meas, list) and 1 <= len(meas) <= MAX_COLUMNS,
+             f"'measurements' must be a list of 1 to {MAX_COLUMNS} entries.", path)
+    for i, e in enumerate(meas):
+        _require(isinstance(e, dict) and isinstance(e.get("column"), str) and isinstance(e.get("state"), str)
+                 and isinstance(e.get("noise_variance"), (int, float)) and not isinstance(e.get("noise_variance"), bool),
+                 f"measurement {i} must have a text 'column', a text 'state' and a numeric 'noise_variance'.", path)
+        _require(len(e["column"]) <= MAX_NAME_CHARS, f"measurement {i}: column name too long.", path)
+    tcol = m.get("time_column")
+    _require(isinstance(tcol, str) and 0 < len(tcol) <= MAX_NAME_CHARS, "'time_column' must be a non-empty text.", path)
+    params = m.get("parameters")
+    _require(isinstance(params, dict), "'parameters' must be an object.", path)
+    for k, v in params.items():
+        ok = isinstance(v, (int, float)) and not isinstance(v, bool)
+        ok = ok or (isinstance(v, list) and len(v) <= MAX_DIMS
+                    and all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in v))
+        _require(ok, f"parameter {k!r} must be a number or a list of at most {MAX_DIMS} numbers.", path)
+    fit = doc.get("fit")
+    _require(fit is None or isinstance(fit, dict), "'fit' must be an object or null.", path)
+    jitter = m.get("jitter", 0.0)
+    _require(isinstance(jitter, (int, float)) and not isinstance(jitter, bool), "'jitter' must be a number.", path)
+    try:
+        return ModelSpec(
+            kind=kind, dims=dims, time_column=tcol,
+            columns=tuple(e["column"] for e in meas),
+            measured=tuple(e["state"] for e in meas),
+            params=params,
+            noise=tuple(float(e["noise_variance"]) for e in meas),
+            time_format=m.get("time_format", "number"),
+            jitter=float(jitter),
+            fit=fit,
+        )
+    except ValueError as e:
+        raise ModelFileError(f"{path}: invalid model: {e}") from None
+
+
+def save_model(path, spec: ModelSpec, out: AtomicOutputs = None) -> None:
+    """Write ``spec`` as a versioned, human-readable JSON model file.
+
+    The file names its format (``"kalmax-model"``) and format version, the
+    model kind, the state names, each measurement column with the state it
+    measures and its noise variance, the process parameters, and a record of
+    the fit. Written atomically (temporary file, then rename). Pass ``out``
+    to commit it together with other outputs.
+
+    Example:
+        >>> kx.save_model("drifter.json", spec)  # doctest: +SKIP
+        >>> kx.load_model("drifter.json") == spec  # doctest: +SKIP
+        True
+    """
+    text = json.dumps(spec_to_dict(spec), indent=2, allow_nan=False) + "\n"
+    if len(text.encode()) > MAX_MODEL_FILE_BYTES:
+        raise ModelFileError(f"{path}: the model file would exceed {MAX_MODEL_FILE_BYTES} bytes.")
+    if out is None:
+        with AtomicOutputs() as own:
+            own.temp_for(path).write_text(text, encoding="utf-8")
+        return
+    out.temp_for(path).write_text(text, encoding="utf-8")
+
+
+def load_model(path) -> ModelSpec:
+    """Read a model file written by :func:`save_model` (or ``kalmax fit``).
+
+    Raises :class:`ModelFileError` for a missing or unreadable file, a file
+    over 1 MiB, invalid JSON, a different format or format version, or
+    inconsistent contents (each message names the problem).
+
+    Returns:
+        the :class:`ModelSpec`; ``spec.state_space(times)`` gives the
+        discrete :class:`StateSpace` for new timestamps.
+    """
+    path = Path(path)
+    try:
+        size = path.stat().st_size
+        if size > MAX_MODEL_FILE_BYTES:
+            raise ModelFileError(f"{path}: {size} bytes is too large for a model file "
+                                 f"(limit {MAX_MODEL_FILE_BYTES}).")
+        raw = path.read_bytes()
+    except FileNotFoundError:
+        raise ModelFileError(f"cannot read model file {path}: no such file.") from None
+    except IsADirectoryError:
+        raise ModelFileError(f"cannot read model file {path}: it is a folder.") from None
+    except OSError as e:
+        raise ModelFileError(f"cannot read model file {path}: {e.strerror}.") from None
+    try:
+        doc = json.loads(raw.decode("utf-8"), parse_constant=_reject_constant)
+    except (UnicodeDecodeError, ValueError, RecursionError) as e:
+        raise ModelFileError(f"{path}: not a kalmax model file (invalid JSON: {e}).") from None
+    return spec_from_dict(doc, path)

@@ -1,0 +1,24 @@
+"""Small test helpers: convert reference model dicts to kalmax models."""
+
+import numpy as np
+
+import kalmax as kx
+
+
+def to_model(md, dtype=np.float64, prior=True):
+    """A kalmax.StateSpace from a tests/reference.py model dict."""
+    cast = lambda a: None if a is None else np.asarray(a, dtype)  # noqa: E731
+    has_prior = prior and md.get("P0") is not None
+    return kx.StateSpace(
+        A=cast(md["A"]), C=cast(md["C"]), Q=cast(md["Q"]), R=cast(md["R"]),
+        b=cast(md.get("b")), d=cast(md.get("d")),
+        x0_mean=cast(md.get("m0")) if has_prior else None,
+        x0_cov=cast(md.get("P0")) if has_prior else None,
+    )
+
+
+def to_dict(model):
+    """The reference model dict of a kalmax.StateSpace."""
+    g = lambda a: None if a is None else np.asarray(a, np.float64)  # noqa: E731
+    return dict(A=g(model.A), C=g(model.C), Q=g(model.Q), R=g(model.R), b=g(model.b),
+                d=g(model.d), m0=g(model.x0_mean), P0=g(model.x0_cov))
