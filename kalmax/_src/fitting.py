@@ -245,10 +245,10 @@ def fit(
 
 def _hessian(f_flat, x, method: str, eps: Optional[float]):
     if method == "autodiff":
-        return jax.hessian(f_flat)(x)
+        return jax.jit(jax.hessian(f_flat))(x)
     if method == "finite-difference":
         # Central differences of the exact gradient, one column per parameter.
-        g = jax.grad(f_flat)
+        g = jax.jit(jax.grad(f_flat))
         h = eps if eps is not None else float(jnp.finfo(x.dtype).eps) ** (1 / 3)
         steps = h * jnp.maximum(1.0, jnp.abs(x))
         cols = [(g(x + s * e) - g(x - s * e)) / (2 * s) for s, e in zip(steps, jnp.eye(x.size, dtype=x.dtype))]
