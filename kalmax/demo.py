@@ -101,7 +101,7 @@ def main(argv=None) -> int:
     parser = argparse.ArgumentParser(
         prog="python -m kalmax.demo",
         description="Fit kalmax to an invented drifting-float scenario and write the outputs.")
-    parser.add_argument("--out", default="demo_output", help="output folder (created; default: %(default)s)")
+    parser.add_argument("--out", default="demo-out", help="output folder (created; default: %(default)s)")
     parser.add_argument("--steps", type=int, default=300, help="optimisation steps (default: %(default)s)")
     parser.add_argument("--quiet", action="store_true", help="no progress display")
     args = parser.parse_args(argv)

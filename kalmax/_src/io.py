@@ -65,7 +65,12 @@ class AtomicOutputs:
         folder = final.parent if str(final.parent) else Path(".")
         if not folder.is_dir():
             raise DataError(f"cannot write {final}: folder {folder} does not exist.")
-        fd, tmp = tempfile.mkstemp(prefix=f".{final.name}.", suffix=".part", dir=folder)
+        if final.is_dir():
+            raise DataError(f"cannot write {final}: it is a folder.")
+        try:
+            fd, tmp = tempfile.mkstemp(prefix=f".{final.name}.", suffix=".part", dir=folder)
+        except OSError as e:
+            raise DataError(f"cannot write {final}: {e.strerror}.") from None
         os.close(fd)
         self._pending.append((Path(tmp), final))
         return Path(tmp)

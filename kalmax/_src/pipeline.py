@@ -18,6 +18,7 @@ import numpy as np
 
 from . import splits
 from .io import DataError
+from .fitting import fit
 from .likelihood import log_likelihood
 from .smoothing import holdout_sums, smooth
 from .spec import KINDS, ModelSpec, param_shape
@@ -324,9 +325,10 @@ def calibrate_scale(spec: ModelSpec, series: Series, train_mask, *, folds: int =
 
 class FitOutcome(NamedTuple):
     spec: ModelSpec
-    history: List[float]  # loss per step
-    best_step: int
+    history: List[float]  # loss after k updates, k = 0..steps_run (entry 0: the start)
+    best_step: int  # index into history of the returned parameters
     steps_run: int
+    stop_reason: str = "steps"  # as kx.fit reports it
 
 
 def fit_spec(spec: ModelSpec, series: Series, train_mask, *, objective: str = "likelihood",
@@ -336,76 +338,31 @@ def fit_spec(spec: ModelSpec, series: Series, train_mask, *, objective: str = "l
     import optax
 
     theta0 = {k: jnp.asarray(v) for k, v in spec.to_unconstrained(fixed).items()}
-    if not theta0:
+    if not theta0:  # everything fixed: nothing to fit
         return FitOutcome(spec, [], 0, 0)
     loss = make_loss(spec, series, train_mask, objective, fixed=fixed, folds=folds, seed=seed)
-    first = float(jax.jit(loss)(theta0))
+    result = fit(loss, theta0, optax.adam(learning_rate), steps=steps, progress=progress)
+    first = float(result.history["loss"][0])
     if not math.isfinite(first):
-        raise FitError(f"the {objective} loss of the starting model is not finite; try other starting values "
-                       "(--set) or check the data.")
-    result = _fit_driver()(loss, theta0, optax.adam(learning_rate), steps=steps, progress=progress)
+        raise FitError(f"the {objective} loss of the starting model is not finite. Either some state cannot be "
+                       "determined from the measured columns (e.g. an axis that no column measures), or the "
+                       "starting values are extreme; check the --measure mapping, or set starting values "
+                       "with --set.")
     theta = {k: np.asarray(v) for k, v in result.params.items()}
     fitted = spec.with_unconstrained(theta)
     if objective == "holdout":
         fitted = calibrate_scale(fitted, series, train_mask, folds=folds, seed=seed)
-    history = [float(h) for h in np.asarray(_loss_history(result.history))]
-    return FitOutcome(fitted, history, int(result.best_step), int(result.steps_run))
-
-
-def _fit_driver():
-    """``kx.fit`` when the package provides it, else a minimal stand-in loop.
-
-    TEMPORARY: the stand-in exists only until ``kalmax.fit`` lands; remove it then.
-    """
-    import kalmax
-
-    if hasattr(kalmax, "fit"):
-        return kalmax.fit
-
-    import sys
-
-    import optax
-
-    class _Result(NamedTuple):
-        params: dict
-        history: list
-        best_step: int
-        steps_run: int
-
-    def driver(loss_fn, params, optimizer, *, steps, progress):
-        step_fn = jax.jit(jax.value_and_grad(loss_fn))
-        state = optimizer.init(params)
-        best, best_val, best_step, history = params, math.inf, 0, []
-        for i in range(steps):
-            val, g = step_fn(params)
-            val = float(val)
-            if not math.isfinite(val):
-                break
-            history.append(val)
-            if val < best_val:
-                best, best_val, best_step = params, val, i
-            updates, state = optimizer.update(g, state, params)
-            params = optax.apply_updates(params, updates)
-            if progress and (i % 25 == 0 or i == steps - 1):
-                print(f"step {i + 1}/{steps}  loss {val:.6g}", file=sys.stderr, flush=True)
-        return _Result(best, history, best_step, len(history))
-
-    return driver
-
-
-def _loss_history(history):
-    """The per-step training loss out of ``FitResult.history`` (an array or a dict of arrays)."""
-    if isinstance(history, dict):
-        for key in ("loss", "train", "train_loss"):
-            if key in history:
-                return history[key]
-        return next(iter(history.values()))
-    return history
+    history = [float(h) for h in np.asarray(result.history["loss"])]
+    return FitOutcome(fitted, history, int(result.best_step), int(result.steps_run), str(result.stop_reason))
 
 
 # ----------------------------------------------------------------------------
 # Applying
 # ----------------------------------------------------------------------------
+
+
+# One compiled function for every call (a new lambda per call would recompile each time).
+_smooth_with_covariances = jax.jit(lambda model, y, mask: smooth(model, y, mask, covariances=True))
 
 
 class Smoothing(NamedTuple):
@@ -425,7 +382,7 @@ def smooth_series(spec: ModelSpec, series: Series, mask=None) -> Smoothing:
     mask = series.mask if mask is None else mask
     model = spec.state_space(jnp.asarray(series.t))
     y = jnp.asarray(np.where(mask, series.y, 0.0))
-    out = jax.jit(lambda m, yy, mm: smooth(m, yy, mm, covariances=True))(model, y, jnp.asarray(mask))
+    out = _smooth_with_covariances(model, y, jnp.asarray(mask))
     mean = np.asarray(out.measurements)
     var = np.diagonal(np.asarray(out.measurement_cov), axis1=-2, axis2=-1) + np.diag(np.asarray(model.R))
     if not (np.all(np.isfinite(mean)) and np.all(np.isfinite(var))):

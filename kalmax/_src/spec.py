@@ -159,7 +159,7 @@ class ModelSpec:
 
     def state_space(self, times, theta: Optional[Mapping] = None, dtype=None) -> StateSpace:
         """The exact discrete :class:`StateSpace` at ``times`` (T,), increasing."""
-        return self.continuous_model(theta, dtype).at_times(jnp.asarray(times, dtype))
+        return self.continuous_model(theta, dtype).at_times(times if dtype is None else jnp.asarray(times, dtype))
 
     def with_unconstrained(self, theta: Mapping) -> "ModelSpec":
         """A copy with the parameters named in ``theta`` set to exp(theta)."""

@@ -1,0 +1,491 @@
+"""The ``kalmax`` command: fit a continuous-time smoother to a table of sensor readings.
+
+Run ``kalmax --help``, ``kalmax fit --help`` or ``kalmax apply --help``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import os
+import sys
+import textwrap
+import traceback
+from pathlib import Path
+from typing import List, Optional
+
+SAFETY_NOTE = (
+    "Safety: state estimates often feed decisions (navigation, monitoring, control). kalmax comes with no "
+    "guarantee of any kind for safety-critical use. Validate every model against your own data, check the "
+    "held-out errors and intervals it reports, and follow the codes and practices of your field."
+)
+
+# Exit codes (stable: scripts may rely on them).
+EXIT_OK = 0
+EXIT_INTERNAL = 1  # a bug: please report it (rerun with --debug for the traceback)
+EXIT_USAGE = 2  # bad command line (argparse's own convention)
+EXIT_DATA = 3  # data file problem: unreadable, missing column, bad timestamps, no observations, unwritable output
+EXIT_MODEL_FILE = 4  # model file problem: unreadable, another format version, invalid contents
+EXIT_FIT = 5  # numerical failure: non-finite loss, states not identified
+EXIT_INTERRUPTED = 130  # Ctrl-C
+
+_SAFETY_WRAPPED = textwrap.fill(SAFETY_NOTE, width=78, break_on_hyphens=False)
+
+EXIT_CODES_HELP = """exit codes:
+  0    success: every output file was written
+  1    internal error (a bug; rerun with --debug and report the traceback)
+  2    bad command line
+  3    data problem: unreadable file, missing column, timestamps not strictly
+       increasing, no observations, output folder missing
+  4    model file problem: unreadable, from another format version, invalid
+  5    numerical failure: the fit or the smoother produced non-finite values
+  130  interrupted
+On any failure no output file is created or changed: outputs are written to
+temporary files and renamed into place only when all of them are complete."""
+
+MAIN_DESCRIPTION = """\
+Smooth, impute and fit sensor readings with a continuous-time linear-Gaussian
+model (a Kalman/Rauch-Tung-Striebel smoother on irregular timestamps).
+
+Input: a CSV (or Parquet) table with a time column and one column per measured
+quantity. Blank cells (or NaN, NA) are missing values; rows may come at
+irregular times and each sensor may report at its own rate.
+
+Typical session:
+  kalmax models                                   # which models exist
+  kalmax fit readings.csv --time time --model random-walk --measure temp
+  kalmax apply readings_model.json new_readings.csv
+
+"""
+
+
+class UsageError(Exception):
+    """A command-line combination argparse cannot check by itself."""
+
+
+def _kinds_text() -> str:
+    from ._src.spec import KINDS
+
+    lines = []
+    for k in KINDS.values():
+        lines.append(f"  {k.name:<22} {k.summary}")
+        lines.append(f"  {'':<22} parameters: {', '.join(k.params)}, noise (per column)")
+    return "\n".join(lines)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    fmt = argparse.RawDescriptionHelpFormatter
+    parser = argparse.ArgumentParser(
+        prog="kalmax", formatter_class=fmt, description=MAIN_DESCRIPTION + _SAFETY_WRAPPED,
+        epilog=EXIT_CODES_HELP)
+    from . import __version__
+
+    parser.add_argument("--version", action="version", version=f"kalmax {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    common = argparse.ArgumentParser(add_help=False)
+    out = common.add_argument_group("outputs (default: next to DATA, named after it)")
+    out.add_argument("--output", "-o", metavar="FILE",
+                     help="smoothed table, .csv or .parquet (default: DATA_smoothed.csv). Columns: the time, then "
+                          "for each measured column COL: COL (as read), COL_smoothed (estimate, also where COL was "
+                          "missing), COL_lower and COL_upper (interval for a new noisy measurement of COL, i.e. "
+                          "the smoother's uncertainty plus the measurement noise)")
+    out.add_argument("--report", metavar="FILE.png", help="PNG report (default: DATA_report.png)")
+    out.add_argument("--no-report", action="store_true", help="do not draw the PNG report")
+    out.add_argument("--level", type=float, default=0.95, metavar="P",
+                     help="coverage of the interval columns and bands, between 0 and 1 (default: %(default)s)")
+    out.add_argument("--with-states", action="store_true",
+                     help="also write the smoothed state (e.g. velocities) as state_NAME columns")
+    misc = common.add_argument_group("other")
+    misc.add_argument("--quiet", "-q", action="store_true", help="print errors only (no progress, no summary)")
+    misc.add_argument("--debug", action="store_true", help="show the Python traceback of an internal error")
+
+    fit = sub.add_parser(
+        "fit", parents=[common], formatter_class=fmt,
+        help="fit a model to a table and write the smoothed table, the model file and a report",
+        description=(
+            "Fit a continuous-time model to DATA, then smooth and impute every measured column.\n\n"
+            "A fraction of the observed cells (--test-fraction) is hidden from the fit and used to\n"
+            "report the held-out error of the starting model and of the fitted model.\n\n"
+            "Model kinds (--model):\n" + _kinds_text() + "\n\n"
+            "Each --measure names a column and, after '=', the state it measures; without '=' the\n"
+            "k-th such column measures the k-th position/level. Example, positions in two axes plus a\n"
+            "velocity sensor on the first axis:\n"
+            "  kalmax fit float.csv --time time --model constant-velocity --dims 2 \\\n"
+            "      --measure east --measure north --measure speed_east=velocity0\n\n"
+            "Time: numbers (any unit; the model's rates are per that unit) or ISO 8601 date-times\n"
+            "(then rates are per second). Timestamps must be strictly increasing.\n\n" + _SAFETY_WRAPPED),
+        epilog=EXIT_CODES_HELP)
+    fit.add_argument("data", metavar="DATA", help="input table: .csv (header row) or .parquet (needs pyarrow)")
+    g = fit.add_argument_group("what to fit")
+    g.add_argument("--time", metavar="COL", help="name of the time column (required unless --start gives it)")
+    g.add_argument("--measure", "-m", action="append", metavar="COL[=STATE]", default=None,
+                   help="a measured column, optionally with the state it measures (repeat for each column)")
+    g.add_argument("--model", metavar="KIND", help="model kind (see the list above; `kalmax models` too)")
+    g.add_argument("--dims", type=int, metavar="D",
+                   help="number of spatial axes for random-walk / constant-velocity / constant-acceleration "
+                        "(default: number of --measure columns without '=STATE')")
+    g.add_argument("--start", metavar="MODEL.json",
+                   help="start from a saved model file (gives kind, dims, columns and starting values)")
+    g.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
+                   help="starting value of a parameter, e.g. q=0.01, q=0.1,0.2 (per axis), frequency=0.5, "
+                        "noise=4 (every column) or noise.COL=4 (one column; a variance)")
+    g.add_argument("--fix", action="append", default=[], metavar="NAME",
+                   help="keep a parameter at its starting value (a process parameter name, or noise)")
+    h = fit.add_argument_group("how to fit")
+    h.add_argument("--objective", choices=("likelihood", "holdout"), default="likelihood",
+                   help="likelihood: maximise the exact likelihood of the training cells (default). "
+                        "holdout: minimise the cross-validated error of the smoother on training cells hidden "
+                        "from it in turn, then scale all variances so the intervals match those errors")
+    h.add_argument("--steps", type=int, default=300, metavar="N", help="optimisation steps (default: %(default)s)")
+    h.add_argument("--learning-rate", type=float, default=0.1, metavar="LR",
+                   help="Adam step size on the log-parameters (default: %(default)s)")
+    h.add_argument("--test-fraction", type=float, default=0.2, metavar="F",
+                   help="fraction of observed cells hidden from the fit and used to report the held-out "
+                        "error, 0 to use everything for fitting (default: %(default)s)")
+    h.add_argument("--folds", type=int, default=4, metavar="K",
+                   help="cross-validation folds for --objective holdout (default: %(default)s)")
+    h.add_argument("--seed", type=int, default=0, help="seed of the random held-out choices (default: %(default)s)")
+    fit.add_argument("--model-file", metavar="FILE.json", help="fitted model file (default: DATA_model.json)")
+
+    apply = sub.add_parser(
+        "apply", parents=[common], formatter_class=fmt,
+        help="smooth new data with a saved model file, without refitting",
+        description=("Smooth and impute DATA with the model saved by `kalmax fit` (no refitting).\n"
+                     "DATA needs the model's time column and measurement columns.\n\n" + _SAFETY_WRAPPED),
+        epilog=EXIT_CODES_HELP)
+    apply.add_argument("model_file", metavar="MODEL.json", help="model file written by `kalmax fit`")
+    apply.add_argument("data", metavar="DATA", help="input table: .csv or .parquet")
+
+    sub.add_parser("models", help="list the model kinds, their states and parameters",
+                   description="List the model kinds, their states and parameters.")
+    return parser
+
+
+# ----------------------------------------------------------------------------
+# Helpers
+# ----------------------------------------------------------------------------
+
+
+def _say(args, *text):
+    if not args.quiet:
+        print(*text, flush=True)
+
+
+def _default_path(data: str, suffix: str) -> Path:
+    p = Path(data)
+    return p.with_name(p.stem + suffix)
+
+
+def _outputs(args, model_file: bool):
+    table = Path(args.output) if args.output else _default_path(args.data, "_smoothed.csv")
+    report = None if args.no_report else (Path(args.report) if args.report else _default_path(args.data, "_report.png"))
+    model = None
+    if model_file:
+        model = Path(args.model_file) if args.model_file else _default_path(args.data, "_model.json")
+    paths = [p for p in (table, report, model) if p is not None]
+    resolved = [os.path.abspath(p) for p in paths]
+    if len(set(resolved)) != len(resolved):
+        raise UsageError("the output files must have different names.")
+    if os.path.abspath(args.data) in resolved:
+        raise UsageError("an output file would overwrite the input DATA file.")
+    # Check the destinations before any work: a long fit should not end in "cannot write".
+    from ._src.io import DataError
+
+    for p in paths:
+        if p.is_dir():
+            raise DataError(f"cannot write {p}: it is a folder.")
+        if not p.parent.is_dir():
+            raise DataError(f"cannot write {p}: folder {p.parent} does not exist.")
+    return table, report, model
+
+
+def _check_level(args):
+    if not (0 < args.level < 1):
+        raise UsageError(f"--level must lie strictly between 0 and 1; got {args.level}.")
+
+
+def _parse_measures(items, kind_name: str, dims: Optional[int]):
+    from ._src.spec import KINDS
+
+    cols, states = [], []
+    for item in items:
+        col, sep, state = item.partition("=")
+        col, state = col.strip(), state.strip()
+        if not col or (sep and not state):
+            raise UsageError(f"--measure {item!r}: write COL or COL=STATE.")
+        cols.append(col)
+        states.append(state or None)
+    kind = KINDS[kind_name]
+    if kind.fixed_dims is not None:
+        if dims not in (None, kind.fixed_dims):
+            raise UsageError(f"--dims does not apply to model kind {kind_name!r} (it has {kind.fixed_dims} axis).")
+        dims = kind.fixed_dims
+    elif dims is None:
+        dims = max(1, sum(s is None for s in states))
+    if dims < 1:
+        raise UsageError(f"--dims must be a positive integer; got {dims}.")
+    names = kind.state_names(dims)
+    firsts = [names[k] for k in range(dims)] if kind.fixed_dims is None else [names[0]] * len(cols)
+    k = 0
+    for i, s in enumerate(states):
+        if s is None:
+            if k >= len(firsts):
+                raise UsageError(f"--measure {cols[i]}: more plain columns than the {dims} position/level states; "
+                                 "name the state with COL=STATE or raise --dims.")
+            states[i] = firsts[k]
+            k += 1 if kind.fixed_dims is None else 0
+        elif s not in names:
+            raise UsageError(f"--measure {cols[i]}={s}: model kind {kind_name!r} with dims={dims} has states "
+                             f"{', '.join(names)}.")
+    return cols, states, dims
+
+
+def _apply_sets(spec, sets):
+    import numpy as np
+
+    params = dict(spec.params)
+    noise = list(spec.noise)
+    for item in sets:
+        name, sep, value = item.partition("=")
+        name = name.strip()
+        if not sep:
+            raise UsageError(f"--set {item!r}: write NAME=VALUE.")
+        try:
+            values = [float(v) for v in value.split(",")]
+        except ValueError:
+            raise UsageError(f"--set {item!r}: {value!r} is not a number or a comma-separated list.") from None
+        if not all(math.isfinite(v) and v > 0 for v in values):
+            raise UsageError(f"--set {item!r}: values must be finite and > 0.")
+        if name == "noise":
+            if len(values) == 1:
+                noise = values * len(noise)
+            elif len(values) == len(noise):
+                noise = values
+            else:
+                raise UsageError(f"--set noise: give 1 value or {len(noise)} (one per column).")
+        elif name.startswith("noise."):
+            col = name[len("noise."):]
+            if col not in spec.columns or len(values) != 1:
+                raise UsageError(f"--set {item!r}: no measured column {col!r} (or more than one value).")
+            noise[spec.columns.index(col)] = values[0]
+        elif name in params:
+            shape = np.shape(params[name])
+            if shape == ():
+                if len(values) != 1:
+                    raise UsageError(f"--set {name}: takes one value.")
+                params[name] = values[0]
+            else:
+                if len(values) == 1:
+                    values = values * shape[0]
+                if len(values) != shape[0]:
+                    raise UsageError(f"--set {name}: give 1 value or {shape[0]} (one per axis).")
+                params[name] = values
+        else:
+            raise UsageError(f"--set {name}: unknown parameter; this model has "
+                             f"{', '.join(list(params) + ['noise', 'noise.COL'])}.")
+    return spec.replace(params=params, noise=tuple(noise))
+
+
+def _format_errors(errs):
+    return ", ".join(f"{k} {v:.4g}" for k, v in errs.items() if k != "all")
+
+
+def _table_for(args, spec, series, smoothing):
+    from ._src import pipeline
+
+    return pipeline.output_table(spec, series, smoothing, level=args.level, with_states=args.with_states)
+
+
+def _read(path, time_column, columns, time_format=None):
+    from ._src import io, pipeline
+
+    names, cols = io.read_table(path)
+    return pipeline.series_from_table(names, cols, time_column, columns, source=str(path), time_format=time_format)
+
+
+# ----------------------------------------------------------------------------
+# Commands
+# ----------------------------------------------------------------------------
+
+
+def cmd_models(args) -> int:
+    from ._src.spec import KINDS
+
+    for k in KINDS.values():
+        print(f"{k.name}\n    {k.summary}")
+        dims_note = "" if k.fixed_dims else " (with --dims 1; more axes add position1, velocity1, ...)"
+        print(f"    states: {', '.join(k.state_names(1))}{dims_note}")
+        print(f"    parameters: {', '.join(k.params)}, noise (one variance per measured column)")
+    return EXIT_OK
+
+
+def cmd_fit(args) -> int:
+    import numpy as np
+
+    from ._src import io, pipeline, splits
+    from ._src.report import write_report
+    from ._src.spec import KINDS
+
+    _check_level(args)
+    if args.steps < 0:
+        raise UsageError(f"--steps must be >= 0; got {args.steps}.")
+    if not (0 <= args.test_fraction < 1):
+        raise UsageError(f"--test-fraction must lie in [0, 1); got {args.test_fraction}.")
+    if args.folds < 2:
+        raise UsageError(f"--folds must be at least 2; got {args.folds}.")
+    if not (args.learning_rate > 0 and math.isfinite(args.learning_rate)):
+        raise UsageError(f"--learning-rate must be > 0; got {args.learning_rate}.")
+    table_path, report_path, model_path = _outputs(args, model_file=True)
+
+    start = io.load_model(args.start) if args.start else None
+    if start is not None:
+        for opt, val, have in (("--model", args.model, start.kind), ("--time", args.time, start.time_column),
+                               ("--dims", args.dims, start.dims)):
+            if val is not None and val != have:
+                raise UsageError(f"{opt} {val} contradicts the --start model file ({have}); drop one of them.")
+        if args.measure:
+            cols, states, _ = _parse_measures(args.measure, start.kind, start.dims)
+            if tuple(cols) != start.columns or tuple(states) != start.measured:
+                raise UsageError("--measure contradicts the columns of the --start model file; drop one of them.")
+        series = _read(args.data, start.time_column, start.columns, start.time_format)
+        spec = start
+    else:
+        missing = [o for o, v in (("--time", args.time), ("--model", args.model), ("--measure", args.measure))
+                   if not v]
+        if missing:
+            raise UsageError(f"fit needs {', '.join(missing)} (or --start MODEL.json).")
+        if args.model not in KINDS:
+            raise UsageError(f"--model {args.model!r} is not a model kind; choose one of {', '.join(KINDS)}.")
+        cols, states, dims = _parse_measures(args.measure, args.model, args.dims)
+        if len(set(cols)) != len(cols):
+            raise UsageError("each --measure column may appear only once.")
+        if args.time in cols:
+            raise UsageError(f"the time column {args.time!r} cannot also be measured.")
+        series = _read(args.data, args.time, cols)
+        spec = pipeline.default_spec(args.model, dims, args.time, cols, states, series)
+    spec = _apply_sets(spec, args.set)
+    allowed = set(spec.kind_info.params) | {"noise"}
+    bad = [f for f in args.fix if f not in allowed]
+    if bad:
+        raise UsageError(f"--fix {bad[0]}: unknown parameter; this model has {', '.join(sorted(allowed))}.")
+
+    mask = series.mask
+    if args.test_fraction > 0:
+        test = np.asarray(splits.holdout_entries(mask, args.test_fraction, args.seed))
+    else:
+        test = np.zeros_like(mask)
+    train = mask & ~test
+    empty = [c for j, c in enumerate(spec.columns) if not train[:, j].any()]
+    if empty:
+        raise pipeline.DataError(f"{args.data}: after holding out test cells, column(s) {', '.join(empty)} have "
+                                 "no training observation; lower --test-fraction.")
+    _say(args, f"Read {args.data}: {len(series.t)} rows, {int(mask.sum())} observed cells "
+               f"({', '.join(f'{c} {int(mask[:, j].sum())}' for j, c in enumerate(spec.columns))}).")
+    before = pipeline.heldout_rmse(spec, series, test) if test.any() else None
+    if before is not None:
+        _say(args, f"Held-out RMSE of the starting model: {_format_errors(before)}")
+    _say(args, f"Fitting {spec.kind} (objective: {args.objective}, {args.steps} steps) ...")
+    outcome = pipeline.fit_spec(spec, series, train, objective=args.objective, steps=args.steps,
+                                learning_rate=args.learning_rate, fixed=tuple(args.fix), folds=args.folds,
+                                seed=args.seed, progress=not args.quiet)
+    fitted = outcome.spec
+    after = pipeline.heldout_rmse(fitted, series, test) if test.any() else None
+    if after is not None:
+        _say(args, f"Held-out RMSE of the fitted model:   {_format_errors(after)}")
+        _say(args, f"Held-out RMSE, all columns in units of their sd: before {before['all']:.4g}, "
+                   f"after {after['all']:.4g}")
+    if outcome.history and not math.isfinite(outcome.history[-1]):
+        raise pipeline.FitError("the fit loss became non-finite.")
+    fitted = fitted.replace(fit={
+        "data": Path(args.data).name, "rows": int(len(series.t)), "objective": args.objective,
+        "steps_run": outcome.steps_run, "best_step": outcome.best_step, "stop_reason": outcome.stop_reason,
+        "final_loss": outcome.history[outcome.best_step] if outcome.history else None,
+        "learning_rate": args.learning_rate, "fixed": list(args.fix), "test_fraction": args.test_fraction,
+        "seed": args.seed, "heldout_rmse_before": before, "heldout_rmse_after": after,
+    })
+    smoothing = pipeline.smooth_series(fitted, series)
+    names, cols = _table_for(args, fitted, series, smoothing)
+    summary = ""
+    if after is not None:
+        summary = (f"held-out RMSE (sd units): start {before['all']:.3g} -> fitted {after['all']:.3g}; "
+                   f"objective {args.objective}, {outcome.steps_run} steps")
+    with io.AtomicOutputs() as out:
+        io.write_table(table_path, names, cols, out)
+        io.save_model(model_path, fitted, out)
+        if report_path is not None:
+            write_report(out.temp_for(report_path), fitted, series, smoothing, level=args.level,
+                         test_mask=test if test.any() else None, history=outcome.history,
+                         loss_label=("−log-likelihood per cell" if args.objective == "likelihood"
+                                     else "CV squared error (sd units)"),
+                         title=f"kalmax fit: {fitted.kind} on {Path(args.data).name}", summary=summary)
+    def fmt(v):
+        return "[" + ", ".join(f"{x:.4g}" for x in v) + "]" if isinstance(v, (list, tuple)) else f"{v:.4g}"
+
+    _say(args, "Fitted parameters: " + ", ".join(f"{k}={fmt(v)}" for k, v in fitted.params.items())
+         + "; noise sd " + ", ".join(f"{c} {math.sqrt(r):.4g}" for c, r in zip(fitted.columns, fitted.noise)))
+    _say(args, f"Wrote {table_path}, {model_path}" + (f", {report_path}" if report_path else ""))
+    return EXIT_OK
+
+
+def cmd_apply(args) -> int:
+    from ._src import io, pipeline
+    from ._src.report import write_report
+
+    _check_level(args)
+    table_path, report_path, _ = _outputs(args, model_file=False)
+    spec = io.load_model(args.model_file)
+    series = _read(args.data, spec.time_column, spec.columns, spec.time_format)
+    _say(args, f"Read {args.data}: {len(series.t)} rows, {int(series.mask.sum())} observed cells.")
+    smoothing = pipeline.smooth_series(spec, series)
+    names, cols = _table_for(args, spec, series, smoothing)
+    with io.AtomicOutputs() as out:
+        io.write_table(table_path, names, cols, out)
+        if report_path is not None:
+            write_report(out.temp_for(report_path), spec, series, smoothing, level=args.level,
+                         title=f"kalmax apply: {spec.kind} model {Path(args.model_file).name} on "
+                               f"{Path(args.data).name}")
+    _say(args, f"Wrote {table_path}" + (f", {report_path}" if report_path else ""))
+    return EXIT_OK
+
+
+def main(argv: Optional[List[str]] = None) -> int:
+    """Entry point of the ``kalmax`` command; returns the exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)  # exits with code 2 on a bad command line
+    if args.command is None:
+        parser.print_help()
+        return EXIT_USAGE
+    if args.command == "models":
+        return cmd_models(args)
+
+    import jax
+
+    # Timestamps and variances span many orders of magnitude: the command line works in float64.
+    jax.config.update("jax_enable_x64", True)
+    from ._src.io import DataError, ModelFileError
+    from ._src.pipeline import FitError
+
+    try:
+        return cmd_fit(args) if args.command == "fit" else cmd_apply(args)
+    except UsageError as e:
+        parser.exit(EXIT_USAGE, f"kalmax {args.command}: error: {e}\n")
+    except DataError as e:
+        print(f"kalmax: data error: {e}", file=sys.stderr)
+        return EXIT_DATA
+    except ModelFileError as e:
+        print(f"kalmax: model file error: {e}", file=sys.stderr)
+        return EXIT_MODEL_FILE
+    except FitError as e:
+        print(f"kalmax: fit failed: {e}", file=sys.stderr)
+        return EXIT_FIT
+    except KeyboardInterrupt:
+        print("kalmax: interrupted; no output written.", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except Exception as e:  # the last resort: report, do not dump a traceback on a newcomer
+        if args.debug:
+            traceback.print_exc()
+        print(f"kalmax: internal error: {type(e).__name__}: {e}\n"
+              "This is a bug in kalmax; rerun with --debug and report the traceback.", file=sys.stderr)
+        return EXIT_INTERNAL
+    return EXIT_OK
