@@ -25,12 +25,23 @@ def _shape_str(shape) -> str:
     return "(" + ", ".join(str(s) for s in shape) + ("," if len(shape) == 1 else "") + ")"
 
 
+def _dtype_of(name: str, x):
+    if hasattr(x, "dtype"):
+        return x.dtype
+    try:
+        return np.asarray(x).dtype
+    except Exception as err:  # ragged nested lists and the like
+        raise TypeError(f"{name} could not be read as an array: {err}") from None
+
+
 def _require_float(name: str, x) -> None:
-    dt = jnp.asarray(x).dtype if not hasattr(x, "dtype") else x.dtype
-    if not jnp.issubdtype(dt, jnp.floating):
+    dt = _dtype_of(name, x)
+    # Only single and double precision: the factorisations have no half-precision kernels,
+    # and half precision could not hold the normal equations' dynamic range anyway.
+    if dt not in (np.dtype(np.float32), np.dtype(np.float64)):
         raise TypeError(
-            f"{name} must be a real floating-point array (float32 or float64); got dtype {dt}. "
-            f"Convert it with .astype(float) first."
+            f"{name} must be a real floating-point array of float32 or float64; got dtype {dt}. "
+            f"Convert it with .astype(np.float32) or .astype(np.float64) first."
         )
 
 
@@ -55,12 +66,18 @@ def dims_of(model: StateSpace, y) -> Dims:
     T, p = y_shape
     if T < 1:
         raise ValueError("y must have at least one time step (T >= 1); got an empty series.")
+    if not isinstance(model, StateSpace):
+        raise TypeError(f"model must be a kalmax.StateSpace; got {type(model).__name__}.")
+    if model.A is None:
+        raise ValueError("model.A is required; got None.")
     a_shape = tuple(np.shape(model.A))
     if len(a_shape) not in (2, 3) or a_shape[-1] != a_shape[-2]:
         raise ValueError(
-            f"model.A must have shape (n, n) or (T-1, n, n) = (_, {T - 1}, n, n) with square "
+            f"model.A must have shape (n, n) or (T-1, n, n) = ({T - 1}, n, n) with square "
             f"blocks; got {_shape_str(a_shape)}."
         )
+    if a_shape[-1] < 1:
+        raise ValueError(f"model.A must describe at least one state (n >= 1); got shape {_shape_str(a_shape)}.")
     return Dims(T=T, n=a_shape[-1], p=p)
 
 
@@ -116,6 +133,9 @@ def canonicalize(model: StateSpace, y, mask):
             raise ValueError(
                 f"mask must have the same shape as y, {_shape_str(y.shape)}; got {_shape_str(mask.shape)}."
             )
+    # Plain Python lists become arrays before dtype promotion looks at them.
+    as_array = lambda x: x if x is None or hasattr(x, "dtype") else np.asarray(x)  # noqa: E731
+    model = StateSpace(**{f: as_array(getattr(model, f)) for f in ("A", "C", "Q", "R", "b", "d", "x0_mean", "x0_cov")})
     leaves = [getattr(model, f) for f in ("A", "C", "Q", "R", "b", "d", "x0_mean", "x0_cov")]
     dtype = jnp.result_type(*[x for x in leaves if x is not None], y)
     cast = {
