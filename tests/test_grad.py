@@ -173,3 +173,27 @@ def test_prediction_error_gradient_matches_fd(rng):
     scored = np.asarray(mask) & np.asarray(holdout)
     want = np.mean((np.asarray(y)[scored] - pred[scored]) ** 2)
     assert np.isclose(float(loss(model)), want, rtol=1e-10)
+
+
+_LONG_SCRIPT = """
+import jax, jax.numpy as jnp
+jax.config.update("jax_enable_x64", True)
+import kalmax as kx
+T = 70_000
+m = kx.StateSpace(A=0.9 * jnp.eye(2), C=jnp.ones((1, 2)), Q=jnp.eye(2), R=jnp.eye(1))
+y = jnp.sin(jnp.arange(T) / 50.0)[:, None]
+g = jax.grad(lambda m: jnp.sum(kx.smooth(m, y, method="scan").states ** 2))(m)
+print("finite", all(bool(jnp.all(jnp.isfinite(l))) for l in jax.tree_util.tree_leaves(g)))
+"""
+
+
+def test_long_series_gradient_completes():
+    """Value-and-gradient past 2**16 steps on the pure-JAX path: jaxlib 0.10 on CPU can
+    deadlock on large batched triangular-solve gradients, which linalg.lsolve works around
+    by chunking. Run in a subprocess so that a hang fails this test instead of stalling CI."""
+    import subprocess
+    import sys
+
+    proc = subprocess.run([sys.executable, "-c", _LONG_SCRIPT], capture_output=True, text=True, timeout=240)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert "finite True" in proc.stdout

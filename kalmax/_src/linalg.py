@@ -7,6 +7,8 @@ time-invariant operand T times where that can be avoided.
 
 from __future__ import annotations
 
+import math
+
 import jax.numpy as jnp
 from jax import lax
 
@@ -35,7 +37,35 @@ def lsolve(L, B, *, transpose: bool = False):
         B = jnp.broadcast_to(B, L.shape[:-2] + B.shape[-2:])
     elif B.ndim > L.ndim:
         L = jnp.broadcast_to(L, B.shape[:-2] + L.shape[-2:])
+    batch = math.prod(L.shape[:-2])
+    if batch > _MAX_BATCH:
+        return _chunked_solve(L, B, transpose)
     return lax.linalg.triangular_solve(L, B, left_side=True, lower=True, transpose_a=transpose)
+
+
+# jaxlib 0.10 on CPU can deadlock when the gradient of chained batched
+# triangular solves runs with a batch above 2**16 (seen with T > 65,536 time
+# steps). Batches past this size are solved in chunks under lax.map instead.
+_MAX_BATCH = 2**15
+
+
+def _chunked_solve(L, B, transpose):
+    lead = L.shape[:-2]
+    batch = math.prod(lead)
+    n_chunks = -(-batch // _MAX_BATCH)
+    pad = n_chunks * _MAX_BATCH - batch
+    Lf = L.reshape((batch,) + L.shape[-2:])
+    Bf = B.reshape((batch,) + B.shape[-2:])
+    if pad:
+        eye = jnp.broadcast_to(jnp.eye(L.shape[-1], dtype=L.dtype), (pad,) + L.shape[-2:])
+        Lf = jnp.concatenate([Lf, eye], axis=0)
+        Bf = jnp.concatenate([Bf, jnp.zeros((pad,) + B.shape[-2:], B.dtype)], axis=0)
+    Lc = Lf.reshape((n_chunks, _MAX_BATCH) + L.shape[-2:])
+    Bc = Bf.reshape((n_chunks, _MAX_BATCH) + B.shape[-2:])
+    solve = lambda args: lax.linalg.triangular_solve(  # noqa: E731
+        args[0], args[1], left_side=True, lower=True, transpose_a=transpose)
+    X = lax.map(solve, (Lc, Bc)).reshape((n_chunks * _MAX_BATCH,) + B.shape[-2:])
+    return X[:batch].reshape(lead + B.shape[-2:])
 
 
 def lsolve_vec(L, v, *, transpose: bool = False):

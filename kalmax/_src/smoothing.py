@@ -60,8 +60,13 @@ def smooth(model: StateSpace, y, mask=None, *, covariances: bool = False, method
             selected inversion of the normal-equation matrix: O(T n³). They are
             differentiable (by ordinary reverse-mode AD through the
             factorisation and the selected-inversion recursion).
-        method: solver backend; ``"auto"`` picks the platform default,
-            ``"scan"`` forces the portable pure-JAX block-Cholesky scan.
+        method: solver backend for the means: ``"auto"`` (the compiled
+            kernel ``"cpu"`` on CPU when it is built, ``"parallel"`` on
+            GPU/TPU), ``"scan"`` (the portable pure-JAX block-Cholesky scan),
+            ``"cpu"``, ``"parallel"`` (block cyclic reduction, O(log T) depth)
+            or ``"scan-recompute"`` (re-factorises in the backward pass instead
+            of storing factors). Covariances always use the differentiable
+            ``"scan"`` recursion.
 
     Returns:
         :class:`Smoothed` with ``states`` (T, n) and ``measurements`` (T, p).
