@@ -7,14 +7,20 @@ PY      = $(VENV)/bin/python
 PIP     = $(PY) -m pip --disable-pip-version-check
 STAMP   = $(VENV)/.installed
 
-.PHONY: demo test bench venv clean
+.PHONY: demo test bench bench-parallel device-check venv clean
 
 $(PY):
 	$(PYTHON) -m venv $(VENV)
 
-$(STAMP): $(PY) pyproject.toml
-	$(PIP) install -q --upgrade pip
-	$(PIP) install -q -e ".[test]"
+# The compiled CPU kernel (kalmax/_src/cpu) is built without build isolation:
+# the build then uses this venv's setuptools and needs no download. It needs no
+# jax at build time: the XLA FFI headers are vendored from the oldest jaxlib
+# that pyproject.toml allows (see setup.py for why).
+KERNEL_SRC = setup.py $(wildcard kalmax/_src/cpu/*.cc kalmax/_src/cpu/*.h)
+
+$(STAMP): $(PY) pyproject.toml $(KERNEL_SRC)
+	$(PIP) install -q --upgrade pip "setuptools>=68"
+	$(PIP) install -q --no-build-isolation -e ".[test]"
 	touch $(STAMP)
 
 venv: $(STAMP)
@@ -27,6 +33,13 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(PY) benchmarks/run.py
+
+# Parallel-in-time vs sequential solves on one CPU core; device_check on a GPU/TPU if present.
+bench-parallel: $(STAMP)
+	$(PY) benchmarks/parallel.py
+
+device-check: $(STAMP)
+	$(PY) benchmarks/device_check.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info

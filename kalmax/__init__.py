@@ -6,7 +6,11 @@ from ._src.smoothing import Smoothed as Smoothed
 from ._src.smoothing import holdout_sums as holdout_sums
 from ._src.smoothing import prediction_error as prediction_error
 from ._src.smoothing import smooth as smooth
+from ._src.validation import condition_estimate as condition_estimate
 from ._src.validation import validate as validate
+
+# The compiled CPU kernel registers method="cpu" (the default on CPU) when its library loads.
+from ._src import cpu_backend as _cpu_backend  # noqa: E402,F401
 
 # Learning layer: held-out splits, parameterisations, proximal steps, fitting, EM.
 from ._src.em import em as em
@@ -33,5 +37,28 @@ from ._src.splits import holdout_blocks as holdout_blocks
 from ._src.splits import holdout_entries as holdout_entries
 from ._src.splits import holdout_folds as holdout_folds
 from ._src.splits import pad_series as pad_series
+
+# Continuous-time models on irregular timestamps, and the model file of the `kalmax` command.
+from ._src.continuous import ContinuousModel as ContinuousModel
+from ._src.continuous import constant_acceleration as constant_acceleration
+from ._src.continuous import constant_velocity as constant_velocity
+from ._src.continuous import damped_oscillator as damped_oscillator
+from ._src.continuous import discretize as discretize
+from ._src.continuous import local_linear_trend as local_linear_trend
+from ._src.continuous import random_walk as random_walk
+from ._src.io import ModelFileError as ModelFileError
+from ._src.io import load_model as load_model
+from ._src.io import save_model as save_model
+from ._src.spec import ModelSpec as ModelSpec
+
+# Scale: parallel-in-time solve (method="parallel"), low-memory sequential solve
+# (method="scan-recompute"), and data-parallel helpers over a device mesh.
+from ._src import parallel as _parallel  # noqa: E402,F401  (registers method="parallel")
+from ._src import recompute as _recompute  # noqa: E402,F401  (registers method="scan-recompute")
+from ._src.sharding import batch_mesh as batch_mesh
+from ._src.sharding import data_parallel as data_parallel
+from ._src.sharding import pad_batch as pad_batch
+from ._src.sharding import replicate as replicate
+from ._src.sharding import shard_batch as shard_batch
 
 __version__ = "0.1.0"

@@ -44,6 +44,10 @@ class Backend(NamedTuple):
     # (factor) -> (Σ_tt (T, n, n), Σ_{t+1,t} (T-1, n, n)), the band of H⁻¹.
     # None: the factor is a blocktri.BlockFactor and blocktri.selected_inverse applies.
     band_inverse: Optional[Callable] = None
+    # (model, y, w, x, factor, x_bar) -> (model_bar, y_bar): the whole backward
+    # pass in one call (a fused compiled kernel). None: adjoint solve plus JAX
+    # autodiff of stationarity_pairing.
+    gradients: Optional[Callable] = None
 
 
 def _scan_forward(model, y, w):
@@ -54,7 +58,7 @@ def _scan_forward(model, y, w):
 SCAN = Backend(forward=_scan_forward, adjoint=blocktri.solve, logdet=blocktri.logdet)
 
 _BACKENDS: Dict[str, Backend] = {"scan": SCAN}
-METHODS = ("auto", "scan")
+METHODS = ("auto", "scan", "cpu")
 
 
 def register_backend(name: str, backend: Backend) -> None:
@@ -64,9 +68,20 @@ def register_backend(name: str, backend: Backend) -> None:
 
 def resolve_method(method: str) -> str:
     if method == "auto":
-        return "scan"
+        platform = jax.default_backend()
+        # Accelerators: the parallel-in-time solve (O(log T) depth, registered
+        # by kalmax._src.parallel) keeps the device busy; a scan would not.
+        if platform in ("gpu", "cuda", "rocm", "tpu") and "parallel" in _BACKENDS:
+            return "parallel"
+        # The compiled kernel registers itself as "cpu" only when its library loaded.
+        return "cpu" if "cpu" in _BACKENDS and platform == "cpu" else "scan"
     if method not in _BACKENDS:
-        raise ValueError(f"method must be one of {sorted(set(_BACKENDS) | {'auto'})}; got {method!r}.")
+        why = ""
+        if method == "cpu":
+            from . import cpu_backend  # only to explain why the kernel is missing
+
+            why = f" method='cpu' needs the compiled CPU kernel, which is not available: {cpu_backend.LOAD_ERROR}"
+        raise ValueError(f"method must be one of {sorted(set(_BACKENDS) | {'auto'})}; got {method!r}.{why}")
     return method
 
 
@@ -104,7 +119,11 @@ def _means_fwd(model, y, w, method):
 
 def _means_bwd(method, res, x_bar):
     model, y, w, x, factor = res
-    u = get_backend(method).adjoint(factor, x_bar)
+    backend = get_backend(method)
+    if backend.gradients is not None:
+        model_bar, y_bar = backend.gradients(model, y, w, x, factor, x_bar)
+        return model_bar, y_bar, jnp.zeros_like(w)
+    u = backend.adjoint(factor, x_bar)
 
     def pairing(model_, y_):
         return stationarity_pairing(model_, y_, w, x, u)

@@ -28,8 +28,11 @@
 #include <cstddef>
 #include <cstdint>
 #include <limits>
+#include <utility>
+#include <vector>
 
 #include "dense.h"
+#include "patterns.h"
 
 namespace kalmax_cpu {
 
@@ -61,7 +64,7 @@ struct Trajectory {
 // Workspace sizes (in Real elements and ints) for one trajectory.
 inline std::size_t workspace_reals(int n, int p) {
   const std::size_t n2 = std::size_t(n) * n, p2 = std::size_t(p) * p, pn = std::size_t(p) * n;
-  return 20 * n2 + 4 * p2 + 3 * pn + 16 * std::size_t(n) + 8 * std::size_t(p) + 64;
+  return 26 * n2 + 4 * p2 + 3 * pn + 16 * std::size_t(n) + 8 * std::size_t(p) + 64;
 }
 
 // Carves named scratch arrays out of one buffer (no allocation per step).
@@ -90,10 +93,11 @@ inline void copy(Real* dst, const Real* src, std::size_t count) {
 }
 
 // Whitened transition blocks for one (A, Q): with Lq Lqᵀ = Q,
-//   Wi = Lq⁻¹, WA = Lq⁻¹A, GAA = AᵀQ⁻¹A, Qinv = Q⁻¹, Hsub = −Q⁻¹A.
+//   Wi = Lq⁻¹, WA = Lq⁻¹A, GAA = AᵀQ⁻¹A, Qinv = Q⁻¹,
+//   HsubT = H_{t+1,t}ᵀ = −AᵀQ⁻¹ (kept transposed: that is how the factor step uses it).
 template <class Real, int NK>
 struct TransitionBlocks {
-  Real *Lq, *Wi, *WA, *GAA, *Qinv, *Hsub, *Wb;
+  Real *Lq, *Wi, *WA, *GAA, *Qinv, *HsubT, *Wb, *c;
 
   void allocate(Arena<Real>& arena, int n) {
     const std::size_t n2 = std::size_t(n) * n;
@@ -102,25 +106,26 @@ struct TransitionBlocks {
     WA = arena.take(n2);
     GAA = arena.take(n2);
     Qinv = arena.take(n2);
-    Hsub = arena.take(n2);
+    HsubT = arena.take(n2);
     Wb = arena.take(n);
+    c = arena.take(n);
   }
 
   bool compute(const Real* A, const Real* Q, int n_) {
     const int n = fixed<NK>(n_);
     const int n2 = n * n;
     sym_lower<Real, NK>(Lq, Q, n);
-    if (!cholesky<Real, NK>(Lq, Lq, n)) return false;
+    if (!cholesky<Real, NK>(Lq, Lq, n, c)) return false;
     fill(Wi, n2, Real(0));
     for (int i = 0; i < n; ++i) Wi[i * n + i] = Real(1);
     lsolve_rows<Real, NK>(Lq, Wi, Wi, n, n);
     lsolve_rows<Real, NK>(Lq, A, WA, n, n);
     fill(GAA, n2, Real(0));
     fill(Qinv, n2, Real(0));
-    fill(Hsub, n2, Real(0));
+    fill(HsubT, n2, Real(0));
     add_cross<Real, NK, NK>(GAA, WA, WA, n, n, n, Real(1));
     add_cross<Real, NK, NK>(Qinv, Wi, Wi, n, n, n, Real(1));
-    add_cross<Real, NK, NK>(Hsub, Wi, WA, n, n, n, Real(-1));
+    add_cross<Real, NK, NK>(HsubT, WA, Wi, n, n, n, Real(-1));
     return true;
   }
 
@@ -142,75 +147,102 @@ inline int observed(const Real* w, int p, int* idx) {
   return k;
 }
 
-// Lower Cholesky factor of the symmetrised observed sub-block R_KK.
+// Lower Cholesky factor of the symmetrised observed sub-block R_KK
+// (scratch: k entries).
 template <class Real>
-inline bool observed_cov_factor(Real* Lr, const Real* R, int p, const int* idx, int k) {
+inline bool observed_cov_factor(Real* Lr, const Real* R, int p, const int* idx, int k,
+                                Real* scratch) {
   for (int a = 0; a < k; ++a)
     for (int c = 0; c <= a; ++c)
       Lr[a * k + c] = Real(0.5) * (R[idx[a] * p + idx[c]] + R[idx[c] * p + idx[a]]);
-  return cholesky<Real, 0>(Lr, Lr, k);
+  return cholesky<Real, 0>(Lr, Lr, k, scratch);
 }
 
 // ---------------------------------------------------------------------------
 // Solves with a stored factor.
+//
+// The factor is stored as the inverses Li_t = L_t⁻¹ of the diagonal blocks
+// (lower triangular, zeros above the diagonal), so that every later solve is
+// a dense matrix-vector product: no dependency chain through a triangular
+// substitution, which is what limits a sweep over small blocks.
+//
+// The sub-diagonal blocks M_t are stored only when A or Q varies in time.
+// For a time-invariant transition, with the one block H_sub = H_{t,t-1}
+// (kept as its transpose subT),
+//   M_t v   = H_sub (Li_{t-1}ᵀ v)    and    M_{t+1}ᵀ v = Li_t (H_subᵀ v),
+// which halves the memory of the factor and the traffic of each sweep.
+template <class Real>
+struct FactorView {
+  const Real* Li = nullptr;    // (T, n, n) inverse diagonal blocks
+  const Real* M = nullptr;     // (T-1, n, n), unused when subT is set
+  const Real* subT = nullptr;  // (n, n) H_subᵀ: the compact form
+};
 
-// z_t = L_t⁻¹(g_t − M_t z_{t-1}), in place on z (which holds g on entry).
+// z_t = Li_t (g_t − M_t z_{t-1}), in place on z (which holds g on entry).
+// tmp, tmp2: scratch of n entries each.
 template <class Real, int NK>
-inline void forward_substitute(const Real* L, const Real* M, Real* z, int T, int n_) {
+inline void forward_substitute(const FactorView<Real>& F, Real* z, int T, int n_, Real* tmp, Real* tmp2) {
   const int n = fixed<NK>(n_);
   const std::size_t n2 = std::size_t(n) * n;
   for (int t = 0; t < T; ++t) {
     Real* zt = z + std::size_t(t) * n;
     if (t > 0) {
-      const Real* Mt = M + std::size_t(t - 1) * n2;
       const Real* zp = zt - n;
-      for (int i = 0; i < n; ++i) {
-        Real s = 0;
-        for (int j = 0; j < n; ++j) s += Mt[i * n + j] * zp[j];
-        zt[i] -= s;
+      if (F.subT != nullptr) {
+        tmatvec<Real, NK>(tmp, F.Li + std::size_t(t - 1) * n2, zp, n);
+        add_tmatvec<Real, NK>(zt, F.subT, tmp, n, n, Real(-1));  // H_sub v = Σ_r v_r subT[r, :]
+      } else {
+        const Real* Mt = F.M + std::size_t(t - 1) * n2;
+        matvec<Real, NK>(tmp, Mt, zp, n, n);
+        for (int i = 0; i < n; ++i) zt[i] -= tmp[i];
       }
     }
-    lsolve_vec<Real, NK>(L + std::size_t(t) * n2, zt, zt, n);
+    matvec<Real, NK>(tmp2, F.Li + std::size_t(t) * n2, zt, n, n);
+    copy(zt, tmp2, n);
   }
 }
 
-// One step of back substitution: x_t = L_t⁻ᵀ(z_t − M_{t+1}ᵀ x_{t+1}), in place
+// One step of back substitution: x_t = Li_tᵀ(z_t − M_{t+1}ᵀ x_{t+1}), in place
 // on x_t (holding z_t). x_next is null at the last step.
 template <class Real, int NK>
-inline void back_step(const Real* Lt, const Real* Mnext, const Real* x_next, Real* xt, int n_) {
+inline void back_step(const FactorView<Real>& F, int t, const Real* x_next, Real* xt, int n_, Real* tmp,
+                      Real* tmp2) {
   const int n = fixed<NK>(n_);
+  const std::size_t n2 = std::size_t(n) * n;
+  const Real* Lit = F.Li + std::size_t(t) * n2;
   if (x_next != nullptr) {
-    for (int r = 0; r < n; ++r) {
-      const Real a = x_next[r];
-      const Real* Mr = Mnext + r * n;
-      for (int i = 0; i < n; ++i) xt[i] -= a * Mr[i];
+    if (F.subT != nullptr) {
+      matvec<Real, NK>(tmp, F.subT, x_next, n, n);
+      matvec<Real, NK>(tmp2, Lit, tmp, n, n);
+    } else {
+      tmatvec<Real, NK>(tmp2, F.M + std::size_t(t) * n2, x_next, n);
     }
+    for (int i = 0; i < n; ++i) xt[i] -= tmp2[i];
   }
-  ltsolve_vec_inplace<Real, NK>(Lt, xt, n);
+  tmatvec<Real, NK>(tmp, Lit, xt, n);
+  copy(xt, tmp, n);
 }
 
 template <class Real, int NK>
-inline void back_substitute(const Real* L, const Real* M, Real* x, int T, int n_) {
+inline void back_substitute(const FactorView<Real>& F, Real* x, int T, int n_, Real* tmp, Real* tmp2) {
   const int n = fixed<NK>(n_);
-  const std::size_t n2 = std::size_t(n) * n;
-  for (int t = T - 1; t >= 0; --t) {
-    const bool last = t == T - 1;
-    back_step<Real, NK>(L + std::size_t(t) * n2, last ? nullptr : M + std::size_t(t) * n2,
-                        last ? nullptr : x + std::size_t(t + 1) * n, x + std::size_t(t) * n, n);
-  }
+  for (int t = T - 1; t >= 0; --t)
+    back_step<Real, NK>(F, t, t == T - 1 ? nullptr : x + std::size_t(t + 1) * n, x + std::size_t(t) * n, n,
+                        tmp, tmp2);
 }
 
 // x = H⁻¹ v with the stored factor (NaN everywhere when the factor failed).
 template <class Real, int NK>
-void solve_one(const Real* L, const Real* M, bool ok, const Real* v, Real* x, int T, int n) {
+void solve_one(const FactorView<Real>& F, bool ok, const Real* v, Real* x, int T, int n, Real* tmp,
+               Real* tmp2) {
   const std::size_t Tn = std::size_t(T) * n;
   if (!ok) {
     fill(x, Tn, quiet_nan<Real>());
     return;
   }
   copy(x, v, Tn);
-  forward_substitute<Real, NK>(L, M, x, T, n);
-  back_substitute<Real, NK>(L, M, x, T, n);
+  forward_substitute<Real, NK>(F, x, T, n, tmp, tmp2);
+  back_substitute<Real, NK>(F, x, T, n, tmp, tmp2);
 }
 
 // ---------------------------------------------------------------------------
@@ -225,31 +257,36 @@ inline Real pivot_tolerance(int n) {
   return Real(100) * Real(n) * std::numeric_limits<Real>::epsilon();
 }
 
+// Writes x and the factor (Li = L_t⁻¹ blocks, M or subT: see FactorView).
 // Returns 1 when the factorisation succeeded, 0 when a pivot collapsed or a
-// covariance was not positive definite (x is then NaN; L and M are NaN from
+// covariance was not positive definite (x is then NaN; Li and M are NaN from
 // the first failing block on, as in the JAX path).
+//
+// `cache` memoises measurement blocks by mask pattern; pass it only when C
+// and R are time-invariant (nullptr otherwise).
+//
+// With a time-invariant transition the factor is stored compactly: M is not
+// written and subT_out (n×n) receives H_subᵀ instead (see FactorView).
 template <class Real, int NK>
-int forward_one(const Trajectory<Real>& P, Real* x, Real* L, Real* M, Real* ws, int* idx) {
+int forward_one(const Trajectory<Real>& P, Real* x, Real* Li, Real* M, Real* subT_out, Real* ws,
+                int* idx, PatternCache<Real>* cache) {
   const int T = P.T, n = fixed<NK>(P.n), p = P.p;
   const std::size_t n2 = std::size_t(n) * n;
   Arena<Real> arena(ws);
-  Real* H = arena.take(n2);      // H_tt being built
-  Real* S = arena.take(n2);      // Schur complement H_tt − M_t M_tᵀ
-  Real* g = arena.take(n);       // g_t being built
-  Real* next_diag = arena.take(n2);  // contribution of transition t-1 to H_tt
-  Real* next_rhs = arena.take(n);    // ... and to g_t
-  Real* sub_prev = arena.take(n2);   // H_{t,t-1}
+  Real* H = arena.take(n2);          // H_tt being built
+  Real* S = arena.take(n2);          // Schur complement H_tt − M_t M_tᵀ
+  Real* X = arena.take(n2);          // M_tᵀ = L_{t-1}⁻¹ H_{t,t-1}ᵀ
+  Real* cs = arena.take(std::size_t(n > p ? n : p) + 1);  // Cholesky scratch
+  Real* g = arena.take(n);           // g_t being built
+  Real* next_diag = arena.take(n2);  // share of transition t-1 in H_tt
+  Real* next_rhs = arena.take(n);    // ... and in g_t
+  Real* subT_prev = arena.take(n2);  // H_{t,t-1}ᵀ
   Real* Lr = arena.take(std::size_t(p) * p);
   Real* WC = arena.take(std::size_t(p) * n);
   Real* ey = arena.take(p);
-  // Cached measurement blocks for fully observed steps when C and R are fixed.
-  Real* Lr_full = arena.take(std::size_t(p) * p);
-  Real* WC_full = arena.take(std::size_t(p) * n);
-  Real* G_full = arena.take(n2);
   TransitionBlocks<Real, NK> tb;
   tb.allocate(arena, n);
-  // Offset terms of a time-invariant (A, Q, b): computed once.
-  Real* gb_now = arena.take(n);
+  Real* gb_now = arena.take(n);  // offset terms of a time-invariant (A, Q, b)
   Real* gb_next = arena.take(n);
   Real* Wp = arena.take(n2);  // whitened prior precision factor
   Real* wm = arena.take(n);
@@ -257,6 +294,9 @@ int forward_one(const Trajectory<Real>& P, Real* x, Real* L, Real* M, Real* ws, 
   const Real nan = quiet_nan<Real>();
   const Real tol = pivot_tolerance<Real>(n);
   const bool fixed_transition = !P.A_tv && !P.Q_tv;
+  Real* tmp = arena.take(n);
+  Real* tmp2 = arena.take(n);
+  Real* Lt = arena.take(n2);  // L_t (only its inverse is stored)
   int ok = 1;
   int failed_at = -1;  // first block whose factorisation broke down
 
@@ -267,29 +307,30 @@ int forward_one(const Trajectory<Real>& P, Real* x, Real* L, Real* M, Real* ws, 
       fill(gb_next, n, Real(0));
       tb.offset_terms(P.b, gb_now, gb_next, n);
     }
+    copy(subT_prev, tb.HsubT, n2);
   }
-  bool full_cached = false;
-  if (!P.C_tv && !P.R_tv && p > 0) {
-    for (int i = 0; i < p; ++i) idx[i] = i;
-    if (observed_cov_factor(Lr_full, P.R, p, idx, p)) {
-      lsolve_rows<Real, NK>(Lr_full, P.C, WC_full, p, n);
-      fill(G_full, n2, Real(0));
-      add_cross<Real, NK, NK>(G_full, WC_full, WC_full, p, n, n, Real(1));
-      full_cached = true;
-    }
-  }
+  if (fixed_transition) fill(subT_out, n2, Real(0));  // T = 1: no transition at all
+
+  // With a fixed transition the transition share of H_tt is one of three
+  // constant blocks: AᵀQ⁻¹A (t = 0), Q⁻¹ + AᵀQ⁻¹A (inner steps), Q⁻¹ (t = T-1).
+  Real* inner = arena.take(n2);
+  if (fixed_transition && T > 1 && failed_at < 0)
+    for (std::size_t i = 0; i < n2; ++i) inner[i] = tb.Qinv[i] + tb.GAA[i];
 
   fill(next_diag, n2, Real(0));
   fill(next_rhs, n, Real(0));
   for (int t = 0; t < T && failed_at < 0; ++t) {
-    copy(H, next_diag, n2);
+    if (fixed_transition && T > 1)
+      copy(H, t == 0 ? tb.GAA : (t == T - 1 ? tb.Qinv : inner), n2);
+    else
+      copy(H, next_diag, n2);
     copy(g, next_rhs, n);
 
     if (t == 0 && P.P0 != nullptr) {
       // P_0⁻¹ = WpᵀWp with Wp = Lp⁻¹; P_0⁻¹m_0 = Wpᵀ(Wp m_0).
       Real* Lp = S;  // S is free until the factor step
       sym_lower<Real, NK>(Lp, P.P0, n);
-      if (!cholesky<Real, NK>(Lp, Lp, n)) {
+      if (!cholesky<Real, NK>(Lp, Lp, n, cs)) {
         failed_at = 0;
         break;
       }
@@ -305,21 +346,30 @@ int forward_one(const Trajectory<Real>& P, Real* x, Real* L, Real* M, Real* ws, 
 
     // Measurement terms C_tᵀS_tC_t and C_tᵀS_t(y_t − d_t).
     const Real* yt = P.y + std::size_t(t) * p;
-    const int k = observed(P.w + std::size_t(t) * p, p, idx);
-    if (k > 0) {
-      const Real* Ct = P.Ct(t);
-      const Real* dt = P.d != nullptr ? P.dt(t) : nullptr;
-      for (int a = 0; a < k; ++a) ey[a] = yt[idx[a]] - (dt ? dt[idx[a]] : Real(0));
-      if (k == p && full_cached) {
-        lsolve_vec<Real, 0>(Lr_full, ey, ey, p);
-        for (std::size_t i = 0; i < n2; ++i) H[i] += G_full[i];
-        add_tmatvec<Real, NK>(g, WC_full, ey, p, n, Real(1));
-      } else {
-        if (!observed_cov_factor(Lr, P.Rt(t), p, idx, k)) {
+    const Real* dt = P.d != nullptr ? P.dt(t) : nullptr;
+    const PatternBlocks<Real>* pb =
+        cache != nullptr ? cache->template lookup<NK>(P.w + std::size_t(t) * p) : nullptr;
+    if (pb != nullptr) {
+      if (!pb->ok) {
+        failed_at = t;
+        break;
+      }
+      const int k = pb->k;
+      for (int a = 0; a < k; ++a) ey[a] = yt[pb->idx[a]] - (dt ? dt[pb->idx[a]] : Real(0));
+      for (std::size_t i = 0; i < n2; ++i) H[i] += pb->G[i];
+      add_tmatvec<Real, NK>(g, pb->F, ey, k, n, Real(1));
+    } else {
+      const int k = observed(P.w + std::size_t(t) * p, p, idx);
+      if (k > 0) {
+        const Real* Ct = P.Ct(t);
+        if (!observed_cov_factor(Lr, P.Rt(t), p, idx, k, cs)) {
           failed_at = t;
           break;
         }
-        for (int a = 0; a < k; ++a) copy(WC + std::size_t(a) * n, Ct + std::size_t(idx[a]) * n, n);
+        for (int a = 0; a < k; ++a) {
+          ey[a] = yt[idx[a]] - (dt ? dt[idx[a]] : Real(0));
+          copy(WC + std::size_t(a) * n, Ct + std::size_t(idx[a]) * n, n);
+        }
         lsolve_rows<Real, NK>(Lr, WC, WC, k, n);
         lsolve_vec<Real, 0>(Lr, ey, ey, k);
         add_cross<Real, NK, NK>(H, WC, WC, k, n, n, Real(1));
@@ -334,8 +384,10 @@ int forward_one(const Trajectory<Real>& P, Real* x, Real* L, Real* M, Real* ws, 
         failed_at = t;
         break;
       }
-      for (std::size_t i = 0; i < n2; ++i) H[i] += tb.GAA[i];
-      copy(next_diag, tb.Qinv, n2);
+      if (!fixed_transition) {
+        for (std::size_t i = 0; i < n2; ++i) H[i] += tb.GAA[i];
+        copy(next_diag, tb.Qinv, n2);
+      }
       fill(next_rhs, n, Real(0));
       if (P.b != nullptr) {
         if (fixed_transition && !P.b_tv) {
@@ -348,48 +400,52 @@ int forward_one(const Trajectory<Real>& P, Real* x, Real* L, Real* M, Real* ws, 
     }
 
     // Eliminate block t.
-    Real* Lt = L + std::size_t(t) * n2;
+    Real* Lit = Li + std::size_t(t) * n2;
     Real* zt = x + std::size_t(t) * n;
     if (t == 0) {
-      if (!cholesky<Real, NK>(Lt, H, n)) {
+      if (!cholesky<Real, NK>(Lt, H, n, cs)) {
         failed_at = t;
         break;
       }
     } else {
-      Real* Mt = M + std::size_t(t - 1) * n2;
-      right_solve_lt<Real, NK>(Mt, sub_prev, Lt - n2, n);
-      schur_lower<Real, NK>(S, H, Mt, n);
-      if (!cholesky<Real, NK>(Lt, S, n)) {
+      // X = M_tᵀ = L_{t-1}⁻¹ H_{t,t-1}ᵀ; then S = H_tt − XᵀX and
+      // g_t −= Xᵀ z_{t-1}.
+      lower_matmul<Real, NK>(X, Lit - n2, subT_prev, n);
+      if (!fixed_transition) transpose<Real, NK>(M + std::size_t(t - 1) * n2, X, n);
+      cross_update<Real, NK, NK>(S, H, X, X, n, n, n, Real(-1));
+      if (!cholesky<Real, NK>(Lt, S, n, cs)) {
         failed_at = t;
         break;
       }
-      const Real* zp = zt - n;
-      for (int i = 0; i < n; ++i) {
-        Real s = 0;
-        for (int j = 0; j < n; ++j) s += Mt[i * n + j] * zp[j];
-        g[i] -= s;
-      }
+      add_tmatvec<Real, NK>(g, X, zt - n, n, n, Real(-1));
     }
-    lsolve_vec<Real, NK>(Lt, g, zt, n);
     for (int i = 0; i < n; ++i) {
       const Real h = H[i * n + i];
       const Real d = Lt[i * n + i];
-      if (!(d * d / (h > Real(0) ? h : Real(1)) > tol)) ok = 0;
+      if (!(d * d > tol * (h > Real(0) ? h : Real(1)))) ok = 0;  // d²/h > tol, no division
     }
-    if (t < T - 1) copy(sub_prev, tb.Hsub, n2);
+    tri_inverse<Real, NK>(Lit, Lt, n);
+    matvec<Real, NK>(zt, Lit, g, n, n);
+    if (t < T - 1 && !fixed_transition) copy(subT_prev, tb.HsubT, n2);
   }
 
   const std::size_t Tn = std::size_t(T) * n;
+  if (fixed_transition && T > 1) copy(subT_out, tb.HsubT, n2);
   if (failed_at >= 0) {
-    fill(L + std::size_t(failed_at) * n2, std::size_t(T - failed_at) * n2, nan);
-    if (T > 1) {
-      const int m_from = std::max(failed_at - 1, 0);
+    fill(Li + std::size_t(failed_at) * n2, std::size_t(T - failed_at) * n2, nan);
+    if (T > 1 && !fixed_transition) {
+      const int m_from = failed_at > 0 ? failed_at - 1 : 0;
       fill(M + std::size_t(m_from) * n2, std::size_t(T - 1 - m_from) * n2, nan);
     }
+    if (fixed_transition) fill(subT_out, n2, nan);
     fill(x, Tn, nan);
     return 0;
   }
-  back_substitute<Real, NK>(L, M, x, T, n);
+  FactorView<Real> F;
+  F.Li = Li;
+  F.M = M;
+  F.subT = fixed_transition ? subT_out : nullptr;
+  back_substitute<Real, NK>(F, x, T, n, tmp, tmp2);
   if (!ok) fill(x, Tn, nan);
   return ok;
 }
@@ -450,20 +506,49 @@ inline std::size_t accumulator_size(int n, int p) {
          std::size_t(p) + 8;
 }
 
+// Solves L Lᵀ v = v in place for two right-hand sides at once (interleaved,
+// so that the two dependency chains overlap).
 template <class Real, int NK>
-void gradients_one(const Trajectory<Real>& P, const Real* L, const Real* M, bool ok, const Real* x,
-                   const Real* xbar, Gradients<Real>& G, Real* ws, Real* u, double* acc, int* idx) {
+inline void spd_solve2(const Real* L, Real* a, Real* b, int n_) {
+  const int n = fixed<NK>(n_);
+  for (int i = 0; i < n; ++i) {
+    Real sa = a[i], sb = b[i];
+    for (int k = 0; k < i; ++k) {
+      sa -= L[i * n + k] * a[k];
+      sb -= L[i * n + k] * b[k];
+    }
+    const Real inv = Real(1) / L[i * n + i];
+    a[i] = sa * inv;
+    b[i] = sb * inv;
+  }
+  for (int i = n - 1; i >= 0; --i) {
+    const Real inv = Real(1) / L[i * n + i];
+    const Real ai = a[i] * inv, bi = b[i] * inv;
+    a[i] = ai;
+    b[i] = bi;
+    for (int k = 0; k < i; ++k) {
+      a[k] -= L[i * n + k] * ai;
+      b[k] -= L[i * n + k] * bi;
+    }
+  }
+}
+
+template <class Real, int NK>
+void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, const Real* x,
+                   const Real* xbar, Gradients<Real>& G, Real* ws, Real* u, double* acc, int* idx,
+                   PatternCache<Real>* cache) {
   const int T = P.T, n = fixed<NK>(P.n), p = P.p;
   const std::size_t n2 = std::size_t(n) * n, Tn = std::size_t(T) * n;
 
   // Assign accumulators to time-invariant fields; zero every destination.
   GradSink<Real>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
   const int steps[] = {T - 1, T - 1, T - 1, T, T, T, 1, 1};
+  auto blocks = [&](int f) { return sinks[f]->tv ? std::size_t(steps[f] > 0 ? steps[f] : 0) : 1; };
   double* next_acc = acc;
   for (int f = 0; f < 8; ++f) {
     GradSink<Real>& s = *sinks[f];
     if (!s.present()) continue;
-    fill(s.out, (s.tv ? std::size_t(std::max(steps[f], 0)) : 1) * s.item, Real(0));
+    fill(s.out, blocks(f) * s.item, Real(0));
     if (!s.tv) {
       s.acc = next_acc;
       next_acc += s.item;
@@ -472,28 +557,33 @@ void gradients_one(const Trajectory<Real>& P, const Real* L, const Real* M, bool
   }
   fill(G.y, std::size_t(T) * p, Real(0));
 
-  if (!ok) {
-    const Real nan = quiet_nan<Real>();
+  const Real nan = quiet_nan<Real>();
+  auto fail_all = [&]() {
     for (int f = 0; f < 8; ++f)
-      if (sinks[f]->present())
-        fill(sinks[f]->out, (sinks[f]->tv ? std::size_t(std::max(steps[f], 0)) : 1) * sinks[f]->item,
-             nan);
+      if (sinks[f]->present()) fill(sinks[f]->out, blocks(f) * sinks[f]->item, nan);
     fill(G.y, std::size_t(T) * p, nan);
+  };
+  if (!ok) {
+    fail_all();
     return;
   }
 
   Arena<Real> arena(ws);
   Real* Lq = arena.take(n2);
+  Real* Qinv = arena.take(n2);
   Real* Lr = arena.take(std::size_t(p) * p);
-  Real* Lr_full = arena.take(std::size_t(p) * p);
   Real* rho = arena.take(n);
   Real* phi = arena.take(n);
   Real* sigma = arena.take(p);
   Real* kappa = arena.take(p);
+  Real* ey = arena.take(p);
   Real* alpha = arena.take(n);
   Real* beta = arena.take(n);
+  Real* cs = arena.take(std::size_t(n > p ? n : p) + 1);  // Cholesky scratch
+  Real* tmp = arena.take(n);
+  Real* tmp2 = arena.take(n);
 
-  // Per-block destination pointers for step t.
+  // Per-block destination for step t.
   auto dst = [](GradSink<Real>& s, int t, auto&& fn) {
     if (!s.present()) return;
     if (s.tv)
@@ -502,40 +592,40 @@ void gradients_one(const Trajectory<Real>& P, const Real* L, const Real* M, bool
       fn(s.acc);
   };
 
-  const Real nan = quiet_nan<Real>();
-  bool fail = false;
+  // A fixed transition (A, Q and b all time-invariant): the transition
+  // gradients are Q⁻¹ times sums of outer products, so the loop only sums.
+  const bool raw_sums = !P.Q_tv && !P.A_tv && !(P.b != nullptr && P.b_tv);
+
+  // Time-invariant Q: use Q⁻¹ explicitly (matrix-vector products, no chains).
   if (T > 1 && !P.Q_tv) {
     sym_lower<Real, NK>(Lq, P.Q, n);
-    fail = !cholesky<Real, NK>(Lq, Lq, n);
-  }
-  bool full_cached = false;
-  if (!P.R_tv && p > 0) {
-    for (int i = 0; i < p; ++i) idx[i] = i;
-    full_cached = observed_cov_factor(Lr_full, P.R, p, idx, p);
+    if (!cholesky<Real, NK>(Lq, Lq, n, cs)) {
+      fail_all();
+      return;
+    }
+    // Qinv = Lq⁻ᵀLq⁻¹ column by column: solve Lq Lqᵀ q_j = e_j.
+    for (int j = 0; j < n; ++j) {
+      for (int i = 0; i < n; ++i) rho[i] = Real(i == j);
+      lsolve_vec<Real, NK>(Lq, rho, rho, n);
+      ltsolve_vec_inplace<Real, NK>(Lq, rho, n);
+      for (int i = 0; i < n; ++i) Qinv[i * n + j] = rho[i];
+    }
   }
 
   // u = H⁻¹ x̄: forward sweep now, back sweep fused with the gradient terms.
   copy(u, xbar, Tn);
-  forward_substitute<Real, NK>(L, M, u, T, n);
-  for (int t = T - 1; t >= 0 && !fail; --t) {
+  forward_substitute<Real, NK>(F, u, T, n, tmp, tmp2);
+  for (int t = T - 1; t >= 0; --t) {
     const bool last = t == T - 1;
     Real* ut = u + std::size_t(t) * n;
     const Real* xt = x + std::size_t(t) * n;
-    back_step<Real, NK>(L + std::size_t(t) * n2, last ? nullptr : M + std::size_t(t) * n2,
-                        last ? nullptr : ut + n, ut, n);
+    back_step<Real, NK>(F, t, last ? nullptr : ut + n, ut, n, tmp, tmp2);
 
     // Transition t: needs u_t, u_{t+1}, x_t, x_{t+1}.
     if (!last) {
       const Real* At = P.At(t);
       const Real* un = ut + n;
       const Real* xn = xt + n;
-      if (P.Q_tv) {
-        sym_lower<Real, NK>(Lq, P.Qt(t), n);
-        if (!cholesky<Real, NK>(Lq, Lq, n)) {
-          fail = true;
-          break;
-        }
-      }
       const Real* bt = P.b != nullptr ? P.bt(t) : nullptr;
       for (int i = 0; i < n; ++i) {
         Real ax = 0, au = 0;
@@ -543,86 +633,146 @@ void gradients_one(const Trajectory<Real>& P, const Real* L, const Real* M, bool
           ax += At[i * n + j] * xt[j];
           au += At[i * n + j] * ut[j];
         }
-        rho[i] = xn[i] - ax - (bt ? bt[i] : Real(0));
-        phi[i] = un[i] - au;
+        alpha[i] = xn[i] - ax - (bt ? bt[i] : Real(0));  // r_t
+        beta[i] = un[i] - au;                            // δ_t
       }
-      lsolve_vec<Real, NK>(Lq, rho, rho, n);
-      ltsolve_vec_inplace<Real, NK>(Lq, rho, n);
-      lsolve_vec<Real, NK>(Lq, phi, phi, n);
-      ltsolve_vec_inplace<Real, NK>(Lq, phi, n);
-      dst(G.A, t, [&](auto* gA) {
-        add_outer(gA, rho, ut, n, n, Real(1));
-        add_outer(gA, phi, xt, n, n, Real(1));
-      });
-      dst(G.Q, t, [&](auto* gQ) { add_sym_outer(gQ, phi, rho, n, Real(1)); });
-      dst(G.b, t, [&](auto* gb) {
-        for (int i = 0; i < n; ++i) gb[i] += phi[i];
-      });
+      if (raw_sums) {
+        // Ā = Q⁻¹Σ(r uᵀ + δ xᵀ), Q̄ = sym(Q⁻¹(Σ δ rᵀ)Q⁻¹), b̄ = Q⁻¹Σ δ: sums now,
+        // Q⁻¹ once at the end.
+        for (int i = 0; i < n; ++i) {
+          const Real ri = alpha[i], di = beta[i];
+          if (G.A.present()) {
+            double* row = G.A.acc + std::size_t(i) * n;
+            for (int j = 0; j < n; ++j) row[j] += ri * ut[j] + di * xt[j];
+          }
+          if (G.Q.present()) {
+            double* row = G.Q.acc + std::size_t(i) * n;
+            for (int j = 0; j < n; ++j) row[j] += di * alpha[j];
+          }
+          if (G.b.present()) G.b.acc[i] += di;
+        }
+      } else {
+        if (P.Q_tv) {
+          sym_lower<Real, NK>(Lq, P.Qt(t), n);
+          if (!cholesky<Real, NK>(Lq, Lq, n, cs)) {
+            fail_all();
+            return;
+          }
+          copy(rho, alpha, n);
+          copy(phi, beta, n);
+          spd_solve2<Real, NK>(Lq, rho, phi, n);
+        } else {
+          matvec<Real, NK>(rho, Qinv, alpha, n, n);
+          matvec<Real, NK>(phi, Qinv, beta, n, n);
+        }
+        dst(G.A, t, [&](auto* gA) {
+          add_outer(gA, rho, ut, n, n, Real(1));
+          add_outer(gA, phi, xt, n, n, Real(1));
+        });
+        // Time-invariant Q̄ accumulates φρᵀ and is symmetrised once at the end.
+        if (G.Q.present()) {
+          if (G.Q.tv)
+            add_sym_outer(G.Q.out + std::size_t(t) * n2, phi, rho, n, Real(1));
+          else
+            add_outer(G.Q.acc, phi, rho, n, n, Real(1));
+        }
+        dst(G.b, t, [&](auto* gb) {
+          for (int i = 0; i < n; ++i) gb[i] += phi[i];
+        });
+      }
     }
 
-    // Measurement t.
-    const int k = observed(P.w + std::size_t(t) * p, p, idx);
-    if (k > 0) {
-      const Real* Ct = P.Ct(t);
-      const Real* yt = P.y + std::size_t(t) * p;
-      const Real* dt = P.d != nullptr ? P.dt(t) : nullptr;
-      const Real* Lk = Lr_full;
-      if (!(k == p && full_cached)) {
-        if (!observed_cov_factor(Lr, P.Rt(t), p, idx, k)) {
-          fail = true;
-          break;
-        }
-        Lk = Lr;
+    // Measurement t: σ = S e (e the observed residual), κ = S C u.
+    const Real* yt = P.y + std::size_t(t) * p;
+    const Real* dt = P.d != nullptr ? P.dt(t) : nullptr;
+    const PatternBlocks<Real>* pb =
+        cache != nullptr ? cache->template lookup<NK>(P.w + std::size_t(t) * p) : nullptr;
+    int k = 0;
+    const int* K = idx;
+    if (pb != nullptr) {
+      if (!pb->ok) {
+        fail_all();
+        return;
       }
+      k = pb->k;
+      K = pb->idx;
+      // κ = F u and σ = R_KK⁻¹(y_K − d_K) − F x, with F = R_KK⁻¹C_K.
+      for (int a = 0; a < k; ++a) ey[a] = yt[K[a]] - (dt ? dt[K[a]] : Real(0));
       for (int a = 0; a < k; ++a) {
-        const Real* Crow = Ct + std::size_t(idx[a]) * n;
-        Real sx = 0, su = 0;
+        const Real* Fa = pb->F + std::size_t(a) * n;
+        const Real* Ra = pb->Rinv + std::size_t(a) * k;
+        Real su = 0, sx = 0, sy = 0;
         for (int j = 0; j < n; ++j) {
-          sx += Crow[j] * xt[j];
-          su += Crow[j] * ut[j];
+          su += Fa[j] * ut[j];
+          sx += Fa[j] * xt[j];
         }
-        sigma[a] = yt[idx[a]] - sx - (dt ? dt[idx[a]] : Real(0));
+        for (int b = 0; b < k; ++b) sy += Ra[b] * ey[b];
         kappa[a] = su;
+        sigma[a] = sy - sx;
       }
-      lsolve_vec<Real, 0>(Lk, sigma, sigma, k);
-      ltsolve_vec_inplace<Real, 0>(Lk, sigma, k);
-      lsolve_vec<Real, 0>(Lk, kappa, kappa, k);
-      ltsolve_vec_inplace<Real, 0>(Lk, kappa, k);
+    } else {
+      k = observed(P.w + std::size_t(t) * p, p, idx);
+      if (k > 0) {
+        const Real* Ct = P.Ct(t);
+        if (!observed_cov_factor(Lr, P.Rt(t), p, idx, k, cs)) {
+          fail_all();
+          return;
+        }
+        for (int a = 0; a < k; ++a) {
+          const Real* Crow = Ct + std::size_t(idx[a]) * n;
+          Real sx = 0, su = 0;
+          for (int j = 0; j < n; ++j) {
+            sx += Crow[j] * xt[j];
+            su += Crow[j] * ut[j];
+          }
+          sigma[a] = yt[idx[a]] - sx - (dt ? dt[idx[a]] : Real(0));
+          kappa[a] = su;
+        }
+        spd_solve2<Real, 0>(Lr, sigma, kappa, k);
+      }
+    }
+    if (k > 0) {
       Real* gy = G.y + std::size_t(t) * p;
-      for (int a = 0; a < k; ++a) gy[idx[a]] = kappa[a];
+      for (int a = 0; a < k; ++a) gy[K[a]] = kappa[a];
       dst(G.C, t, [&](auto* gC) {
         for (int a = 0; a < k; ++a) {
-          auto* row = gC + std::size_t(idx[a]) * n;
+          auto* row = gC + std::size_t(K[a]) * n;
           const Real sa = sigma[a], ka = kappa[a];
           for (int j = 0; j < n; ++j) row[j] += sa * ut[j] - ka * xt[j];
         }
       });
-      dst(G.R, t, [&](auto* gR) {
-        for (int a = 0; a < k; ++a)
-          for (int c = 0; c < k; ++c)
-            gR[idx[a] * p + idx[c]] -= Real(0.5) * (kappa[a] * sigma[c] + sigma[a] * kappa[c]);
-      });
+      if (G.R.present()) {
+        if (G.R.tv) {
+          Real* gR = G.R.out + std::size_t(t) * p * p;
+          for (int a = 0; a < k; ++a)
+            for (int c = 0; c < k; ++c)
+              gR[K[a] * p + K[c]] -= Real(0.5) * (kappa[a] * sigma[c] + sigma[a] * kappa[c]);
+        } else {  // −κσᵀ now, symmetrised at the end
+          for (int a = 0; a < k; ++a) {
+            double* row = G.R.acc + std::size_t(K[a]) * p;
+            const Real ka = kappa[a];
+            for (int c = 0; c < k; ++c) row[K[c]] -= ka * sigma[c];
+          }
+        }
+      }
       dst(G.d, t, [&](auto* gd) {
-        for (int a = 0; a < k; ++a) gd[idx[a]] -= kappa[a];
+        for (int a = 0; a < k; ++a) gd[K[a]] -= kappa[a];
       });
     }
 
-    // Prior on x_0.
+    // Prior on x_0: α = P_0⁻¹u_0, β = P_0⁻¹(x_0 − m_0).
     if (t == 0 && P.P0 != nullptr) {
       Real* Lp = Lq;  // Lq is no longer needed at t = 0
       sym_lower<Real, NK>(Lp, P.P0, n);
-      if (!cholesky<Real, NK>(Lp, Lp, n)) {
-        fail = true;
-        break;
+      if (!cholesky<Real, NK>(Lp, Lp, n, cs)) {
+        fail_all();
+        return;
       }
       for (int i = 0; i < n; ++i) {
         alpha[i] = ut[i];
         beta[i] = xt[i] - (P.m0 != nullptr ? P.m0[i] : Real(0));
       }
-      lsolve_vec<Real, NK>(Lp, alpha, alpha, n);
-      ltsolve_vec_inplace<Real, NK>(Lp, alpha, n);
-      lsolve_vec<Real, NK>(Lp, beta, beta, n);
-      ltsolve_vec_inplace<Real, NK>(Lp, beta, n);
+      spd_solve2<Real, NK>(Lp, alpha, beta, n);
       dst(G.m0, 0, [&](auto* gm) {
         for (int i = 0; i < n; ++i) gm[i] += alpha[i];
       });
@@ -630,16 +780,48 @@ void gradients_one(const Trajectory<Real>& P, const Real* L, const Real* M, bool
     }
   }
 
+  if (raw_sums && T > 1) {
+    // Apply Q⁻¹ to the raw transition sums (in double).
+    std::vector<double> tmpm(n2);
+    auto left = [&](double* S) {  // S = Q⁻¹ S
+      for (int i = 0; i < n; ++i)
+        for (int j = 0; j < n; ++j) {
+          double v = 0;
+          for (int r = 0; r < n; ++r) v += double(Qinv[i * n + r]) * S[r * n + j];
+          tmpm[i * n + j] = v;
+        }
+      std::copy(tmpm.begin(), tmpm.end(), S);
+    };
+    if (G.A.present()) left(G.A.acc);
+    if (G.Q.present()) {  // Q⁻¹ S Q⁻¹ = Q⁻¹ (Q⁻¹ Sᵀ)ᵀ
+      double* S = G.Q.acc;
+      left(S);
+      for (int i = 0; i < n; ++i)
+        for (int j = i + 1; j < n; ++j) std::swap(S[i * n + j], S[j * n + i]);
+      left(S);
+    }
+    if (G.b.present()) {
+      std::vector<double> v(G.b.acc, G.b.acc + n);
+      for (int i = 0; i < n; ++i) {
+        double s = 0;
+        for (int r = 0; r < n; ++r) s += double(Qinv[i * n + r]) * v[r];
+        G.b.acc[i] = s;
+      }
+    }
+  }
+
   for (int f = 0; f < 8; ++f) {
     GradSink<Real>& s = *sinks[f];
-    if (!s.present()) continue;
-    if (fail) {
-      fill(s.out, (s.tv ? std::size_t(std::max(steps[f], 0)) : 1) * s.item, nan);
-    } else if (!s.tv) {
+    if (!s.present() || s.tv) continue;
+    if (f == 1 || f == 4) {  // Q̄, R̄: symmetric part of the accumulated sum
+      const int r = f == 1 ? n : p;
+      for (int i = 0; i < r; ++i)
+        for (int j = 0; j < r; ++j)
+          s.out[i * r + j] = static_cast<Real>(0.5 * (s.acc[i * r + j] + s.acc[j * r + i]));
+    } else {
       for (std::size_t i = 0; i < s.item; ++i) s.out[i] = static_cast<Real>(s.acc[i]);
     }
   }
-  if (fail) fill(G.y, std::size_t(T) * p, nan);
 }
 
 }  // namespace kalmax_cpu

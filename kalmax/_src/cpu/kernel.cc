@@ -1,0 +1,553 @@
+// XLA FFI handlers (CPU) for the smoothing primitive of kalmax.
+//
+// Three targets, each with one handler templated over the floating-point type
+// and dispatched on the buffers' dtype at run time (float32, float64):
+//
+//   kalmax_cpu_forward    (A, Q, b, C, R, d, m0, P0, y, w) -> (x, L, M, subT, ok)
+//   kalmax_cpu_solve      (L, M, subT, ok, v) -> H⁻¹ v
+//   kalmax_cpu_gradients  (L, M, subT, ok, x, x̄, A, Q, b, C, R, d, m0, P0, y, w)
+//                         -> (Ā, Q̄, b̄, C̄, R̄, d̄, m̄0, P̄0, ȳ)
+//
+// The factor (Li, M, subT, ok): Li (T, n, n) the inverses L_t⁻¹ of the
+// diagonal blocks of the block Cholesky factor; when A or Q
+// varies in time, M (T-1, n, n) holds the sub-diagonal blocks; when both are
+// time-invariant M has shape (0, n, n) and subT (n, n) holds the one block
+// H_{t+1,t}ᵀ from which every M_t follows (see FactorView in smoother.h).
+//
+// Shapes describe everything: a model field is time-invariant or per step
+// according to its rank, and an absent optional field (b, d, m0, P0) is a
+// zero-size array of shape (0,). Any number of leading batch dimensions is
+// accepted (this is how jax.vmap reaches us with vmap_method="expand_dims"):
+// the batch shape is read from the first output, and every input's leading
+// dimension is either that size or 1 (broadcast, never copied).
+//
+// Errors in shapes or dtypes come back through the FFI error channel.
+// Numerical failure (a covariance or a pivot that is not positive) is not an
+// error: the affected trajectory gets ok = 0 and NaN results.
+
+#include <sys/mman.h>
+
+#include <cstdint>
+#include <memory>
+#include <string>
+#include <type_traits>
+#include <vector>
+
+#include "smoother.h"
+#include "xla/ffi/api/ffi.h"
+
+namespace ffi = xla::ffi;
+
+namespace kalmax_cpu {
+namespace {
+
+constexpr int kMaxBatchRank = 16;
+
+struct BatchShape {
+  int rank = 0;
+  int64_t dims[kMaxBatchRank] = {};
+  int64_t count = 1;
+};
+
+// Where one operand's slice for a batch index starts.
+struct Operand {
+  const void* data = nullptr;
+  std::vector<int64_t> core;  // dimensions after the batch dimensions
+  int64_t core_size = 1;
+  int64_t strides[kMaxBatchRank] = {};  // in elements; 0 where broadcast
+
+  int64_t offset(const BatchShape& bs, int64_t flat) const {
+    int64_t off = 0;
+    for (int j = bs.rank - 1; j >= 0; --j) {
+      const int64_t i = flat % bs.dims[j];
+      flat /= bs.dims[j];
+      off += i * strides[j];
+    }
+    return off;
+  }
+};
+
+std::string shape_str(const std::vector<int64_t>& dims) {
+  std::string s = "(";
+  for (size_t i = 0; i < dims.size(); ++i) s += (i ? ", " : "") + std::to_string(dims[i]);
+  return s + (dims.size() == 1 ? ",)" : ")");
+}
+
+ffi::Error batch_from_output(ffi::AnyBuffer::Dimensions dims, int core_rank, BatchShape* bs) {
+  if (static_cast<int>(dims.size()) < core_rank ||
+      static_cast<int>(dims.size()) - core_rank > kMaxBatchRank)
+    return ffi::Error::InvalidArgument("kalmax_cpu: unexpected output rank");
+  bs->rank = static_cast<int>(dims.size()) - core_rank;
+  bs->count = 1;
+  for (int j = 0; j < bs->rank; ++j) {
+    bs->dims[j] = dims[j];
+    bs->count *= dims[j];
+  }
+  return ffi::Error::Success();
+}
+
+ffi::Error describe(const void* data, ffi::AnyBuffer::Dimensions dims, const char* name,
+                    const BatchShape& bs, Operand* op) {
+  const int rank = static_cast<int>(dims.size());
+  if (rank < bs.rank)
+    return ffi::Error::InvalidArgument(std::string("kalmax_cpu: ") + name +
+                                       " lacks the batch dimensions");
+  op->data = data;
+  op->core.assign(dims.begin() + bs.rank, dims.end());
+  op->core_size = 1;
+  for (int64_t c : op->core) op->core_size *= c;
+  int64_t stride = op->core_size;
+  for (int j = bs.rank - 1; j >= 0; --j) {
+    if (dims[j] != bs.dims[j] && dims[j] != 1)
+      return ffi::Error::InvalidArgument(std::string("kalmax_cpu: batch dimension ") +
+                                         std::to_string(j) + " of " + name + " is " +
+                                         std::to_string(dims[j]) + ", expected " +
+                                         std::to_string(bs.dims[j]) + " or 1");
+    op->strides[j] = dims[j] == 1 ? 0 : stride;
+    stride *= dims[j];
+  }
+  return ffi::Error::Success();
+}
+
+ffi::Error describe(const ffi::AnyBuffer& buf, const char* name, const BatchShape& bs,
+                    Operand* op) {
+  return describe(buf.untyped_data(), buf.dimensions(), name, bs, op);
+}
+
+// A model field: invariant core shape `inv`, per-step shape `var`; optional
+// fields may be absent, given as shape (0,).
+enum class Kind { kAbsent, kInvariant, kVarying };
+
+ffi::Error classify(const Operand& op, const char* name, const std::vector<int64_t>& inv,
+                    const std::vector<int64_t>& var, bool optional, Kind* kind) {
+  if (optional && op.core == std::vector<int64_t>{0}) {
+    *kind = Kind::kAbsent;
+  } else if (op.core == inv) {
+    *kind = Kind::kInvariant;
+  } else if (!var.empty() && op.core == var) {
+    *kind = Kind::kVarying;
+  } else {
+    std::string expected = shape_str(inv);
+    if (!var.empty()) expected += " or " + shape_str(var);
+    return ffi::Error::InvalidArgument(std::string("kalmax_cpu: ") + name + " has shape " +
+                                       shape_str(op.core) + ", expected " + expected);
+  }
+  return ffi::Error::Success();
+}
+
+// The ten model/data operands shared by the forward and gradient handlers.
+struct ModelOperands {
+  Operand A, Q, b, C, R, d, m0, P0, y, w;
+  Kind kA, kQ, kb, kC, kR, kd, km0, kP0;
+  int T = 0, n = 0, p = 0;
+};
+
+ffi::Error describe_model(const ffi::AnyBuffer* in, const BatchShape& bs, int T, int n,
+                          ModelOperands* mo) {
+  const char* names[] = {"A", "Q", "b", "C", "R", "d", "x0_mean", "x0_cov", "y", "w"};
+  Operand* ops[] = {&mo->A, &mo->Q, &mo->b, &mo->C, &mo->R, &mo->d, &mo->m0, &mo->P0, &mo->y, &mo->w};
+  const ffi::DataType dt = in[8].element_type();
+  for (int i = 0; i < 10; ++i) {
+    if (in[i].element_type() != dt)
+      return ffi::Error::InvalidArgument(std::string("kalmax_cpu: ") + names[i] +
+                                         " has a different dtype from y");
+    if (ffi::Error e = describe(in[i], names[i], bs, ops[i]); e.failure()) return e;
+  }
+  if (mo->y.core.size() != 2 || mo->y.core[0] != T)
+    return ffi::Error::InvalidArgument("kalmax_cpu: y must have shape (T, p) with T = " +
+                                       std::to_string(T));
+  const int64_t p = mo->y.core[1];
+  if (mo->w.core != mo->y.core)
+    return ffi::Error::InvalidArgument("kalmax_cpu: w must have the shape of y");
+  const int64_t N = n, P = p, T1 = T - 1;
+  ffi::Error e = ffi::Error::Success();
+  if ((e = classify(mo->A, "A", {N, N}, {T1, N, N}, false, &mo->kA)).failure()) return e;
+  if ((e = classify(mo->Q, "Q", {N, N}, {T1, N, N}, false, &mo->kQ)).failure()) return e;
+  if ((e = classify(mo->b, "b", {N}, {T1, N}, true, &mo->kb)).failure()) return e;
+  if ((e = classify(mo->C, "C", {P, N}, {T, P, N}, false, &mo->kC)).failure()) return e;
+  if ((e = classify(mo->R, "R", {P, P}, {T, P, P}, false, &mo->kR)).failure()) return e;
+  if ((e = classify(mo->d, "d", {P}, {T, P}, true, &mo->kd)).failure()) return e;
+  if ((e = classify(mo->m0, "x0_mean", {N}, {}, true, &mo->km0)).failure()) return e;
+  if ((e = classify(mo->P0, "x0_cov", {N, N}, {}, true, &mo->kP0)).failure()) return e;
+  mo->T = T;
+  mo->n = n;
+  mo->p = static_cast<int>(p);
+  return ffi::Error::Success();
+}
+
+template <class Real>
+const Real* at(const Operand& op, const BatchShape& bs, int64_t b) {
+  return static_cast<const Real*>(op.data) + op.offset(bs, b);
+}
+
+template <class Real>
+Trajectory<Real> trajectory(const ModelOperands& mo, const BatchShape& bs, int64_t b) {
+  Trajectory<Real> P;
+  P.T = mo.T;
+  P.n = mo.n;
+  P.p = mo.p;
+  auto field = [&](const Operand& op, Kind k) -> const Real* {
+    return k == Kind::kAbsent ? nullptr : at<Real>(op, bs, b);
+  };
+  P.A = field(mo.A, mo.kA);
+  P.Q = field(mo.Q, mo.kQ);
+  P.b = field(mo.b, mo.kb);
+  P.C = field(mo.C, mo.kC);
+  P.R = field(mo.R, mo.kR);
+  P.d = field(mo.d, mo.kd);
+  P.m0 = field(mo.m0, mo.km0);
+  P.P0 = field(mo.P0, mo.kP0);
+  P.y = at<Real>(mo.y, bs, b);
+  P.w = at<Real>(mo.w, bs, b);
+  P.A_tv = mo.kA == Kind::kVarying;
+  P.Q_tv = mo.kQ == Kind::kVarying;
+  P.b_tv = mo.kb == Kind::kVarying;
+  P.C_tv = mo.kC == Kind::kVarying;
+  P.R_tv = mo.kR == Kind::kVarying;
+  P.d_tv = mo.kd == Kind::kVarying;
+  return P;
+}
+
+// Pattern caches for a batch: only when C and R are time-invariant, and
+// rebuilt only when a trajectory's C or R differ from the previous one's
+// (a model shared by the whole batch is cached once).
+template <class Real>
+class PatternCaches {
+ public:
+  explicit PatternCaches(const ModelOperands& mo)
+      : usable_(mo.kC == Kind::kInvariant && mo.kR == Kind::kInvariant) {}
+
+  PatternCache<Real>* get(const Trajectory<Real>& P) {
+    if (!usable_) return nullptr;
+    if (!cache_ || P.C != C_ || P.R != R_) {
+      cache_.reset(new PatternCache<Real>(P.C, P.R, P.n, P.p));
+      C_ = P.C;
+      R_ = P.R;
+    }
+    return cache_.get();
+  }
+
+ private:
+  bool usable_;
+  std::unique_ptr<PatternCache<Real>> cache_;
+  const Real* C_ = nullptr;
+  const Real* R_ = nullptr;
+};
+
+// Output buffers are fresh memory that the first write faults in, one 4 KiB
+// page at a time: at T = 10⁵ the factor alone is ~20,000 faults, a sizeable
+// share of a call. Where the system leaves transparent huge pages to
+// madvise, asking for them on the large outputs removes most of that cost.
+// Purely advisory: failure (or no THP support) changes nothing.
+void advise_huge_pages(void* data, std::size_t bytes) {
+#ifdef MADV_HUGEPAGE
+  constexpr std::uintptr_t kHuge = std::uintptr_t(2) << 20;
+  if (bytes < 4 * kHuge) return;
+  const std::uintptr_t begin = (reinterpret_cast<std::uintptr_t>(data) + kHuge - 1) & ~(kHuge - 1);
+  const std::uintptr_t end = (reinterpret_cast<std::uintptr_t>(data) + bytes) & ~(kHuge - 1);
+  if (end > begin) madvise(reinterpret_cast<void*>(begin), end - begin, MADV_HUGEPAGE);
+#else
+  (void)data;
+  (void)bytes;
+#endif
+}
+
+template <class Buf>
+void advise_huge_pages(Buf& buf) {
+  advise_huge_pages(buf->untyped_data(), buf->size_bytes());
+}
+
+// Calls f(std::integral_constant<int, K>) with K = n for the specialised state
+// sizes and K = 0 (general size) otherwise.
+template <class F>
+ffi::Error with_state_size(int n, F&& f) {
+  switch (n) {
+#define KALMAX_CASE(K) \
+  case K:              \
+    return f(std::integral_constant<int, K>{});
+    KALMAX_CASE(1)
+    KALMAX_CASE(2)
+    KALMAX_CASE(3)
+    KALMAX_CASE(4)
+    KALMAX_CASE(5)
+    KALMAX_CASE(6)
+    KALMAX_CASE(8)
+    KALMAX_CASE(10)
+    KALMAX_CASE(12)
+    KALMAX_CASE(16)
+#undef KALMAX_CASE
+    default:
+      return f(std::integral_constant<int, 0>{});
+  }
+}
+
+template <class F>
+ffi::Error with_real_type(ffi::DataType dt, F&& f) {
+  switch (dt) {
+    case ffi::DataType::F32:
+      return f(float{});
+    case ffi::DataType::F64:
+      return f(double{});
+    default:
+      return ffi::Error::InvalidArgument("kalmax_cpu: only float32 and float64 are supported");
+  }
+}
+
+// ---------------------------------------------------------------------------
+
+ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi::AnyBuffer C,
+                       ffi::AnyBuffer R, ffi::AnyBuffer d, ffi::AnyBuffer m0, ffi::AnyBuffer P0,
+                       ffi::AnyBuffer y, ffi::AnyBuffer w, ffi::Result<ffi::AnyBuffer> x,
+                       ffi::Result<ffi::AnyBuffer> L, ffi::Result<ffi::AnyBuffer> M,
+                       ffi::Result<ffi::AnyBuffer> subT, ffi::Result<ffi::Buffer<ffi::S32>> ok) {
+  BatchShape bs;
+  if (ffi::Error e = batch_from_output(x->dimensions(), 2, &bs); e.failure()) return e;
+  const auto xd = x->dimensions();
+  const int T = static_cast<int>(xd[xd.size() - 2]);
+  const int n = static_cast<int>(xd[xd.size() - 1]);
+  const ffi::AnyBuffer in[] = {A, Q, b, C, R, d, m0, P0, y, w};
+  ModelOperands mo;
+  if (ffi::Error e = describe_model(in, bs, T, n, &mo); e.failure()) return e;
+  if (x->element_type() != y.element_type() || L->element_type() != y.element_type() ||
+      M->element_type() != y.element_type() || subT->element_type() != y.element_type())
+    return ffi::Error::InvalidArgument("kalmax_cpu: outputs must have the dtype of y");
+  const bool compact = mo.kA == Kind::kInvariant && mo.kQ == Kind::kInvariant;
+  const int64_t m_blocks = compact ? 0 : (T > 0 ? T - 1 : 0);
+  if (static_cast<int64_t>(L->element_count()) != bs.count * T * n * n ||
+      static_cast<int64_t>(M->element_count()) != bs.count * m_blocks * n * n ||
+      static_cast<int64_t>(subT->element_count()) != bs.count * n * n ||
+      static_cast<int64_t>(ok->element_count()) != bs.count)
+    return ffi::Error::InvalidArgument("kalmax_cpu: factor outputs have unexpected sizes");
+
+  advise_huge_pages(x);
+  advise_huge_pages(L);
+  advise_huge_pages(M);
+  return with_real_type(y.element_type(), [&](auto real) {
+    using Real = decltype(real);
+    return with_state_size(n, [&](auto nk) {
+      constexpr int NK = decltype(nk)::value;
+      const int p = mo.p;
+      std::vector<Real> ws(workspace_reals(n, p));
+      std::vector<int> idx(p + 1);
+      const std::size_t n2 = std::size_t(n) * n;
+      Real* xo = static_cast<Real*>(x->untyped_data());
+      Real* Lo = static_cast<Real*>(L->untyped_data());
+      Real* Mo = static_cast<Real*>(M->untyped_data());
+      Real* So = static_cast<Real*>(subT->untyped_data());
+      int32_t* oko = ok->typed_data();
+      PatternCaches<Real> caches(mo);
+      for (int64_t bi = 0; bi < bs.count; ++bi) {
+        const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
+        oko[bi] = forward_one<Real, NK>(P, xo + bi * std::size_t(T) * n, Lo + bi * std::size_t(T) * n2,
+                                        Mo + bi * std::size_t(m_blocks) * n2, So + bi * n2,
+                                        ws.data(), idx.data(), caches.get(P));
+      }
+      return ffi::Error::Success();
+    });
+  });
+}
+
+// The factor operands (L, M, subT, ok) described for a batch.
+struct FactorOperands {
+  Operand L, M, subT, ok;
+  bool compact = false;
+
+  template <class Real>
+  FactorView<Real> view(const BatchShape& bs, int64_t b) const {
+    FactorView<Real> F;
+    F.Li = static_cast<const Real*>(L.data) + L.offset(bs, b);
+    F.M = static_cast<const Real*>(M.data) + M.offset(bs, b);
+    F.subT = compact ? static_cast<const Real*>(subT.data) + subT.offset(bs, b) : nullptr;
+    return F;
+  }
+
+  bool ok_at(const BatchShape& bs, int64_t b) const {
+    return *(static_cast<const int32_t*>(ok.data) + ok.offset(bs, b)) != 0;
+  }
+};
+
+ffi::Error describe_factor(const ffi::AnyBuffer& L, const ffi::AnyBuffer& M, const ffi::AnyBuffer& subT,
+                           const ffi::Buffer<ffi::S32>& ok, const BatchShape& bs, int T, int n,
+                           ffi::DataType dt, FactorOperands* fo) {
+  if (ffi::Error e = describe(L, "L", bs, &fo->L); e.failure()) return e;
+  if (ffi::Error e = describe(M, "M", bs, &fo->M); e.failure()) return e;
+  if (ffi::Error e = describe(subT, "subT", bs, &fo->subT); e.failure()) return e;
+  if (ffi::Error e = describe(ok.untyped_data(), ok.dimensions(), "ok", bs, &fo->ok); e.failure())
+    return e;
+  const int64_t N = n, T1 = T > 0 ? T - 1 : 0;
+  fo->compact = fo->M.core.size() == 3 && fo->M.core[0] == 0;
+  if (fo->L.core != std::vector<int64_t>{T, N, N} ||
+      (!fo->compact && fo->M.core != std::vector<int64_t>{T1, N, N}) ||
+      fo->subT.core != std::vector<int64_t>{N, N} || !fo->ok.core.empty())
+    return ffi::Error::InvalidArgument("kalmax_cpu: factor operands have inconsistent shapes");
+  if (L.element_type() != dt || M.element_type() != dt || subT.element_type() != dt)
+    return ffi::Error::InvalidArgument("kalmax_cpu: factor operands must share one dtype");
+  return ffi::Error::Success();
+}
+
+ffi::Error SolveImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT,
+                     ffi::Buffer<ffi::S32> ok, ffi::AnyBuffer v, ffi::Result<ffi::AnyBuffer> x) {
+  BatchShape bs;
+  if (ffi::Error e = batch_from_output(x->dimensions(), 2, &bs); e.failure()) return e;
+  const auto xd = x->dimensions();
+  const int T = static_cast<int>(xd[xd.size() - 2]);
+  const int n = static_cast<int>(xd[xd.size() - 1]);
+  FactorOperands fo;
+  if (ffi::Error e = describe_factor(L, M, subT, ok, bs, T, n, x->element_type(), &fo); e.failure())
+    return e;
+  Operand oV;
+  if (ffi::Error e = describe(v, "v", bs, &oV); e.failure()) return e;
+  if (oV.core != std::vector<int64_t>{T, n} || v.element_type() != x->element_type())
+    return ffi::Error::InvalidArgument("kalmax_cpu: v must have the shape and dtype of the result");
+  advise_huge_pages(x);
+  return with_real_type(x->element_type(), [&](auto real) {
+    using Real = decltype(real);
+    return with_state_size(n, [&](auto nk) {
+      constexpr int NK = decltype(nk)::value;
+      Real* xo = static_cast<Real*>(x->untyped_data());
+      std::vector<Real> tmp(2 * n + 2);
+      for (int64_t bi = 0; bi < bs.count; ++bi)
+        solve_one<Real, NK>(fo.view<Real>(bs, bi), fo.ok_at(bs, bi), at<Real>(oV, bs, bi),
+                            xo + bi * std::size_t(T) * n, T, n, tmp.data(), tmp.data() + n + 1);
+      return ffi::Error::Success();
+    });
+  });
+}
+
+ffi::Error GradientsImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT,
+                         ffi::Buffer<ffi::S32> ok, ffi::AnyBuffer x, ffi::AnyBuffer xbar, ffi::AnyBuffer A, ffi::AnyBuffer Q,
+                         ffi::AnyBuffer b, ffi::AnyBuffer C, ffi::AnyBuffer R, ffi::AnyBuffer d,
+                         ffi::AnyBuffer m0, ffi::AnyBuffer P0, ffi::AnyBuffer y, ffi::AnyBuffer w,
+                         ffi::Result<ffi::AnyBuffer> gA, ffi::Result<ffi::AnyBuffer> gQ,
+                         ffi::Result<ffi::AnyBuffer> gb, ffi::Result<ffi::AnyBuffer> gC,
+                         ffi::Result<ffi::AnyBuffer> gR, ffi::Result<ffi::AnyBuffer> gd,
+                         ffi::Result<ffi::AnyBuffer> gm0, ffi::Result<ffi::AnyBuffer> gP0,
+                         ffi::Result<ffi::AnyBuffer> gy) {
+  BatchShape bs;
+  if (ffi::Error e = batch_from_output(gy->dimensions(), 2, &bs); e.failure()) return e;
+  Operand oX, oXb;
+  if (ffi::Error e = describe(x, "x", bs, &oX); e.failure()) return e;
+  if (ffi::Error e = describe(xbar, "x_bar", bs, &oXb); e.failure()) return e;
+  if (oX.core.size() != 2 || oXb.core != oX.core)
+    return ffi::Error::InvalidArgument("kalmax_cpu: x and x_bar must have shape (T, n)");
+  const int T = static_cast<int>(oX.core[0]);
+  const int n = static_cast<int>(oX.core[1]);
+  FactorOperands fo;
+  if (ffi::Error e = describe_factor(L, M, subT, ok, bs, T, n, y.element_type(), &fo); e.failure())
+    return e;
+  const ffi::AnyBuffer in[] = {A, Q, b, C, R, d, m0, P0, y, w};
+  ModelOperands mo;
+  if (ffi::Error e = describe_model(in, bs, T, n, &mo); e.failure()) return e;
+  if (fo.compact != (mo.kA == Kind::kInvariant && mo.kQ == Kind::kInvariant) && T > 1)
+    return ffi::Error::InvalidArgument("kalmax_cpu: factor form does not match the model");
+  if (x.element_type() != y.element_type() || xbar.element_type() != y.element_type())
+    return ffi::Error::InvalidArgument("kalmax_cpu: operands must share one dtype");
+
+  // Each gradient output must have its input's core shape with full batch dims.
+  ffi::Result<ffi::AnyBuffer>* outs[] = {&gA, &gQ, &gb, &gC, &gR, &gd, &gm0, &gP0, &gy};
+  const Operand* ins[] = {&mo.A, &mo.Q, &mo.b, &mo.C, &mo.R, &mo.d, &mo.m0, &mo.P0, &mo.y};
+  for (int i = 0; i < 9; ++i) {
+    if ((*outs[i])->element_type() != y.element_type() ||
+        static_cast<int64_t>((*outs[i])->element_count()) != bs.count * ins[i]->core_size)
+      return ffi::Error::InvalidArgument("kalmax_cpu: gradient output " + std::to_string(i) +
+                                         " has an unexpected size or dtype");
+  }
+
+  for (auto* out : outs) advise_huge_pages(*out);
+  return with_real_type(y.element_type(), [&](auto real) {
+    using Real = decltype(real);
+    return with_state_size(n, [&](auto nk) {
+      constexpr int NK = decltype(nk)::value;
+      const int p = mo.p;
+      std::vector<Real> ws(workspace_reals(n, p));
+      // Uninitialised (std::vector would zero-fill it, faulting every page in
+      // before the huge-page advice could apply); fully written before use.
+      const std::size_t u_size = std::size_t(T) * n + 1;
+      std::unique_ptr<Real[]> u(new Real[u_size]);
+      advise_huge_pages(u.get(), u_size * sizeof(Real));
+      std::vector<double> acc(accumulator_size(n, p));
+      std::vector<int> idx(p + 1);
+      const Kind kinds[] = {mo.kA, mo.kQ, mo.kb, mo.kC, mo.kR, mo.kd, mo.km0, mo.kP0};
+      const std::size_t items[] = {std::size_t(n) * n, std::size_t(n) * n, std::size_t(n),
+                                   std::size_t(p) * n, std::size_t(p) * p, std::size_t(p),
+                                   std::size_t(n), std::size_t(n) * n};
+      PatternCaches<Real> caches(mo);
+      for (int64_t bi = 0; bi < bs.count; ++bi) {
+        const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
+        Gradients<Real> G;
+        GradSink<Real>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
+        for (int f = 0; f < 8; ++f) {
+          if (kinds[f] == Kind::kAbsent) continue;
+          sinks[f]->out = static_cast<Real*>((*outs[f])->untyped_data()) + bi * ins[f]->core_size;
+          sinks[f]->tv = kinds[f] == Kind::kVarying;
+          sinks[f]->item = items[f];
+        }
+        G.y = static_cast<Real*>(gy->untyped_data()) + bi * mo.y.core_size;
+        gradients_one<Real, NK>(P, fo.view<Real>(bs, bi), fo.ok_at(bs, bi),
+                                at<Real>(oX, bs, bi), at<Real>(oXb, bs, bi), G, ws.data(), u.get(),
+                                acc.data(), idx.data(), caches.get(P));
+      }
+      return ffi::Error::Success();
+    });
+  });
+}
+
+}  // namespace
+}  // namespace kalmax_cpu
+
+namespace kc = kalmax_cpu;
+
+XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuForward, kc::ForwardImpl,
+                              ffi::Ffi::Bind()
+                                  .Arg<ffi::AnyBuffer>()  // A
+                                  .Arg<ffi::AnyBuffer>()  // Q
+                                  .Arg<ffi::AnyBuffer>()  // b
+                                  .Arg<ffi::AnyBuffer>()  // C
+                                  .Arg<ffi::AnyBuffer>()  // R
+                                  .Arg<ffi::AnyBuffer>()  // d
+                                  .Arg<ffi::AnyBuffer>()  // x0_mean
+                                  .Arg<ffi::AnyBuffer>()  // x0_cov
+                                  .Arg<ffi::AnyBuffer>()  // y
+                                  .Arg<ffi::AnyBuffer>()  // w
+                                  .Ret<ffi::AnyBuffer>()  // x
+                                  .Ret<ffi::AnyBuffer>()  // L
+                                  .Ret<ffi::AnyBuffer>()  // M
+                                  .Ret<ffi::AnyBuffer>()  // subT
+                                  .Ret<ffi::Buffer<ffi::S32>>());  // ok
+
+XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuSolve, kc::SolveImpl,
+                              ffi::Ffi::Bind()
+                                  .Arg<ffi::AnyBuffer>()          // L
+                                  .Arg<ffi::AnyBuffer>()          // M
+                                  .Arg<ffi::AnyBuffer>()          // subT
+                                  .Arg<ffi::Buffer<ffi::S32>>()   // ok
+                                  .Arg<ffi::AnyBuffer>()          // v
+                                  .Ret<ffi::AnyBuffer>());        // H⁻¹ v
+
+XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuGradients, kc::GradientsImpl,
+                              ffi::Ffi::Bind()
+                                  .Arg<ffi::AnyBuffer>()         // L
+                                  .Arg<ffi::AnyBuffer>()         // M
+                                  .Arg<ffi::AnyBuffer>()         // subT
+                                  .Arg<ffi::Buffer<ffi::S32>>()  // ok
+                                  .Arg<ffi::AnyBuffer>()         // x
+                                  .Arg<ffi::AnyBuffer>()         // x_bar
+                                  .Arg<ffi::AnyBuffer>()         // A
+                                  .Arg<ffi::AnyBuffer>()         // Q
+                                  .Arg<ffi::AnyBuffer>()         // b
+                                  .Arg<ffi::AnyBuffer>()         // C
+                                  .Arg<ffi::AnyBuffer>()         // R
+                                  .Arg<ffi::AnyBuffer>()         // d
+                                  .Arg<ffi::AnyBuffer>()         // x0_mean
+                                  .Arg<ffi::AnyBuffer>()         // x0_cov
+                                  .Arg<ffi::AnyBuffer>()         // y
+                                  .Arg<ffi::AnyBuffer>()         // w
+                                  .Ret<ffi::AnyBuffer>()         // Ā
+                                  .Ret<ffi::AnyBuffer>()         // Q̄
+                                  .Ret<ffi::AnyBuffer>()         // b̄
+                                  .Ret<ffi::AnyBuffer>()         // C̄
+                                  .Ret<ffi::AnyBuffer>()         // R̄
+                                  .Ret<ffi::AnyBuffer>()         // d̄
+                                  .Ret<ffi::AnyBuffer>()         // m̄0
+                                  .Ret<ffi::AnyBuffer>()         // P̄0
+                                  .Ret<ffi::AnyBuffer>());       // ȳ

@@ -1,0 +1,123 @@
+// Measurement blocks memoised by mask pattern.
+//
+// When C and R are time-invariant, everything the measurement at step t
+// contributes depends on y_t only through the observed values and on the
+// mask only through its pattern K (which entries are observed):
+//   G_K  = C_KᵀR_KK⁻¹C_K        (n×n)  added to H_tt
+//   F_K  = R_KK⁻¹C_K            (k×n)  g_t += F_Kᵀ(y_K − d_K)
+//   Ri_K = R_KK⁻¹               (k×k)  for the gradients
+// Real recordings have few distinct patterns (all observed, one sensor out,
+// ...), so computing these once per pattern removes the per-step Cholesky of
+// R_KK and the whitening of C from the time loop. The cache is bounded; steps
+// whose pattern does not fit fall back to the per-step computation.
+#pragma once
+
+#include <algorithm>
+#include <cstdint>
+#include <unordered_map>
+#include <vector>
+
+#include "dense.h"
+
+namespace kalmax_cpu {
+
+template <class Real>
+struct PatternBlocks {
+  int k = 0;
+  bool ok = true;    // R_KK positive definite
+  const int* idx;    // observed entries, k of them
+  const Real* G;     // n×n
+  const Real* F;     // k×n
+  const Real* Rinv;  // k×k
+};
+
+template <class Real>
+class PatternCache {
+ public:
+  // At most this many Reals of memoised blocks (64 MiB of doubles).
+  static constexpr std::size_t kMaxPool = std::size_t(8) << 20;
+
+  PatternCache(const Real* C, const Real* R, int n, int p) : C_(C), R_(R), n_(n), p_(p) {
+    const std::size_t entry = std::size_t(n) * n + std::size_t(p) * n + std::size_t(p) * p;
+    // Reserve once so that the pool never moves: entries hand out pointers.
+    max_entries_ = p <= 64 ? std::max<std::size_t>(1, kMaxPool / entry) : 0;
+    if (max_entries_ > 4096) max_entries_ = 4096;
+    pool_.reserve(max_entries_ * entry);
+    idx_pool_.reserve(max_entries_ * std::size_t(p));
+    entries_.reserve(max_entries_);
+    scratch_.resize(3 * std::size_t(p) * p + std::size_t(p) * n + std::size_t(p) + 8);
+  }
+
+  // Blocks for the pattern of mask row w, or nullptr when the cache is full
+  // (or p > 64). The pointer is valid until the next lookup.
+  template <int NK>
+  const PatternBlocks<Real>* lookup(const Real* w) {
+    if (max_entries_ == 0) return nullptr;
+    uint64_t key = 0;
+    for (int i = 0; i < p_; ++i)
+      if (w[i] > Real(0)) key |= uint64_t(1) << i;
+    auto it = map_.find(key);
+    if (it != map_.end()) return &entries_[it->second];
+    if (entries_.size() >= max_entries_) return nullptr;
+    entries_.push_back(build<NK>(key));
+    map_.emplace(key, entries_.size() - 1);
+    return &entries_.back();
+  }
+
+ private:
+  template <int NK>
+  PatternBlocks<Real> build(uint64_t key) {
+    const int n = fixed<NK>(n_), p = p_;
+    PatternBlocks<Real> e;
+    int* idx = idx_pool_.data() + idx_pool_.size();
+    int k = 0;
+    for (int i = 0; i < p; ++i)
+      if (key >> i & 1) idx_pool_.push_back(i), ++k;
+    e.k = k;
+    e.idx = idx;
+    const std::size_t start = pool_.size();
+    pool_.resize(start + std::size_t(n) * n + std::size_t(k) * n + std::size_t(k) * k, Real(0));
+    Real* G = pool_.data() + start;
+    Real* F = G + std::size_t(n) * n;
+    Real* Rinv = F + std::size_t(k) * n;
+    e.G = G;
+    e.F = F;
+    e.Rinv = Rinv;
+    if (k == 0) return e;
+
+    Real* Lr = scratch_.data();
+    Real* Wr = Lr + std::size_t(p) * p;
+    Real* c = Wr + std::size_t(p) * p;
+    for (int a = 0; a < k; ++a)
+      for (int b = 0; b <= a; ++b)
+        Lr[a * k + b] = Real(0.5) * (R_[idx[a] * p + idx[b]] + R_[idx[b] * p + idx[a]]);
+    if (!cholesky<Real, 0>(Lr, Lr, k, c)) {
+      e.ok = false;
+      return e;
+    }
+    // W = Lr⁻¹C_K (into F), G = WᵀW, then F = Lr⁻ᵀW = R_KK⁻¹C_K.
+    for (int a = 0; a < k; ++a)
+      for (int j = 0; j < n; ++j) F[a * n + j] = C_[std::size_t(idx[a]) * n + j];
+    lsolve_rows<Real, NK>(Lr, F, F, k, n);
+    add_cross<Real, NK, NK>(G, F, F, k, n, n, Real(1));
+    ltsolve_rows<Real, NK>(Lr, F, k, n);
+    // Ri = WrᵀWr with Wr = Lr⁻¹.
+    for (int a = 0; a < k; ++a)
+      for (int b = 0; b < k; ++b) Wr[a * k + b] = Real(a == b);
+    lsolve_rows<Real, 0>(Lr, Wr, Wr, k, k);
+    add_cross<Real, 0, 0>(Rinv, Wr, Wr, k, k, k, Real(1));
+    return e;
+  }
+
+  const Real* C_;
+  const Real* R_;
+  int n_, p_;
+  std::size_t max_entries_ = 0;
+  std::vector<Real> pool_;
+  std::vector<int> idx_pool_;
+  std::vector<Real> scratch_;
+  std::vector<PatternBlocks<Real>> entries_;
+  std::unordered_map<uint64_t, std::size_t> map_;
+};
+
+}  // namespace kalmax_cpu

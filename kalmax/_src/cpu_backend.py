@@ -1,0 +1,296 @@
+r"""The compiled CPU backend of the smoothing primitive (``method="cpu"``).
+
+A C++ library (sources in ``kalmax/_src/cpu``, built by ``pip install``)
+provides three XLA FFI targets:
+
+* ``kalmax_cpu_forward``: assembles the block-tridiagonal normal equations
+  H x = g from the model, the measurements and the mask, factorises H = L Lᵀ
+  and solves, in one sweep over time. Returns x (T, n) and a :class:`CpuFactor`:
+  the inverses L_t⁻¹ (T, n, n) of the diagonal blocks (so that later solves are
+  matrix-vector products, not chains of triangular substitutions), and the
+  sub-diagonal blocks M (T-1, n, n) only when A or Q varies in time. For a
+  time-invariant transition every M_t follows from L_{t-1} and the one block
+  H_{t+1,t} (kept as ``subT``), so M is not stored: half the memory, and half
+  the memory traffic of each later sweep over the factor.
+* ``kalmax_cpu_solve``: H⁻¹ v with a stored factor, O(T n²).
+* ``kalmax_cpu_gradients``: the whole backward pass of the implicit-function
+  VJP: the adjoint u = H⁻¹ x̄ and then, for every input θ (A, Q, b, C, R, d,
+  x0_mean, x0_cov, y), θ̄ = −∂_θ[uᵀ∇ₓJ(x; θ)] at x = x*, fused with the back
+  substitution so that u is used as soon as it is known. The formulas are in
+  ``cpu/smoother.h``; the JAX path (``stationarity_pairing``) is the oracle.
+
+Time-invariant fields are passed once (their rank tells the kernel); absent
+optional fields are passed as zero-size arrays. Every ``ffi_call`` uses
+``vmap_method="expand_dims"``: under ``jax.vmap`` the kernel receives the
+batched operands with a leading batch axis (size 1 where not batched) and loops
+over the batch itself, so ``vmap``, ``grad`` and ``vmap`` of ``grad`` all reach
+one kernel call.
+
+If the library is missing or refused (e.g. built against a newer XLA FFI than
+the installed jaxlib), ``LOAD_ERROR`` says why, the backend is not registered,
+``method="auto"`` falls back to the pure-JAX ``"scan"`` path, and
+``method="cpu"`` raises a ValueError quoting the reason.
+
+Derivatives of the kernel calls themselves (needed only for second-order AD,
+e.g. ``jax.hessian`` of a loss) come from pure-JAX equivalents of the same
+computations (``_jax_forward`` etc.); first-order gradients never use them.
+
+The kernel runs on the CPU backend only: with another default backend,
+``"auto"`` picks ``"scan"``.
+"""
+
+from __future__ import annotations
+
+import ctypes
+import importlib.machinery
+import os
+from typing import NamedTuple, Optional
+
+import jax
+import jax.numpy as jnp
+
+from . import blocktri
+from .blocktri import BlockFactor
+from .linalg import lsolve, mT
+from .model import StateSpace
+from .normal_equations import assemble, stationarity_pairing
+from .primitive import Backend, register_backend
+
+LIBRARY_STEM = "_cpu_kernel"
+
+# FFI target name -> exported C symbol.
+_TARGETS = {
+    "kalmax_cpu_forward": "KalmaxCpuForward",
+    "kalmax_cpu_solve": "KalmaxCpuSolve",
+    "kalmax_cpu_gradients": "KalmaxCpuGradients",
+}
+
+_VMAP = "expand_dims"  # the kernel loops over leading batch axes itself
+
+
+def library_path() -> Optional[str]:
+    """Path of the compiled kernel library next to this module, or None."""
+    here = os.path.dirname(os.path.abspath(__file__))
+    for suffix in importlib.machinery.EXTENSION_SUFFIXES:
+        path = os.path.join(here, LIBRARY_STEM + suffix)
+        if os.path.exists(path):
+            return path
+    return None
+
+
+def _load() -> Optional[str]:
+    """Load the library and register its FFI targets; return None or the reason it failed."""
+    if os.environ.get("KALMAX_DISABLE_CPU_KERNEL"):
+        return "disabled by the KALMAX_DISABLE_CPU_KERNEL environment variable"
+    path = library_path()
+    if path is None:
+        return (
+            f"no compiled library {LIBRARY_STEM}*.so in {os.path.dirname(os.path.abspath(__file__))}; "
+            "build it with `pip install --no-build-isolation -e .` (or `make venv`)"
+        )
+    try:
+        lib = ctypes.CDLL(path)
+        for target, symbol in _TARGETS.items():
+            jax.ffi.register_ffi_target(target, jax.ffi.pycapsule(getattr(lib, symbol)), platform="cpu")
+    except Exception as err:  # a broken or incompatible build must not break `import kalmax`
+        return f"loading {path} failed: {type(err).__name__}: {err}"
+    return None
+
+
+def _absent(dtype):
+    return jnp.zeros((0,), dtype)
+
+
+def _operands(model: StateSpace, y, w):
+    """The ten model/data operands in kernel order; absent fields as (0,) arrays."""
+    dt = y.dtype
+
+    def opt(a):
+        return _absent(dt) if a is None else a
+
+    return (
+        model.A,
+        model.Q,
+        opt(model.b),
+        model.C,
+        model.R,
+        opt(model.d),
+        opt(model.x0_mean),
+        opt(model.x0_cov),
+        y,
+        w,
+    )
+
+
+def _sds(shape, dtype):
+    return jax.ShapeDtypeStruct(tuple(shape), dtype)
+
+
+class CpuFactor(NamedTuple):
+    """Block Cholesky factor H = L Lᵀ as stored by the kernel.
+
+    Linv: (T, n, n) the inverses L_t⁻¹ of the lower-triangular diagonal blocks
+    (stored inverted so that every later solve is a matrix-vector product).
+    M: (T-1, n, n) sub-diagonal blocks (M[t-1] = M_t = H_{t,t-1} L_{t-1}⁻ᵀ)
+    when the transition varies in time, else shape (0, n, n). subT: (n, n)
+    H_{t+1,t}ᵀ = −AᵀQ⁻¹ when the transition is time-invariant (else unused).
+    ok: bool, False when the factorisation failed.
+    """
+
+    Linv: object
+    M: object
+    subT: object
+    ok: object
+
+
+def _kernel_forward(model: StateSpace, y, w):
+    T, _ = y.shape
+    n = model.A.shape[-1]
+    dt = y.dtype
+    compact = model.A.ndim == 2 and model.Q.ndim == 2
+    m_blocks = 0 if compact else T - 1
+    out = (
+        _sds((T, n), dt),
+        _sds((T, n, n), dt),
+        _sds((m_blocks, n, n), dt),
+        _sds((n, n), dt),
+        _sds((), jnp.int32),
+    )
+    x, Linv, M, subT, ok = jax.ffi.ffi_call("kalmax_cpu_forward", out, vmap_method=_VMAP)(*_operands(model, y, w))
+    return x, CpuFactor(Linv=Linv, M=M, subT=subT, ok=ok != 0)
+
+
+def _factor_operands(factor: CpuFactor):
+    return factor.Linv, factor.M, factor.subT, factor.ok.astype(jnp.int32)
+
+
+def _kernel_adjoint(factor: CpuFactor, v):
+    return jax.ffi.ffi_call("kalmax_cpu_solve", _sds(v.shape, v.dtype), vmap_method=_VMAP)(
+        *_factor_operands(factor), v
+    )
+
+
+def block_factor(factor: CpuFactor) -> BlockFactor:
+    """The same factor as the pure-JAX path keeps it: L_t and every M_t.
+
+    L_t = (L_t⁻¹)⁻¹ is one batched triangular solve; for the compact form
+    M_t = H_{t,t-1} L_{t-1}⁻ᵀ = (L_{t-1}⁻¹ subT)ᵀ, one batched product. No
+    recursion over time.
+    """
+    Linv = factor.Linv
+    n = Linv.shape[-1]
+    L = lsolve(Linv, jnp.broadcast_to(jnp.eye(n, dtype=Linv.dtype), Linv.shape))
+    if factor.M.shape[-3] == Linv.shape[-3] - 1:
+        M = factor.M
+    else:
+        M = mT(Linv[:-1] @ factor.subT)
+    return BlockFactor(L=L, M=M, ok=factor.ok)
+
+
+def logdet(factor: CpuFactor):
+    """log|H| = 2 Σ_t Σ_i log (L_t)_ii = −2 Σ_t Σ_i log (L_t⁻¹)_ii."""
+    d = jnp.diagonal(factor.Linv, axis1=-2, axis2=-1)
+    return -2 * jnp.sum(jnp.log(d))
+
+
+def band_inverse(factor: CpuFactor):
+    """(Σ_tt (T, n, n), Σ_{t+1,t} (T-1, n, n)): the block-tridiagonal band of H⁻¹."""
+    return blocktri.selected_inverse(block_factor(factor))
+
+
+def _kernel_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
+    ops = _operands(model, y, w)
+    out = tuple(_sds(o.shape, o.dtype) for o in ops[:9])
+    gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = jax.ffi.ffi_call("kalmax_cpu_gradients", out, vmap_method=_VMAP)(
+        *_factor_operands(factor), x, x_bar.astype(x.dtype), *ops
+    )
+
+    def keep(g, field):
+        return None if getattr(model, field) is None else g
+
+    model_bar = StateSpace(
+        A=gA,
+        C=gC,
+        Q=gQ,
+        R=gR,
+        b=keep(gb, "b"),
+        d=keep(gd, "d"),
+        x0_mean=keep(gm0, "x0_mean"),
+        x0_cov=keep(gP0, "x0_cov"),
+    )
+    return model_bar, gy
+
+
+# ---------------------------------------------------------------------------
+# Pure-JAX equivalents. They define the derivatives of the kernel calls: an
+# FFI call has no derivative rule, so second-order AD (jax.hessian of a loss,
+# or of the log-likelihood) differentiates these instead. First-order
+# gradients never get here: the custom VJP of the primitive calls the
+# kernels directly.
+
+
+def _jax_forward(model: StateSpace, y, w):
+    system = assemble(model, y, w)
+    x, bf = blocktri.factor_solve(system.diag, system.sub, system.rhs)
+    n = model.A.shape[-1]
+    if model.A.ndim == 2 and model.Q.ndim == 2:
+        M, subT = jnp.zeros((0, n, n), y.dtype), mT(system.sub)
+    else:
+        M, subT = bf.M, jnp.zeros((n, n), y.dtype)
+    n_eye = jnp.broadcast_to(jnp.eye(n, dtype=y.dtype), bf.L.shape)
+    return x, CpuFactor(Linv=lsolve(bf.L, n_eye), M=M, subT=subT, ok=bf.ok)
+
+
+def _jax_adjoint(factor: CpuFactor, v):
+    return blocktri.solve(block_factor(factor), v)
+
+
+def _jax_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
+    u = _jax_adjoint(factor, x_bar)
+    _, pull = jax.vjp(lambda m, yy: stationarity_pairing(m, yy, w, x, u), model, y)
+    return pull(-jnp.ones((), x.dtype))
+
+
+def _differentiable(kernel_fn, jax_fn):
+    """kernel_fn for values; the JVP (hence every higher derivative) of jax_fn."""
+    fn = jax.custom_jvp(kernel_fn)
+    fn.defjvp(lambda primals, tangents: jax.jvp(jax_fn, primals, tangents))
+    return fn
+
+
+_forward = _differentiable(_kernel_forward, _jax_forward)
+_adjoint = _differentiable(_kernel_adjoint, _jax_adjoint)
+_gradients = _differentiable(_kernel_gradients, _jax_gradients)
+
+
+def forward(model: StateSpace, y, w):
+    """(x (T, n), CpuFactor) for a canonicalised problem; x is NaN when the factor failed."""
+    return _forward(model, y, w)
+
+
+def adjoint(factor: CpuFactor, v):
+    """H⁻¹ v (T, n) with the stored factor; NaN when the factor failed."""
+    return _adjoint(factor, v)
+
+
+def gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
+    """(model_bar, y_bar) of the smoothed means for the cotangent x_bar, in one kernel call."""
+    return _gradients(model, y, w, x, factor, x_bar)
+
+
+CPU = Backend(forward=forward, adjoint=adjoint, logdet=logdet, band_inverse=band_inverse, gradients=gradients)
+
+# Same kernels, but the backward pass goes through the adjoint solve plus JAX
+# autodiff of the stationarity pairing: the reference for `gradients`.
+CPU_JAX_GRADIENTS = CPU._replace(gradients=None)
+
+LOAD_ERROR: Optional[str] = _load()
+
+
+def available() -> bool:
+    """True when the compiled kernel is loaded and registered as ``method="cpu"``."""
+    return LOAD_ERROR is None
+
+
+if LOAD_ERROR is None:
+    register_backend("cpu", CPU)
