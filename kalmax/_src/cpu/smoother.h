@@ -24,6 +24,7 @@
 // right before it is eliminated, so H itself is never stored.
 #pragma once
 
+#include <cmath>
 #include <algorithm>
 #include <cstddef>
 #include <cstdint>
@@ -254,7 +255,11 @@ void solve_one(const FactorView<Real>& F, bool ok, const Real* v, Real* x, int T
 // multiple of n·eps).
 template <class Real>
 inline Real pivot_tolerance(int n) {
-  return Real(100) * Real(n) * std::numeric_limits<Real>::epsilon();
+  // max(100·n·eps, eps^(2/3)): see blocktri.pivot_tolerance for why the floor.
+  const Real eps = std::numeric_limits<Real>::epsilon();
+  const Real a = Real(100) * Real(n) * eps;
+  const Real b = std::cbrt(eps * eps);
+  return a > b ? a : b;
 }
 
 // Writes x and the factor (Li = L_t⁻¹ blocks, M or subT: see FactorView).
