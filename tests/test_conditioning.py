@@ -243,7 +243,10 @@ CASES = (
 
 
 # The parallel-in-time backend solves these three (accurately or with NaN).
-PARALLEL_OK = {("weak", np.float64, 1e-6), ("weak", np.float32, 1e-2), ("weak", np.float32, 3e-3)}
+# Cases the parallel path gets right or reports as NaN (its pivots differ from the
+# sequential ones; delta = 1e-5 turned NaN once the pivot floor became eps^(2/3)).
+PARALLEL_OK = {("weak", np.float64, 1e-5), ("weak", np.float64, 1e-6), ("weak", np.float32, 1e-2),
+               ("weak", np.float32, 3e-3)}
 
 
 def _known_bad(case, method):
