@@ -96,16 +96,6 @@ def band_inverse(backend: Backend, factor):
     return blocktri.selected_inverse(factor)
 
 
-def solve_with_factor(model: StateSpace, y, w, method: str):
-    """Smoothed means and the factor, differentiable in (model, y) through ``smoothed_means``.
-
-    Returns the factor too (not differentiated): used by callers that need
-    log-determinants or further solves in the forward pass.
-    """
-    backend = get_backend(method)
-    return backend.forward(model, y, w)
-
-
 @partial(jax.custom_vjp, nondiff_argnums=(3,))
 def _means(model: StateSpace, y, w, method: str):
     x, _ = get_backend(method).forward(model, y, w)
