@@ -36,6 +36,7 @@ compile_args = [
     "-O3",
     "-g0",  # no debug info: smaller library, faster build
     "-fno-math-errno",  # lets sqrt inline; NaN/Inf semantics are kept (no -ffast-math)
+    "-pthread",  # vmapped batches run on several threads (kernel.cc, for_batches)
     "-isystem",
     FFI_INCLUDE,  # third-party headers: their warnings are not ours
 ]
@@ -51,6 +52,7 @@ if not os.environ.get("KALMAX_NO_KERNEL"):
             depends=[os.path.join(CPU_DIR, f) for f in ("dense.h", "smoother.h")],
             include_dirs=[CPU_DIR],
             extra_compile_args=compile_args,
+            extra_link_args=["-pthread"],
             language="c++",
         )
     )

@@ -38,6 +38,8 @@ import platform
 import subprocess
 import sys
 import time
+
+from memory import measure_call
 from pathlib import Path
 
 if __name__ == "__main__" and hasattr(os, "sched_setaffinity"):
@@ -142,13 +144,6 @@ def timing_table(Ts, ns, p=2):
     return rows
 
 
-def _status_kb(field):
-    for line in open("/proc/self/status"):
-        if line.startswith(field + ":"):
-            return int(line.split()[1])
-    return None
-
-
 def memory_case(method, T, n, p=2):
     """In a fresh subprocess: extra resident memory of one value-and-gradient call."""
     import jax
@@ -158,23 +153,9 @@ def memory_case(method, T, n, p=2):
     _, vg = build(method, model, y, mask)
     ma = vg.memory_analysis()
     xla_temp = None if ma is None else getattr(ma, "temp_size_in_bytes", None)
-    try:
-        with open("/proc/self/clear_refs", "w") as f:
-            f.write("5")
-        how = "clear_refs+VmHWM"
-    except OSError:
-        how = "ru_maxrss"
-    before = _status_kb("VmRSS")
-    t0 = time.perf_counter()
-    jax.block_until_ready(vg(model, y))
-    seconds = time.perf_counter() - t0
-    if how == "clear_refs+VmHWM":
-        peak = _status_kb("VmHWM")
-    else:
-        import resource
-
-        peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-    extra = (peak - before) * 1024
+    m = measure_call(lambda: jax.block_until_ready(vg(model, y)))
+    seconds, how = m["seconds"], m["how"]
+    extra = m["extra_kb"] * 1024
     print(json.dumps(dict(method=method, T=T, n=n, p=p, extra_mb=extra / 2**20, bytes_per_step=extra / T,
                           xla_temp_mb=None if xla_temp is None else xla_temp / 2**20,
                           seconds=seconds, how=how)))

@@ -37,13 +37,13 @@ import argparse
 import json
 import os
 import platform
-import resource
 import subprocess
 import sys
 import time
 from pathlib import Path
 
 import numpy as np
+from memory import measure_call
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
@@ -236,13 +236,6 @@ def time_it(fn, repeats, budget_s):
     return float(np.median(times)), times, warm
 
 
-def _status_kb(field):
-    for line in open("/proc/self/status"):
-        if line.startswith(field + ":"):
-            return int(line.split()[1])
-    return None
-
-
 def memory_case(workload, method, op):
     """Runs in a fresh subprocess: extra resident memory of one call, in MB."""
     cfg = workloads(False, True)[workload] if workload in workloads(False, True) else workloads(True, False)[workload]
@@ -253,19 +246,9 @@ def memory_case(workload, method, op):
     model, y, mask = make_problem(**cfg)
     fwd, vg = build(method, model, y, mask, cfg["batch"])
     fn = vg if op == "vg" else fwd  # already compiled: the call below is its first execution
-    try:
-        with open("/proc/self/clear_refs", "w") as f:
-            f.write("5")
-        how = "clear_refs+VmHWM"
-    except OSError:
-        how = "ru_maxrss"
-    before = _status_kb("VmRSS")
-    fn()
-    if how == "clear_refs+VmHWM":
-        peak = _status_kb("VmHWM")
-    else:
-        peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-    print(json.dumps(dict(peak_mb=peak / 1024, before_mb=before / 1024, extra_mb=(peak - before) / 1024, how=how)))
+    m = measure_call(fn)
+    peak, before = m["peak_kb"], m["before_kb"]
+    print(json.dumps(dict(peak_mb=peak / 1024, before_mb=before / 1024, extra_mb=(peak - before) / 1024, how=m["how"])))
 
 
 def measure_memory(workload, method, op, timeout):

@@ -306,3 +306,34 @@ def test_second_order_derivatives_fall_back_to_jax_maths(rng):
     np.testing.assert_allclose(hess(s0, "cpu"), hess(s0, "scan"), rtol=1e-8, atol=1e-10)
     rev2 = jax.jit(jax.jacrev(jax.grad(sm)), static_argnums=1)
     np.testing.assert_allclose(rev2(s0, "cpu"), rev2(s0, "scan"), rtol=1e-8, atol=1e-10)
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32], ids=["float64", "float32"])
+def test_threaded_batches_equal_one_thread(rng, dtype, monkeypatch):
+    """vmapped batches large enough to be split over threads (kernel.cc,
+    for_batches) give bit-identical values and gradients to one thread: each
+    trajectory is still computed by one thread with the same operation order.
+    Three threads are forced so that the split happens on any machine; the
+    references are the per-trajectory scan path (independent code)."""
+    B, T = 5, 4000  # 20,000 steps: above the 2 × 8,192 threshold for threading
+    model = to_model(random_model(rng, 2, 2, T, time_varying=False, full_R=True, prior=True, offsets=True))
+    model = jax.tree_util.tree_map(lambda a: np.asarray(a, dtype), model)
+    ys = rng.standard_normal((B, T, 2)).astype(dtype)
+    masks = rng.random((B, T, 2)) > 0.2
+
+    def loss(m, method):
+        states = jax.vmap(lambda y, k: kx.smooth(m, y, k, method=method).states)(ys, masks)
+        return jnp.sum(jnp.sin(states)), states
+
+    runs = {}
+    for threads in ("1", "3"):
+        monkeypatch.setenv("KALMAX_CPU_THREADS", threads)
+        f = jax.jit(jax.value_and_grad(lambda m: loss(m, "cpu"), has_aux=True))  # fresh trace each time
+        (val, states), g = f(model)
+        runs[threads] = (np.asarray(states), jax.tree_util.tree_leaves(g))
+    np.testing.assert_array_equal(runs["1"][0], runs["3"][0])
+    for a, b in zip(runs["1"][1], runs["3"][1]):
+        np.testing.assert_array_equal(np.asarray(a), np.asarray(b))
+    tol = 1e-10 if dtype == np.float64 else 1e-3
+    ref_states = np.asarray(loss(model, "scan")[1])
+    np.testing.assert_allclose(runs["3"][0], ref_states, rtol=0, atol=tol * np.abs(ref_states).max())

@@ -180,7 +180,7 @@ import jax, jax.numpy as jnp
 jax.config.update("jax_enable_x64", True)
 import kalmax as kx
 T = 70_000
-m = kx.StateSpace(A=0.9 * jnp.eye(2), C=jnp.ones((1, 2)), Q=jnp.eye(2), R=jnp.eye(1))
+m = kx.StateSpace(A=0.9 * jnp.eye(2), C=jnp.ones((1, 2)), Q=jnp.eye(2), R=jnp.eye(1), x0_cov=jnp.eye(2))
 y = jnp.sin(jnp.arange(T) / 50.0)[:, None]
 g = jax.grad(lambda m: jnp.sum(kx.smooth(m, y, method="scan").states ** 2))(m)
 print("finite", all(bool(jnp.all(jnp.isfinite(l))) for l in jax.tree_util.tree_leaves(g)))
@@ -197,3 +197,23 @@ def test_long_series_gradient_completes():
     proc = subprocess.run([sys.executable, "-c", _LONG_SCRIPT], capture_output=True, text=True, timeout=240)
     assert proc.returncode == 0, proc.stderr[-2000:]
     assert "finite True" in proc.stdout
+
+
+@pytest.mark.parametrize("method", ["auto", "scan"])
+def test_grad_of_vmap_over_numpy_data(rng, method):
+    """A common way to write a batched loss: close over NumPy arrays and vmap
+    over them. jax.vmap keeps the NumPy array inside its tracer, which used to
+    crash the primitive's differentiation rules ("non-canonical constant");
+    the result must equal the same loss written with JAX arrays."""
+    n, p, T, B = 2, 2, 8, 3
+    model = kx.StateSpace(A=0.9 * np.eye(n), C=rng.standard_normal((p, n)), Q=0.5 * np.eye(n), R=np.eye(p))
+    ys = rng.standard_normal((B, T, p))
+
+    def loss(m, data):
+        return jnp.sum(jax.vmap(lambda y: kx.smooth(m, y, method=method).states)(data) ** 2)
+
+    val_np, g_np = jax.value_and_grad(lambda m: loss(m, ys))(model)
+    val_j, g_j = jax.value_and_grad(lambda m: loss(m, jnp.asarray(ys)))(model)
+    np.testing.assert_allclose(val_np, val_j, rtol=1e-12)
+    for a, b in zip(jax.tree_util.tree_leaves(g_np), jax.tree_util.tree_leaves(g_j)):
+        np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-14)

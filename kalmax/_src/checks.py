@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from typing import NamedTuple, Optional
 
+import jax
 import jax.numpy as jnp
 import numpy as np
 
@@ -142,4 +143,19 @@ def canonicalize(model: StateSpace, y, mask):
         f: (None if getattr(model, f) is None else jnp.asarray(getattr(model, f), dtype))
         for f in ("A", "C", "Q", "R", "b", "d", "x0_mean", "x0_cov")
     }
-    return StateSpace(**cast), y.astype(dtype), mask, dims, dtype
+    model = StateSpace(**{f: _materialised(v) for f, v in cast.items()})
+    return model, _materialised(y.astype(dtype)), _materialised(mask), dims, dtype
+
+
+def _materialised(x):
+    """x, with any NumPy array held inside a JAX tracer turned into a JAX array.
+
+    ``jax.vmap`` over a NumPy array keeps that array as the batched value, and
+    jax 0.10 then fails inside the differentiation rules of the primitive
+    ("non-canonical constant of type ndarray"; seen with value_and_grad of a
+    vmapped smooth over NumPy data). One elementwise operation makes it a JAX
+    array; outside of tracing nothing changes.
+    """
+    if x is None or not isinstance(x, jax.core.Tracer):
+        return x
+    return x | False if x.dtype == jnp.bool_ else x + jnp.zeros((), x.dtype)

@@ -49,7 +49,7 @@ from typing import NamedTuple, Optional
 import jax
 import jax.numpy as jnp
 
-from . import blocktri
+from . import accuracy, blocktri
 from .blocktri import BlockFactor
 from .linalg import lsolve, mT
 from .model import StateSpace
@@ -232,6 +232,8 @@ def _kernel_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
 def _jax_forward(model: StateSpace, y, w):
     system = assemble(model, y, w)
     x, bf = blocktri.factor_solve(system.diag, system.sub, system.rhs)
+    x, ok = accuracy.refine(model, y, w, x, bf.ok, bf, blocktri.solve)
+    bf = bf._replace(ok=ok)
     n = model.A.shape[-1]
     if model.A.ndim == 2 and model.Q.ndim == 2:
         M, subT = jnp.zeros((0, n, n), y.dtype), mT(system.sub)

@@ -31,6 +31,7 @@ MAX_MODEL_FILE_BYTES = 1 << 20  # 1 MiB: a model file holds a few hundred number
 MAX_DIMS = 16
 MAX_COLUMNS = 256
 MAX_NAME_CHARS = 200
+MAX_MESSAGE_CHARS = 1000  # an error message quoting a huge value from the file is shortened to this
 
 
 class DataError(Exception):
@@ -235,9 +236,28 @@ def _reject_constant(name):
     raise ValueError(f"non-standard JSON number {name}")
 
 
+def _finite_float(text):
+    # A literal such as 1e400 parses to inf: refuse it like NaN / Infinity
+    # (save_model could not write it back).
+    value = float(text)
+    if not math.isfinite(value):
+        shown = text if len(text) <= 40 else text[:40] + "..."
+        raise ValueError(f"number {shown} is out of the floating-point range")
+    return value
+
+
+def _clip(msg: str) -> str:
+    """``msg`` shortened to about MAX_MESSAGE_CHARS, keeping both ends."""
+    if len(msg) <= MAX_MESSAGE_CHARS:
+        return msg
+    head = MAX_MESSAGE_CHARS * 2 // 3
+    tail = MAX_MESSAGE_CHARS - head
+    return f"{msg[:head]} [... {len(msg) - head - tail} characters left out ...] {msg[-tail:]}"
+
+
 def _require(cond, msg, path):
     if not cond:
-        raise ModelFileError(f"{path}: {msg}")
+        raise ModelFileError(f"{path}: {_clip(msg)}")
 
 
 def spec_from_dict(doc, path="<model>") -> ModelSpec:
@@ -247,15 +267,16 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
              f"not a kalmax model file (format is {doc.get('format')!r}, expected {FORMAT_NAME!r}).", path)
     version = doc.get("format_version")
     if version != FORMAT_VERSION:
-        raise ModelFileError(
-            f"{path}: model file format version {version!r} (written by {doc.get('written_by', 'unknown')}); "
+        raise ModelFileError(f"{path}: " + _clip(
+            f"model file format version {version!r} (written by {doc.get('written_by', 'unknown')}); "
             f"this kalmax reads format version {FORMAT_VERSION} only. Refit the model with this version, "
             "or use the kalmax version that wrote the file."
-        )
+        ))
     m = doc.get("model")
     _require(isinstance(m, dict), "the 'model' entry is missing or not an object.", path)
     kind = m.get("kind")
-    _require(kind in KINDS, f"unknown model kind {kind!r}; known kinds: {', '.join(KINDS)}.", path)
+    _require(isinstance(kind, str) and kind in KINDS,  # a list or object is not hashable
+             f"unknown model kind {kind!r}; known kinds: {', '.join(KINDS)}.", path)
     dims = m.get("dims")
     _require(isinstance(dims, int) and not isinstance(dims, bool) and 1 <= dims <= MAX_DIMS,
              f"dims must be an integer from 1 to {MAX_DIMS}; got {dims!r}.", path)
@@ -292,7 +313,10 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
             fit=fit,
         )
     except ValueError as e:
-        raise ModelFileError(f"{path}: invalid model: {e}") from None
+        raise ModelFileError(f"{path}: invalid model: {_clip(str(e))}") from None
+    except OverflowError:  # an integer too large for a float (JSON integers are unbounded)
+        raise ModelFileError(f"{path}: invalid model: a number is too large to be a floating-point value "
+                             "(the largest is about 1.8e308).") from None
 
 
 def save_model(path, spec: ModelSpec, out: AtomicOutputs = None) -> None:
@@ -336,15 +360,20 @@ def load_model(path) -> ModelSpec:
         if size > MAX_MODEL_FILE_BYTES:
             raise ModelFileError(f"{path}: {size} bytes is too large for a model file "
                                  f"(limit {MAX_MODEL_FILE_BYTES}).")
-        raw = path.read_bytes()
+        with open(path, "rb") as f:
+            # Read at most one byte past the limit: the size stat reports is 0 for pipes and
+            # devices, and a file can grow after the check.
+            raw = f.read(MAX_MODEL_FILE_BYTES + 1)
     except FileNotFoundError:
         raise ModelFileError(f"cannot read model file {path}: no such file.") from None
     except IsADirectoryError:
         raise ModelFileError(f"cannot read model file {path}: it is a folder.") from None
     except OSError as e:
         raise ModelFileError(f"cannot read model file {path}: {e.strerror}.") from None
+    if len(raw) > MAX_MODEL_FILE_BYTES:
+        raise ModelFileError(f"{path}: more than {MAX_MODEL_FILE_BYTES} bytes is too large for a model file.")
     try:
-        doc = json.loads(raw.decode("utf-8"), parse_constant=_reject_constant)
+        doc = json.loads(raw.decode("utf-8"), parse_constant=_reject_constant, parse_float=_finite_float)
     except (UnicodeDecodeError, ValueError, RecursionError) as e:
-        raise ModelFileError(f"{path}: not a kalmax model file (invalid JSON: {e}).") from None
+        raise ModelFileError(f"{path}: not a kalmax model file (invalid JSON: {_clip(str(e))}).") from None
     return spec_from_dict(doc, path)

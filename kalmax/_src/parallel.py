@@ -52,6 +52,7 @@ from typing import NamedTuple, Tuple
 import jax
 import jax.numpy as jnp
 
+from . import accuracy
 from .blocktri import pivot_tolerance
 from .linalg import chol, lsolve, lsolve_vec, matvec, mT
 from .normal_equations import assemble
@@ -230,7 +231,9 @@ def band_inverse(factor: ReductionFactor):
 def forward(model, y, w):
     """Backend forward: assemble H x = g and solve it by cyclic reduction."""
     system = assemble(model, y, w)
-    return factor_solve(system.diag, system.sub, system.rhs)
+    x, factor = factor_solve(system.diag, system.sub, system.rhs)
+    x, ok = accuracy.refine(model, y, w, x, factor.ok, factor, solve)
+    return x, dataclasses.replace(factor, ok=ok)
 
 
 PARALLEL = Backend(forward=forward, adjoint=solve, logdet=logdet, band_inverse=band_inverse)

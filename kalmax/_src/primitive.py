@@ -32,7 +32,7 @@ from typing import Callable, Dict, NamedTuple, Optional
 import jax
 import jax.numpy as jnp
 
-from . import blocktri
+from . import accuracy, blocktri
 from .model import StateSpace
 from .normal_equations import assemble, stationarity_pairing
 
@@ -52,7 +52,9 @@ class Backend(NamedTuple):
 
 def _scan_forward(model, y, w):
     system = assemble(model, y, w)
-    return blocktri.factor_solve(system.diag, system.sub, system.rhs)
+    x, factor = blocktri.factor_solve(system.diag, system.sub, system.rhs)
+    x, ok = accuracy.refine(model, y, w, x, factor.ok, factor, blocktri.solve)
+    return x, factor._replace(ok=ok)
 
 
 SCAN = Backend(forward=_scan_forward, adjoint=blocktri.solve, logdet=blocktri.logdet)

@@ -33,7 +33,7 @@ from typing import NamedTuple
 import jax.numpy as jnp
 from jax import lax
 
-from . import blocktri
+from . import accuracy, blocktri
 from .linalg import chol, lsolve, lsolve_vec, mT
 from .normal_equations import assemble
 from .primitive import Backend, register_backend
@@ -148,6 +148,8 @@ def forward(model, y, w):
     """Backend forward: assemble, checkpointed solve; keep only the inputs, log|H| and ok."""
     system = assemble(model, y, w)
     x, ld, ok = checkpointed_solve(system.diag, system.sub, system.rhs)
+    x, ok = accuracy.refine(model, y, w, x, ok, (system.diag, system.sub),
+                            lambda blocks, v: checkpointed_solve(*blocks, v)[0])
     return x, RecomputeFactor(model=model, y=y, w=w, logdet=ld, ok=ok)
 
 

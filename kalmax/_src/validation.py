@@ -134,9 +134,12 @@ def validate(model: StateSpace, y, mask=None, *, rtol: float = 1e-6,
     - a problem too ill-conditioned for its dtype: when the estimated
       condition number of the normal equations times the dtype's machine
       epsilon, κ₁(H)·eps — a first-order bound on the relative error of the
-      smoothed means — exceeds ``max_error_bound``. (``smooth`` can return
-      finite but inaccurate means for such problems; when H is singular to
-      working precision it returns NaN itself, which validate leaves alone.)
+      smoothed means of a plain solve — exceeds ``max_error_bound``.
+      (``smooth`` refines its answer and returns NaN when the estimated error
+      stays above its bar, 1e-6 in float64 and 1e-3 in float32; this check
+      says in advance, and in words, why such a problem may come back NaN.
+      When H is singular to working precision smooth returns NaN itself,
+      which validate leaves alone.)
 
     Args:
         model: :class:`StateSpace`.
@@ -190,8 +193,8 @@ def validate(model: StateSpace, y, mask=None, *, rtol: float = 1e-6,
             problems.append(
                 f"the problem is too ill-conditioned for {np.dtype(dtype).name}: estimated condition number "
                 f"{cond:.2e} times eps {eps:.2e} = {cond * eps:.2e} > max_error_bound={max_error_bound:g}, so "
-                "the smoothed means may have lost most of their digits; use float64, rescale, or add "
-                "prior information."
+                "smooth may return NaN (it does when refinement cannot bring its estimated error under "
+                "its bar); use float64, rescale, or add prior information."
             )
     if problems:
         raise ValueError("invalid smoothing problem:\n  - " + "\n  - ".join(problems))

@@ -28,8 +28,10 @@
 #include <sys/mman.h>
 
 #include <cstdint>
+#include <cstdlib>
 #include <memory>
 #include <string>
+#include <thread>
 #include <type_traits>
 #include <vector>
 
@@ -294,6 +296,52 @@ ffi::Error with_real_type(ffi::DataType dt, F&& f) {
 }
 
 // ---------------------------------------------------------------------------
+// Batches (vmap) over threads.
+//
+// One trajectory's sweep over time is sequential, but the trajectories of a
+// vmapped batch are independent: contiguous ranges of them run on separate
+// threads, each with its own scratch and pattern cache. Small calls stay on
+// the calling thread, where starting threads would cost more than it saves.
+// KALMAX_CPU_THREADS caps the count (1 turns threading off); the default is
+// the number of hardware threads.
+
+constexpr int64_t kMinStepsPerThread = 8192;  // a few ms of work at the smallest sizes
+
+inline int worker_limit() {
+  if (const char* env = std::getenv("KALMAX_CPU_THREADS")) {
+    const int k = std::atoi(env);
+    if (k >= 1) return k;
+  }
+  const unsigned hw = std::thread::hardware_concurrency();
+  return hw == 0 ? 1 : static_cast<int>(hw);
+}
+
+// Runs body(begin, end) over a split of [0, count); steps: time steps per item.
+template <class Body>
+void for_batches(int64_t count, int64_t steps, Body&& body) {
+  int64_t threads = worker_limit();
+  threads = std::min<int64_t>(threads, count);
+  threads = std::min<int64_t>(threads, (count * std::max<int64_t>(steps, 1)) / kMinStepsPerThread);
+  if (threads <= 1) {
+    body(int64_t{0}, count);
+    return;
+  }
+  std::vector<std::thread> pool;
+  pool.reserve(static_cast<std::size_t>(threads - 1));
+  const int64_t per = count / threads, extra = count % threads;
+  int64_t begin = 0;
+  for (int64_t k = 0; k < threads; ++k) {
+    const int64_t end = begin + per + (k < extra ? 1 : 0);
+    if (k + 1 < threads)
+      pool.emplace_back([&body, begin, end] { body(begin, end); });
+    else
+      body(begin, end);  // the calling thread takes the last range
+    begin = end;
+  }
+  for (auto& t : pool) t.join();
+}
+
+// ---------------------------------------------------------------------------
 
 ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi::AnyBuffer C,
                        ffi::AnyBuffer R, ffi::AnyBuffer d, ffi::AnyBuffer m0, ffi::AnyBuffer P0,
@@ -327,21 +375,23 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
     return with_state_size(n, [&](auto nk) {
       constexpr int NK = decltype(nk)::value;
       const int p = mo.p;
-      std::vector<Real> ws(workspace_reals(n, p));
-      std::vector<int> idx(p + 1);
       const std::size_t n2 = std::size_t(n) * n;
       Real* xo = static_cast<Real*>(x->untyped_data());
       Real* Lo = static_cast<Real*>(L->untyped_data());
       Real* Mo = static_cast<Real*>(M->untyped_data());
       Real* So = static_cast<Real*>(subT->untyped_data());
       int32_t* oko = ok->typed_data();
-      PatternCaches<Real> caches(mo);
-      for (int64_t bi = 0; bi < bs.count; ++bi) {
-        const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
-        oko[bi] = forward_one<Real, NK>(P, xo + bi * std::size_t(T) * n, Lo + bi * std::size_t(T) * n2,
-                                        Mo + bi * std::size_t(m_blocks) * n2, So + bi * n2,
-                                        ws.data(), idx.data(), caches.get(P));
-      }
+      for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
+        std::vector<Real> ws(workspace_reals(n, p));
+        std::vector<int> idx(p + 1);
+        PatternCaches<Real> caches(mo);
+        for (int64_t bi = begin; bi < end; ++bi) {
+          const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
+          oko[bi] = forward_one<Real, NK>(P, xo + bi * std::size_t(T) * n, Lo + bi * std::size_t(T) * n2,
+                                          Mo + bi * std::size_t(m_blocks) * n2, So + bi * n2,
+                                          ws.data(), idx.data(), caches.get(P));
+        }
+      });
       return ffi::Error::Success();
     });
   });
@@ -405,10 +455,12 @@ ffi::Error SolveImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT,
     return with_state_size(n, [&](auto nk) {
       constexpr int NK = decltype(nk)::value;
       Real* xo = static_cast<Real*>(x->untyped_data());
-      std::vector<Real> tmp(2 * n + 2);
-      for (int64_t bi = 0; bi < bs.count; ++bi)
-        solve_one<Real, NK>(fo.view<Real>(bs, bi), fo.ok_at(bs, bi), at<Real>(oV, bs, bi),
-                            xo + bi * std::size_t(T) * n, T, n, tmp.data(), tmp.data() + n + 1);
+      for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
+        std::vector<Real> tmp(2 * n + 2);
+        for (int64_t bi = begin; bi < end; ++bi)
+          solve_one<Real, NK>(fo.view<Real>(bs, bi), fo.ok_at(bs, bi), at<Real>(oV, bs, bi),
+                              xo + bi * std::size_t(T) * n, T, n, tmp.data(), tmp.data() + n + 1);
+      });
       return ffi::Error::Success();
     });
   });
@@ -459,34 +511,36 @@ ffi::Error GradientsImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT
     return with_state_size(n, [&](auto nk) {
       constexpr int NK = decltype(nk)::value;
       const int p = mo.p;
-      std::vector<Real> ws(workspace_reals(n, p));
-      // Uninitialised (std::vector would zero-fill it, faulting every page in
-      // before the huge-page advice could apply); fully written before use.
-      const std::size_t u_size = std::size_t(T) * n + 1;
-      std::unique_ptr<Real[]> u(new Real[u_size]);
-      advise_huge_pages(u.get(), u_size * sizeof(Real));
-      std::vector<double> acc(accumulator_size(n, p));
-      std::vector<int> idx(p + 1);
       const Kind kinds[] = {mo.kA, mo.kQ, mo.kb, mo.kC, mo.kR, mo.kd, mo.km0, mo.kP0};
       const std::size_t items[] = {std::size_t(n) * n, std::size_t(n) * n, std::size_t(n),
                                    std::size_t(p) * n, std::size_t(p) * p, std::size_t(p),
                                    std::size_t(n), std::size_t(n) * n};
-      PatternCaches<Real> caches(mo);
-      for (int64_t bi = 0; bi < bs.count; ++bi) {
-        const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
-        Gradients<Real> G;
-        GradSink<Real>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
-        for (int f = 0; f < 8; ++f) {
-          if (kinds[f] == Kind::kAbsent) continue;
-          sinks[f]->out = static_cast<Real*>((*outs[f])->untyped_data()) + bi * ins[f]->core_size;
-          sinks[f]->tv = kinds[f] == Kind::kVarying;
-          sinks[f]->item = items[f];
+      for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
+        std::vector<Real> ws(workspace_reals(n, p));
+        // Uninitialised (std::vector would zero-fill it, faulting every page in
+        // before the huge-page advice could apply); fully written before use.
+        const std::size_t u_size = std::size_t(T) * n + 1;
+        std::unique_ptr<Real[]> u(new Real[u_size]);
+        advise_huge_pages(u.get(), u_size * sizeof(Real));
+        std::vector<double> acc(accumulator_size(n, p));
+        std::vector<int> idx(p + 1);
+        PatternCaches<Real> caches(mo);
+        for (int64_t bi = begin; bi < end; ++bi) {
+          const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
+          Gradients<Real> G;
+          GradSink<Real>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
+          for (int f = 0; f < 8; ++f) {
+            if (kinds[f] == Kind::kAbsent) continue;
+            sinks[f]->out = static_cast<Real*>((*outs[f])->untyped_data()) + bi * ins[f]->core_size;
+            sinks[f]->tv = kinds[f] == Kind::kVarying;
+            sinks[f]->item = items[f];
+          }
+          G.y = static_cast<Real*>(gy->untyped_data()) + bi * mo.y.core_size;
+          gradients_one<Real, NK>(P, fo.view<Real>(bs, bi), fo.ok_at(bs, bi),
+                                  at<Real>(oX, bs, bi), at<Real>(oXb, bs, bi), G, ws.data(), u.get(),
+                                  acc.data(), idx.data(), caches.get(P));
         }
-        G.y = static_cast<Real*>(gy->untyped_data()) + bi * mo.y.core_size;
-        gradients_one<Real, NK>(P, fo.view<Real>(bs, bi), fo.ok_at(bs, bi),
-                                at<Real>(oX, bs, bi), at<Real>(oXb, bs, bi), G, ws.data(), u.get(),
-                                acc.data(), idx.data(), caches.get(P));
-      }
+      });
       return ffi::Error::Success();
     });
   });

@@ -179,28 +179,35 @@ struct FactorView {
   const Real* subT = nullptr;  // (n, n) H_subᵀ: the compact form
 };
 
-// z_t = Li_t (g_t − M_t z_{t-1}), in place on z (which holds g on entry).
+// One step of forward substitution: z_t = Li_t (g_t − M_t z_{t-1}), in place
+// on zt (which holds g_t on entry); zp is z_{t-1} (unused at t = 0).
 // tmp, tmp2: scratch of n entries each.
+template <class Real, int NK>
+inline void forward_step(const FactorView<Real>& F, int t, const Real* zp, Real* zt, int n_, Real* tmp,
+                         Real* tmp2) {
+  const int n = fixed<NK>(n_);
+  const std::size_t n2 = std::size_t(n) * n;
+  if (t > 0) {
+    if (F.subT != nullptr) {
+      tmatvec<Real, NK>(tmp, F.Li + std::size_t(t - 1) * n2, zp, n);
+      add_tmatvec<Real, NK>(zt, F.subT, tmp, n, n, Real(-1));  // H_sub v = Σ_r v_r subT[r, :]
+    } else {
+      const Real* Mt = F.M + std::size_t(t - 1) * n2;
+      matvec<Real, NK>(tmp, Mt, zp, n, n);
+      for (int i = 0; i < n; ++i) zt[i] -= tmp[i];
+    }
+  }
+  matvec<Real, NK>(tmp2, F.Li + std::size_t(t) * n2, zt, n, n);
+  copy(zt, tmp2, n);
+}
+
+// z = L⁻¹ g over all steps, in place on z (which holds g on entry).
 template <class Real, int NK>
 inline void forward_substitute(const FactorView<Real>& F, Real* z, int T, int n_, Real* tmp, Real* tmp2) {
   const int n = fixed<NK>(n_);
-  const std::size_t n2 = std::size_t(n) * n;
-  for (int t = 0; t < T; ++t) {
-    Real* zt = z + std::size_t(t) * n;
-    if (t > 0) {
-      const Real* zp = zt - n;
-      if (F.subT != nullptr) {
-        tmatvec<Real, NK>(tmp, F.Li + std::size_t(t - 1) * n2, zp, n);
-        add_tmatvec<Real, NK>(zt, F.subT, tmp, n, n, Real(-1));  // H_sub v = Σ_r v_r subT[r, :]
-      } else {
-        const Real* Mt = F.M + std::size_t(t - 1) * n2;
-        matvec<Real, NK>(tmp, Mt, zp, n, n);
-        for (int i = 0; i < n; ++i) zt[i] -= tmp[i];
-      }
-    }
-    matvec<Real, NK>(tmp2, F.Li + std::size_t(t) * n2, zt, n, n);
-    copy(zt, tmp2, n);
-  }
+  for (int t = 0; t < T; ++t)
+    forward_step<Real, NK>(F, t, t > 0 ? z + std::size_t(t - 1) * n : nullptr, z + std::size_t(t) * n, n, tmp,
+                           tmp2);
 }
 
 // One step of back substitution: x_t = Li_tᵀ(z_t − M_{t+1}ᵀ x_{t+1}), in place
@@ -260,6 +267,151 @@ inline Real pivot_tolerance(int n) {
   const Real a = Real(100) * Real(n) * eps;
   const Real b = std::cbrt(eps * eps);
   return a > b ? a : b;
+}
+
+// ---------------------------------------------------------------------------
+// Forward-error check and one step of refinement (kalmax/_src/accuracy.py).
+//
+// Forming H squares the condition number: information that is small next to
+// the rest of H_tt (a quiet measurement beside a tight transition) is partly
+// rounded away before the factorisation starts. The residual of the
+// stationarity condition computed from the model, without forming H,
+//   r = g − H x = −∇J(x) = Σ C_tᵀS_t e_t + A_tᵀQ_t⁻¹r_t − Q_{t-1}⁻¹r_{t-1} − P_0⁻¹(x_0 − m_0)
+// (e, r the measurement and transition residuals, which are formed first, so
+// the small terms keep their digits) gives δ = H⁻¹r ≈ x* − x. We add δ to x
+// and report the answer as untrusted when ‖δ‖∞/‖x‖∞ exceeds trusted_error.
+
+// Must match accuracy._TRUSTED: six significant digits in double, three in float.
+template <class Real>
+inline Real trusted_error() {
+  return std::numeric_limits<Real>::digits > 30 ? Real(1e-6) : Real(1e-3);
+}
+
+// Iterative refinement, as accuracy.refine: add δ_k = H⁻¹(−∇J(x_k)) while
+// ‖δ_k‖∞/‖x_k‖∞ is above trusted_error, keeps halving, and fewer than
+// kMaxRefineSteps were taken. False when the last estimate is still too big.
+//
+// One step is two sweeps. The first forms r_t = −∇J(x)_t and at once runs the
+// forward substitution on it: the residual of step t needs only x (known),
+// so its arithmetic has no dependency on the substitution chain and overlaps
+// with it. The second back-substitutes and adds the correction to x.
+constexpr int kMaxRefineSteps = 4;  // must match accuracy.MAX_STEPS
+
+template <class Real, int NK>
+bool refine_one(const Trajectory<Real>& P, const FactorView<Real>& F, Real* x, Real* ws, int* idx,
+                PatternCache<Real>* cache) {
+  const int T = P.T, n = fixed<NK>(P.n), p = P.p;
+  const std::size_t n2 = std::size_t(n) * n, Tn = std::size_t(T) * n;
+  const Real tol = trusted_error<Real>();
+  Arena<Real> arena(ws);  // the factorisation's scratch is free again
+  Real* Lq = arena.take(n2);
+  Real* Qinv = arena.take(n2);
+  Real* Lp = arena.take(n2);
+  Real* Lr = arena.take(std::size_t(p) * p);
+  Real* rho = arena.take(n);  // Q⁻¹ r_t of the transition from t
+  Real* res = arena.take(n);
+  Real* e = arena.take(p);
+  Real* cs = arena.take(std::size_t(n > p ? n : p) + 1);
+  Real* tmp = arena.take(n);
+  Real* tmp2 = arena.take(n);
+
+  // Time-invariant Q and the prior: factor once.
+  if (T > 1 && !P.Q_tv) {
+    sym_lower<Real, NK>(Lq, P.Q, n);
+    if (!cholesky<Real, NK>(Lq, Lq, n, cs)) return false;
+    for (int j = 0; j < n; ++j) {  // Q⁻¹ as a matrix: independent dot products, no chains
+      for (int i = 0; i < n; ++i) rho[i] = Real(i == j);
+      lsolve_vec<Real, NK>(Lq, rho, rho, n);
+      ltsolve_vec_inplace<Real, NK>(Lq, rho, n);
+      for (int i = 0; i < n; ++i) Qinv[i * n + j] = rho[i];
+    }
+  }
+  if (P.P0 != nullptr) {
+    sym_lower<Real, NK>(Lp, P.P0, n);
+    if (!cholesky<Real, NK>(Lp, Lp, n, cs)) return false;
+  }
+
+  std::vector<Real> d(Tn);
+  Real prev = std::numeric_limits<Real>::infinity();
+  for (int k = 0; k < kMaxRefineSteps; ++k) {
+    fill(d.data(), Tn, Real(0));
+    for (int t = 0; t < T; ++t) {
+      Real* rt = d.data() + std::size_t(t) * n;
+      const Real* xt = x + std::size_t(t) * n;
+      // Transition t → t+1: r_t += A_tᵀQ_t⁻¹ r'_t and r_{t+1} −= Q_t⁻¹ r'_t.
+      if (t + 1 < T) {
+        const Real* At = P.At(t);
+        const Real* bt = P.b != nullptr ? P.bt(t) : nullptr;
+        for (int i = 0; i < n; ++i)
+          res[i] = xt[n + i] - dot<Real, NK>(At + std::size_t(i) * n, xt, n) - (bt ? bt[i] : Real(0));
+        if (P.Q_tv) {
+          sym_lower<Real, NK>(Lq, P.Qt(t), n);
+          if (!cholesky<Real, NK>(Lq, Lq, n, cs)) return false;
+          lsolve_vec<Real, NK>(Lq, res, rho, n);
+          ltsolve_vec_inplace<Real, NK>(Lq, rho, n);
+        } else {
+          matvec<Real, NK>(rho, Qinv, res, n, n);
+        }
+        add_tmatvec<Real, NK>(rt, At, rho, n, n, Real(1));
+        for (int i = 0; i < n; ++i) rt[n + i] -= rho[i];
+      }
+      // Measurement t: r_t += C_tᵀ S_t e_t.
+      const Real* yt = P.y + std::size_t(t) * p;
+      const Real* dt = P.d != nullptr ? P.dt(t) : nullptr;
+      const Real* Ct = P.Ct(t);
+      const PatternBlocks<Real>* pb =
+          cache != nullptr ? cache->template lookup<NK>(P.w + std::size_t(t) * p) : nullptr;
+      if (pb != nullptr) {  // Cᵀ S e = Fᵀe with F = R_KK⁻¹C_K
+        if (!pb->ok) return false;
+        for (int a = 0; a < pb->k; ++a) {
+          const int i = pb->idx[a];
+          e[a] = yt[i] - (dt ? dt[i] : Real(0)) - dot<Real, NK>(Ct + std::size_t(i) * n, xt, n);
+        }
+        add_tmatvec<Real, NK>(rt, pb->F, e, pb->k, n, Real(1));
+      } else {
+        const int kk = observed(P.w + std::size_t(t) * p, p, idx);
+        if (kk > 0) {
+          if (!observed_cov_factor(Lr, P.Rt(t), p, idx, kk, cs)) return false;
+          for (int a = 0; a < kk; ++a)
+            e[a] = yt[idx[a]] - (dt ? dt[idx[a]] : Real(0)) - dot<Real, NK>(Ct + std::size_t(idx[a]) * n, xt, n);
+          lsolve_vec<Real, 0>(Lr, e, e, kk);
+          ltsolve_vec_inplace<Real, 0>(Lr, e, kk);  // S e on the observed entries
+          for (int a = 0; a < kk; ++a) {
+            const Real* Crow = Ct + std::size_t(idx[a]) * n;
+            for (int j = 0; j < n; ++j) rt[j] += e[a] * Crow[j];
+          }
+        }
+      }
+      // Prior: r_0 −= P_0⁻¹(x_0 − m_0).
+      if (t == 0 && P.P0 != nullptr) {
+        for (int i = 0; i < n; ++i) res[i] = x[i] - (P.m0 != nullptr ? P.m0[i] : Real(0));
+        lsolve_vec<Real, NK>(Lp, res, res, n);
+        ltsolve_vec_inplace<Real, NK>(Lp, res, n);
+        for (int i = 0; i < n; ++i) rt[i] -= res[i];
+      }
+      forward_step<Real, NK>(F, t, t > 0 ? rt - n : nullptr, rt, n, tmp, tmp2);
+    }
+    // Back substitution, adding the correction to x as it comes.
+    Real dmax = 0, xmax = 0;
+    bool finite = true;
+    for (int t = T - 1; t >= 0; --t) {
+      Real* dt_ = d.data() + std::size_t(t) * n;
+      back_step<Real, NK>(F, t, t == T - 1 ? nullptr : dt_ + n, dt_, n, tmp, tmp2);
+      Real* xt = x + std::size_t(t) * n;
+      for (int i = 0; i < n; ++i) {
+        finite = finite && std::isfinite(dt_[i]);
+        dmax = std::max(dmax, std::abs(dt_[i]));
+        xmax = std::max(xmax, std::abs(xt[i]));
+        xt[i] += dt_[i];
+      }
+    }
+    if (!finite) return false;
+    const Real est = xmax > Real(0) ? dmax / xmax : dmax;
+    if (k > 0 && !(est < Real(0.5) * prev)) return false;  // stalled: more steps will not help
+    if (est <= tol) return true;
+    prev = est;
+  }
+  return false;
 }
 
 // Writes x and the factor (Li = L_t⁻¹ blocks, M or subT: see FactorView).
@@ -451,6 +603,7 @@ int forward_one(const Trajectory<Real>& P, Real* x, Real* Li, Real* M, Real* sub
   F.M = M;
   F.subT = fixed_transition ? subT_out : nullptr;
   back_substitute<Real, NK>(F, x, T, n, tmp, tmp2);
+  if (ok) ok = refine_one<Real, NK>(P, F, x, ws, idx, cache) ? 1 : 0;
   if (!ok) fill(x, Tn, nan);
   return ok;
 }
