@@ -39,7 +39,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from .normal_equations import objective
+from .linalg import chol, lsolve_vec
+from .normal_equations import masked_measurement_cov, observed_residual, transition_residual
 
 # Largest estimated relative forward error (‖δ‖∞ / ‖x‖∞) of an answer we
 # return. A design choice, not a published value: 1e-6 keeps six significant
@@ -54,8 +55,28 @@ def trusted_error(dtype) -> float:
 
 
 def residual(model, y, w, x):
-    """−∇ₓJ(x) = g − H x for the model (H never formed): (T, n)."""
-    return -jax.grad(objective, argnums=3)(model, y, w, x)
+    """−∇ₓJ(x) = g − H x for the model, with H never formed: (T, n).
+
+        −∇ₓJ = Σ_t C_tᵀS_t e_t + [t<T-1] A_tᵀQ_t⁻¹r_t − [t≥1] Q_{t-1}⁻¹r_{t-1} − [t=0] P_0⁻¹(x_0 − m_0)
+
+    with e_t, r_t the measurement and transition residuals (normal_equations),
+    formed before any weighting. Written out rather than as jax.grad of the
+    objective: the same numbers, without an autodiff tape over T.
+    """
+    e = observed_residual(model, y, w, x)
+    Lr = chol(masked_measurement_cov(model.R, w))
+    Se = w * lsolve_vec(Lr, lsolve_vec(Lr, e), transpose=True)  # S_t e_t
+    r = jnp.einsum("...pi,...p->...i", model.C, Se)
+    if x.shape[0] > 1:
+        Lq = chol(model.Q)
+        Qr = lsolve_vec(Lq, lsolve_vec(Lq, transition_residual(model, x)), transpose=True)
+        r = r.at[:-1].add(jnp.einsum("...ki,...k->...i", model.A, Qr))
+        r = r.at[1:].add(-Qr)
+    if model.x0_cov is not None:
+        Lp = chol(model.x0_cov)
+        d0 = x[0] - (0 if model.x0_mean is None else model.x0_mean)
+        r = r.at[0].add(-lsolve_vec(Lp, lsolve_vec(Lp, d0), transpose=True))
+    return r
 
 
 # At most this many refinement steps; more are only taken while the estimate

@@ -116,7 +116,7 @@ def objective(model: StateSpace, y, w, x):
     Lr = chol(masked_measurement_cov(model.R, w))
     val = 0.5 * jnp.sum(lsolve_vec(Lr, e) ** 2)
     if x.shape[0] > 1:
-        r = _transition_residual(model, x)
+        r = transition_residual(model, x)
         val = val + 0.5 * jnp.sum(lsolve_vec(chol(model.Q), r) ** 2)
     if model.x0_cov is not None:
         d0 = x[0] - (0 if model.x0_mean is None else model.x0_mean)
@@ -124,7 +124,8 @@ def objective(model: StateSpace, y, w, x):
     return val
 
 
-def _transition_residual(model: StateSpace, x):
+def transition_residual(model: StateSpace, x):
+    """r_t = x_{t+1} − A_t x_t − b_t: (T-1, n)."""
     r = x[1:] - matvec(model.A, x[:-1])
     if model.b is not None:
         r = r - model.b
@@ -151,7 +152,7 @@ def stationarity_pairing(model: StateSpace, y, w, x, u):
     Se = w * lsolve_vec(Lr, lsolve_vec(Lr, e), transpose=True)  # S_t e_t
     val = -jnp.sum(matvec(model.C, u) * Se)
     if x.shape[0] > 1:
-        r = _transition_residual(model, x)
+        r = transition_residual(model, x)
         Lq = chol(model.Q)
         Qr = lsolve_vec(Lq, lsolve_vec(Lq, r), transpose=True)
         du = u[1:] - matvec(model.A, u[:-1])
