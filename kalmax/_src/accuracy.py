@@ -39,8 +39,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from .linalg import chol, lsolve_vec
-from .normal_equations import masked_measurement_cov, observed_residual, transition_residual
+from .normal_equations import weighted_residuals
 
 # Largest estimated relative forward error (‖δ‖∞ / ‖x‖∞) of an answer we
 # return. A design choice, not a published value: 1e-6 keeps six significant
@@ -63,26 +62,20 @@ def residual(model, y, w, x):
     formed before any weighting. Written out rather than as jax.grad of the
     objective: the same numbers, without an autodiff tape over T.
     """
-    e = observed_residual(model, y, w, x)
-    Lr = chol(masked_measurement_cov(model.R, w))
-    Se = w * lsolve_vec(Lr, lsolve_vec(Lr, e), transpose=True)  # S_t e_t
+    Se, Qr, P0d = weighted_residuals(model, y, w, x)
     r = jnp.einsum("...pi,...p->...i", model.C, Se)
-    if x.shape[0] > 1:
-        Lq = chol(model.Q)
-        Qr = lsolve_vec(Lq, lsolve_vec(Lq, transition_residual(model, x)), transpose=True)
+    if Qr is not None:
         r = r.at[:-1].add(jnp.einsum("...ki,...k->...i", model.A, Qr))
         r = r.at[1:].add(-Qr)
-    if model.x0_cov is not None:
-        Lp = chol(model.x0_cov)
-        d0 = x[0] - (0 if model.x0_mean is None else model.x0_mean)
-        r = r.at[0].add(-lsolve_vec(Lp, lsolve_vec(Lp, d0), transpose=True))
+    if P0d is not None:
+        r = r.at[0].add(-P0d)
     return r
 
 
 # At most this many refinement steps; more are only taken while the estimate
 # is above the bar and keeps halving (each step shrinks the error by about
-# κ(H)·eps, so a problem that needs more than a few is better solved by the
-# orthogonal method).
+# κ(H)·eps, so a problem that needs more than a few is too ill-conditioned
+# for the dtype and comes back NaN).
 MAX_STEPS = 4
 
 

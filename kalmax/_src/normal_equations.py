@@ -147,18 +147,33 @@ def stationarity_pairing(model: StateSpace, y, w, x, u):
     which is a sum of per-step terms: O(T (n² + p²)) work plus O(T p³) for the
     per-step Cholesky factors of R̃_t, and no recursion over time.
     """
-    e = observed_residual(model, y, w, x)
-    Lr = chol(masked_measurement_cov(model.R, w))
-    Se = w * lsolve_vec(Lr, lsolve_vec(Lr, e), transpose=True)  # S_t e_t
+    Se, Qr, P0d = weighted_residuals(model, y, w, x)
     val = -jnp.sum(matvec(model.C, u) * Se)
-    if x.shape[0] > 1:
-        r = transition_residual(model, x)
-        Lq = chol(model.Q)
-        Qr = lsolve_vec(Lq, lsolve_vec(Lq, r), transpose=True)
+    if Qr is not None:
         du = u[1:] - matvec(model.A, u[:-1])
         val = val + jnp.sum(du * Qr)
+    if P0d is not None:
+        val = val + jnp.dot(u[0], P0d)
+    return val
+
+
+def weighted_residuals(model: StateSpace, y, w, x):
+    """The residuals of x weighted by their precisions, each formed before weighting.
+
+    Returns (S_t e_t (T, p), Q_t⁻¹ r_t (T-1, n) or None when T = 1,
+    P_0⁻¹(x_0 − m_0) (n,) or None for a flat prior). −∇ₓJ and the
+    stationarity pairing are both linear in these.
+    """
+    e = observed_residual(model, y, w, x)
+    Lr = chol(masked_measurement_cov(model.R, w))
+    Se = w * lsolve_vec(Lr, lsolve_vec(Lr, e), transpose=True)
+    Qr = None
+    if x.shape[0] > 1:
+        Lq = chol(model.Q)
+        Qr = lsolve_vec(Lq, lsolve_vec(Lq, transition_residual(model, x)), transpose=True)
+    P0d = None
     if model.x0_cov is not None:
         Lp = chol(model.x0_cov)
         d0 = x[0] - (0 if model.x0_mean is None else model.x0_mean)
-        val = val + jnp.dot(u[0], lsolve_vec(Lp, lsolve_vec(Lp, d0), transpose=True))
-    return val
+        P0d = lsolve_vec(Lp, lsolve_vec(Lp, d0), transpose=True)
+    return Se, Qr, P0d

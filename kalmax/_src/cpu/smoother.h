@@ -270,7 +270,7 @@ inline Real pivot_tolerance(int n) {
 }
 
 // ---------------------------------------------------------------------------
-// Forward-error check and one step of refinement (kalmax/_src/accuracy.py).
+// Forward-error check and iterative refinement (kalmax/_src/accuracy.py).
 //
 // Forming H squares the condition number: information that is small next to
 // the rest of H_tt (a quiet measurement beside a tight transition) is partly
