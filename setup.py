@@ -2,8 +2,8 @@
 
 The kernel is a plain C++ shared library with XLA FFI handlers; it uses no
 Python C API. It is built as a setuptools extension only so that
-``pip install .`` compiles it and puts it next to ``kalmax/_src/cpu_backend.py``,
-which loads it with ctypes and registers its handlers with ``jax.ffi``.
+``pip install .`` compiles it and puts it in ``kalmax/_src``, where ``kalmax/_src/backends/cpu.py``
+loads it with ctypes and registers its handlers with ``jax.ffi``.
 
 XLA FFI headers: we compile against the copies in ``kalmax/_src/cpu/include``,
 taken unchanged from jaxlib 0.10.2, the oldest jaxlib that pyproject.toml

@@ -52,7 +52,7 @@ def main(argv=None):
     import numpy as np
 
     import kalmax as kx
-    from kalmax._src import primitive
+    from kalmax._src.backends import registry
     from parallel import make_problem
 
     platform = jax.default_backend()
@@ -64,7 +64,7 @@ def main(argv=None):
         Ts = [1_000, 10_000, 100_000, 1_000_000] if on_accel else [1_000, 10_000]
     dtype = jnp.dtype(args.dtype)
     out = dict(platform=platform, device=str(getattr(dev, "device_kind", dev)), jax=jax.__version__,
-               dtype=args.dtype, n=args.n, p=2, auto_method=primitive.resolve_method("auto"), cases=[])
+               dtype=args.dtype, n=args.n, p=2, auto_method=registry.resolve_method("auto"), cases=[])
 
     def cast(tree):
         return jax.tree_util.tree_map(lambda a: a.astype(dtype) if jnp.issubdtype(a.dtype, jnp.floating) else a, tree)

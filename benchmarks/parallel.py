@@ -117,9 +117,9 @@ def time_it(fn, args, repeats=5, budget_s=20.0):
 
 
 def available_methods():
-    from kalmax._src import primitive
+    from kalmax._src.backends import registry
 
-    return [m for m in ("parallel", "scan", "scan-recompute", "cpu") if m in primitive._BACKENDS]
+    return [m for m in ("parallel", "scan", "scan-recompute", "cpu") if registry.is_available(m)]
 
 
 def timing_table(Ts, ns, p=2):

@@ -301,7 +301,7 @@ def main(argv=None):
 
     jax.config.update("jax_enable_x64", True)
     import kalmax as kx  # noqa: F401  (registers the kernel)
-    from kalmax._src import cpu_backend
+    from kalmax._src.backends import cpu as cpu_backend
 
     if not cpu_backend.available():
         sys.exit(f"the compiled kernel is not available: {cpu_backend.LOAD_ERROR}")

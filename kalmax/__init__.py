@@ -9,9 +9,6 @@ from ._src.smoothing import smooth as smooth
 from ._src.validation import condition_estimate as condition_estimate
 from ._src.validation import validate as validate
 
-# The compiled CPU kernel registers method="cpu" (the default on CPU) when its library loads.
-from ._src import cpu_backend as _cpu_backend  # noqa: E402,F401
-
 # Learning layer: held-out splits, parameterisations, proximal steps, fitting, EM.
 from ._src.em import em as em
 from ._src.fitting import FitResult as FitResult
@@ -51,10 +48,7 @@ from ._src.io import load_model as load_model
 from ._src.io import save_model as save_model
 from ._src.spec import ModelSpec as ModelSpec
 
-# Scale: parallel-in-time solve (method="parallel"), low-memory sequential solve
-# (method="scan-recompute"), and data-parallel helpers over a device mesh.
-from ._src import parallel as _parallel  # noqa: E402,F401  (registers method="parallel")
-from ._src import recompute as _recompute  # noqa: E402,F401  (registers method="scan-recompute")
+# Scale: data-parallel helpers over a device mesh (the solver backends are in _src/backends).
 from ._src.sharding import batch_mesh as batch_mesh
 from ._src.sharding import data_parallel as data_parallel
 from ._src.sharding import pad_batch as pad_batch

@@ -43,3 +43,19 @@ def _release_compiled_code():
     import gc
 
     gc.collect()
+
+
+@pytest.fixture
+def temporary_backend():
+    """``temporary_backend(name, backend)`` registers a solver backend for this test only.
+
+    Registered backends are global: one added at import time by a test file
+    would change what other files' backend-parametrised tests collect. This
+    removes (or restores) the entry when the test ends.
+    """
+    import contextlib
+
+    from kalmax._src.backends import registry
+
+    with contextlib.ExitStack() as stack:
+        yield lambda name, backend: stack.enter_context(registry.temporary(name, backend))

@@ -24,8 +24,8 @@ FIELD_NAMES = ("A", "Q", "b", "C", "R", "d")
 def backends():
     """Names of the registered solver backends ("scan", and "cpu" when the
     compiled kernel loaded), so that tests cover each one explicitly."""
-    from kalmax._src.primitive import _BACKENDS
-    return sorted(_BACKENDS)
+    from kalmax._src.backends import registry
+    return list(registry.available())
 
 
 def eps(dtype) -> float:

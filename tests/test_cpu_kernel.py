@@ -24,7 +24,9 @@ import pytest
 jax.config.update("jax_enable_x64", True)
 
 import kalmax as kx  # noqa: E402
-from kalmax._src import blocktri, cpu_backend, primitive  # noqa: E402
+from kalmax._src import blocktri  # noqa: E402
+from kalmax._src.backends import cpu as cpu_backend, registry  # noqa: E402
+from kalmax._src.backends.scan import SCAN  # noqa: E402
 from kalmax._src.checks import canonicalize  # noqa: E402
 
 from helpers import to_model  # noqa: E402
@@ -34,9 +36,6 @@ pytestmark = pytest.mark.skipif(
     bool(os.environ.get("KALMAX_NO_KERNEL")), reason="kernel build disabled by KALMAX_NO_KERNEL"
 )
 
-# The JAX-autodiff backward pass on the kernel's own factor: oracle for the
-# fused gradient kernel.
-primitive.register_backend("cpu-jax-gradients", cpu_backend.CPU_JAX_GRADIENTS)
 
 FIELDS = ("A", "C", "Q", "R", "b", "d", "x0_mean", "x0_cov")
 
@@ -97,26 +96,26 @@ def test_kernel_registered_against_installed_jaxlib():
     assert cpu_backend.available() and cpu_backend.library_path() is not None
     # The vendored headers the kernel is built against must not be newer than
     # the installed jaxlib's FFI API (a newer handler is refused at registration).
-    vendored = os.path.join(os.path.dirname(cpu_backend.__file__), "cpu", "include")
+    vendored = os.path.join(os.path.dirname(os.path.dirname(cpu_backend.__file__)), "cpu", "include")
     built, installed = _api_version(vendored), _api_version(jax.ffi.include_dir())
     assert built[0] == installed[0] and built[1] <= installed[1], (built, installed)
     # Registration went through at import (LOAD_ERROR is None); every other
     # test here then calls the registered targets.
-    assert "cpu" in primitive.METHODS
+    assert "cpu" in registry.available()
 
 
 def test_auto_dispatches_to_kernel_on_cpu():
     assert jax.default_backend() == "cpu"
-    assert primitive.resolve_method("auto") == "cpu"
-    assert primitive.resolve_method("scan") == "scan"
+    assert registry.resolve_method("auto") == "cpu"
+    assert registry.resolve_method("scan") == "scan"
 
 
 def test_missing_kernel_gives_clear_error(monkeypatch):
-    monkeypatch.delitem(primitive._BACKENDS, "cpu")
-    monkeypatch.setattr(cpu_backend, "LOAD_ERROR", "test: library removed")
-    assert primitive.resolve_method("auto") == "scan"
-    with pytest.raises(ValueError, match="compiled CPU kernel.*library removed"):
-        primitive.resolve_method("cpu")
+    monkeypatch.setitem(registry._TABLE, "cpu", registry.Unavailable("test: library removed"))
+    assert registry.resolve_method("auto") == "scan"
+    assert registry.unavailable() == {"cpu": "test: library removed"}
+    with pytest.raises(ValueError, match="method='cpu' is not available here: test: library removed"):
+        registry.resolve_method("cpu")
 
 
 # ---------------------------------------------------------------------------
@@ -127,7 +126,7 @@ def test_missing_kernel_gives_clear_error(monkeypatch):
     "time_varying,prior,offsets",
     [(True, True, True), (True, False, False), (False, True, False), (False, False, True)],
 )
-def test_values_and_gradients_match_scan(rng, time_varying, prior, offsets):
+def test_values_and_gradients_match_scan(rng, time_varying, prior, offsets, temporary_backend):
     model, y, mask = _problem(rng, time_varying=time_varying, prior=prior, offsets=offsets)
     assert (~mask).all(axis=1).any(), "want at least one fully missing step"
     xs = _states(model, y, "scan")
@@ -143,6 +142,7 @@ def test_values_and_gradients_match_scan(rng, time_varying, prior, offsets):
     assert np.all(np.asarray(yc)[~mask] == 0)
 
     # Fused gradient kernel vs JAX autodiff of the pairing on the same factor.
+    temporary_backend("cpu-jax-gradients", cpu_backend.CPU_JAX_GRADIENTS)
     _, gj, yj = _value_and_grads(model, y, "cpu-jax-gradients")
     _assert_tree_close(gc, gj, rtol=1e-9, atol=1e-11, what="fused-vs-jax")
     np.testing.assert_allclose(yc, yj, rtol=1e-9, atol=1e-11)
@@ -161,7 +161,7 @@ def test_adjoint_solve_and_log_likelihood_match(rng):
     m, yy, msk, _, dt = canonicalize(model, y, None)
     w = msk.astype(dt)
     _, fac_c = cpu_backend.forward(m, yy, w)
-    _, fac_s = primitive.SCAN.forward(m, yy, w)
+    _, fac_s = SCAN.forward(m, yy, w)
     v = jnp.asarray(rng.standard_normal(yy.shape[:1] + (m.A.shape[-1],)))
     np.testing.assert_allclose(cpu_backend.adjoint(fac_c, v), blocktri.solve(fac_s, v), rtol=1e-9, atol=1e-10)
     # The compact factor (no stored M) expands to the scan path's factor.

@@ -243,8 +243,8 @@ print("survived")
 
 
 def _methods():
-    from kalmax._src.primitive import _BACKENDS
-    return sorted(_BACKENDS)
+    from kalmax._src.backends import registry
+    return list(registry.available())
 
 
 @pytest.mark.parametrize("n,p", [

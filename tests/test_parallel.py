@@ -20,7 +20,9 @@ import pytest  # noqa: E402
 import kalmax as kx  # noqa: E402
 import reference as ref  # noqa: E402
 from helpers import to_model  # noqa: E402
-from kalmax._src import blocktri, parallel, primitive, recompute  # noqa: E402
+from kalmax._src import blocktri  # noqa: E402
+from kalmax._src.backends import cyclic_reduction as parallel, recompute, registry  # noqa: E402
+from kalmax._src.backends.base import Backend  # noqa: E402
 from kalmax._src.normal_equations import assemble  # noqa: E402
 
 N, P = 3, 2
@@ -195,15 +197,15 @@ def test_vmap_and_jit_compose(rng):
 
 
 def test_auto_is_parallel_on_accelerators(monkeypatch):
-    monkeypatch.setattr(primitive.jax, "default_backend", lambda: "gpu")
-    assert primitive.resolve_method("auto") == "parallel"
-    monkeypatch.setattr(primitive.jax, "default_backend", lambda: "tpu")
-    assert primitive.resolve_method("auto") == "parallel"
-    monkeypatch.setattr(primitive.jax, "default_backend", lambda: "cpu")
-    assert primitive.resolve_method("auto") != "parallel"
+    monkeypatch.setattr(registry.jax, "default_backend", lambda: "gpu")
+    assert registry.resolve_method("auto") == "parallel"
+    monkeypatch.setattr(registry.jax, "default_backend", lambda: "tpu")
+    assert registry.resolve_method("auto") == "parallel"
+    monkeypatch.setattr(registry.jax, "default_backend", lambda: "cpu")
+    assert registry.resolve_method("auto") != "parallel"
 
 
-def test_parallel_factor_is_reused_in_the_backward_pass(rng, monkeypatch):
+def test_parallel_factor_is_reused_in_the_backward_pass(rng, monkeypatch, temporary_backend):
     # The VJP must call the backend's adjoint on the stored factor and must
     # not factor again: count factorisations while differentiating.
     T = T0
@@ -220,14 +222,11 @@ def test_parallel_factor_is_reused_in_the_backward_pass(rng, monkeypatch):
         return real_solve(*a)
 
     monkeypatch.setattr(parallel, "factor_solve", counting_factor)
-    primitive.register_backend("parallel-counted", primitive.Backend(
+    temporary_backend("parallel-counted", Backend(
         forward=lambda m, yy, w: counting_factor(*assemble(m, yy, w)), adjoint=counting_solve,
         logdet=parallel.logdet, band_inverse=parallel.band_inverse))
-    try:
-        # Under jit the Python callables run once, at trace time.
-        jax.jit(jax.grad(lambda m: jnp.sum(kx.smooth(m, y, jnp.asarray(mask), method="parallel-counted").states)))(model)
-    finally:
-        primitive._BACKENDS.pop("parallel-counted")
+    # Under jit the Python callables run once, at trace time.
+    jax.jit(jax.grad(lambda m: jnp.sum(kx.smooth(m, y, jnp.asarray(mask), method="parallel-counted").states)))(model)
     assert calls == {"factor": 1, "adjoint": 1}
 
 

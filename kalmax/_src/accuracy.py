@@ -37,21 +37,10 @@ from __future__ import annotations
 
 import jax
 import jax.numpy as jnp
-import numpy as np
 
+from . import tolerances
 from .normal_equations import weighted_residuals
-
-# Largest estimated relative forward error (‖δ‖∞ / ‖x‖∞) of an answer we
-# return. A design choice, not a published value: 1e-6 keeps six significant
-# digits in float64; float32 carries only about seven in all, so 1e-3 keeps
-# three. Must match trusted_error in cpu/smoother.h.
-_TRUSTED = {np.dtype(np.float64): 1e-6, np.dtype(np.float32): 1e-3}
-
-
-def trusted_error(dtype) -> float:
-    """The largest estimated relative error of a returned answer, for ``dtype``."""
-    return _TRUSTED[np.dtype(dtype)]
-
+from .tolerances import trusted_error  # noqa: F401  (re-exported: callers ask accuracy for the bar)
 
 def residual(model, y, w, x):
     """−∇ₓJ(x) = g − H x for the model, with H never formed: (T, n).
@@ -72,13 +61,6 @@ def residual(model, y, w, x):
     return r
 
 
-# At most this many refinement steps; more are only taken while the estimate
-# is above the bar and keeps halving (each step shrinks the error by about
-# κ(H)·eps, so a problem that needs more than a few is too ill-conditioned
-# for the dtype and comes back NaN).
-MAX_STEPS = 4
-
-
 def _relative(d, x):
     scale = jnp.max(jnp.abs(x))
     err = jnp.max(jnp.abs(d))
@@ -97,7 +79,7 @@ def refine(model, y, w, x, ok, factor, solve):
     Returns:
         (x', ok'). Corrections δ_k = H⁻¹(−∇J(x_k)) are added while the estimated
         relative error ‖δ_k‖∞/‖x_k‖∞ is above :func:`trusted_error`, it keeps
-        halving, and fewer than MAX_STEPS were taken (usually one is enough).
+        shrinking by ``tolerances.stall_ratio()``, and fewer than ``tolerances.max_refine_steps()`` were taken (usually one is enough).
         ok' is False, and x' NaN, when ok was False or the last estimate is still
         above the bar (or NaN).
 
@@ -108,7 +90,9 @@ def refine(model, y, w, x, ok, factor, solve):
     higher-order differentiation of the plain-JAX paths working (reverse mode
     cannot pass through a while loop).
     """
-    tol = trusted_error(x.dtype)
+    tol = tolerances.trusted_error(x.dtype)
+    max_steps = tolerances.max_refine_steps()
+    stall = tolerances.stall_ratio()
     x_in = x
     model, y, w, x, factor = jax.lax.stop_gradient((model, y, jnp.asarray(w), x, factor))
 
@@ -118,13 +102,13 @@ def refine(model, y, w, x, ok, factor, solve):
 
     def more(state):
         _, _, est, k, stalled = state
-        return (est > tol) & (k < MAX_STEPS) & jnp.logical_not(stalled) & jnp.isfinite(est)
+        return (est > tol) & (k < max_steps) & jnp.logical_not(stalled) & jnp.isfinite(est)
 
     def step(state):
         x_k, d, est, k, _ = state
         x_next = x_k + d
         d_next, est_next = correction(x_next)
-        return x_next, d_next, est_next, k + 1, jnp.logical_not(est_next < 0.5 * est)
+        return x_next, d_next, est_next, k + 1, jnp.logical_not(est_next < stall * est)
 
     d, est = correction(x)
     x, d, est, _, _ = jax.lax.while_loop(more, step, (x, d, est, jnp.int32(1), jnp.bool_(False)))

@@ -25,6 +25,7 @@ from typing import NamedTuple
 import jax.numpy as jnp
 from jax import lax
 
+from .tolerances import pivot_tolerance
 from .linalg import chol, lsolve, lsolve_vec, matvec, mT
 
 
@@ -39,19 +40,6 @@ class BlockFactor(NamedTuple):
     L: object
     M: object
     ok: object
-
-
-def pivot_tolerance(dtype, n: int) -> float:
-    # A pivot whose square falls below this fraction of the corresponding
-    # diagonal entry of H has lost nearly all of its significant digits.
-    # Common practice for rank detection in Cholesky-type factorisations is a
-    # small multiple of n·eps; we also keep a floor of eps^(2/3), because
-    # rounding in the Schur-complement recursion of a truly singular system was
-    # measured at ~1e4·eps in float64 (2e-12 after six steps with the compiled
-    # kernel's operation order), above 100·n·eps. Must match
-    # pivot_tolerance in cpu/smoother.h.
-    eps = float(jnp.finfo(dtype).eps)
-    return max(100 * n * eps, eps ** (2 / 3))
 
 
 def _pivot_ratio(Lt, Ht):

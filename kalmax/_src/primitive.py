@@ -20,75 +20,21 @@ b, d, the prior and the measurements y) gets its gradient from the same
 expression.
 
 Backends: the solve itself is pluggable so that compiled kernels and
-parallel-in-time variants can sit behind the same VJP. Each backend provides
-``forward(model, y, w) -> (x, factor)`` and ``adjoint(factor, v) -> H⁻¹ v``.
+parallel-in-time variants can sit behind the same VJP (``backends/``: what a
+backend is in ``base.py``, the table in ``registry.py``).
 """
 
 from __future__ import annotations
 
 from functools import partial
-from typing import Callable, Dict, NamedTuple, Optional
-
 import jax
 import jax.numpy as jnp
 
-from . import accuracy, blocktri
+from . import blocktri
+from .backends.base import Backend
+from .backends.registry import get_backend, resolve_method
 from .model import StateSpace
-from .normal_equations import assemble, stationarity_pairing
-
-
-class Backend(NamedTuple):
-    forward: Callable  # (model, y, w) -> (x (T, n), factor)
-    adjoint: Callable  # (factor, v (T, n)) -> H⁻¹ v
-    logdet: Callable  # (factor) -> log|H|
-    # (factor) -> (Σ_tt (T, n, n), Σ_{t+1,t} (T-1, n, n)), the band of H⁻¹.
-    # None: the factor is a blocktri.BlockFactor and blocktri.selected_inverse applies.
-    band_inverse: Optional[Callable] = None
-    # (model, y, w, x, factor, x_bar) -> (model_bar, y_bar): the whole backward
-    # pass in one call (a fused compiled kernel). None: adjoint solve plus JAX
-    # autodiff of stationarity_pairing.
-    gradients: Optional[Callable] = None
-
-
-def _scan_forward(model, y, w):
-    system = assemble(model, y, w)
-    x, factor = blocktri.factor_solve(system.diag, system.sub, system.rhs)
-    x, ok = accuracy.refine(model, y, w, x, factor.ok, factor, blocktri.solve)
-    return x, factor._replace(ok=ok)
-
-
-SCAN = Backend(forward=_scan_forward, adjoint=blocktri.solve, logdet=blocktri.logdet)
-
-_BACKENDS: Dict[str, Backend] = {"scan": SCAN}
-METHODS = ("auto", "scan", "cpu")
-
-
-def register_backend(name: str, backend: Backend) -> None:
-    """Make a solver backend selectable as ``method=name``."""
-    _BACKENDS[name] = backend
-
-
-def resolve_method(method: str) -> str:
-    if method == "auto":
-        platform = jax.default_backend()
-        # Accelerators: the parallel-in-time solve (O(log T) depth, registered
-        # by kalmax._src.parallel) keeps the device busy; a scan would not.
-        if platform in ("gpu", "cuda", "rocm", "tpu") and "parallel" in _BACKENDS:
-            return "parallel"
-        # The compiled kernel registers itself as "cpu" only when its library loaded.
-        return "cpu" if "cpu" in _BACKENDS and platform == "cpu" else "scan"
-    if method not in _BACKENDS:
-        why = ""
-        if method == "cpu":
-            from . import cpu_backend  # only to explain why the kernel is missing
-
-            why = f" method='cpu' needs the compiled CPU kernel, which is not available: {cpu_backend.LOAD_ERROR}"
-        raise ValueError(f"method must be one of {sorted(set(_BACKENDS) | {'auto'})}; got {method!r}.{why}")
-    return method
-
-
-def get_backend(method: str) -> Backend:
-    return _BACKENDS[resolve_method(method)]
+from .normal_equations import stationarity_pairing
 
 
 def band_inverse(backend: Backend, factor):

@@ -347,7 +347,16 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
                        ffi::AnyBuffer R, ffi::AnyBuffer d, ffi::AnyBuffer m0, ffi::AnyBuffer P0,
                        ffi::AnyBuffer y, ffi::AnyBuffer w, ffi::Result<ffi::AnyBuffer> x,
                        ffi::Result<ffi::AnyBuffer> L, ffi::Result<ffi::AnyBuffer> M,
-                       ffi::Result<ffi::AnyBuffer> subT, ffi::Result<ffi::Buffer<ffi::S32>> ok) {
+                       ffi::Result<ffi::AnyBuffer> subT, ffi::Result<ffi::Buffer<ffi::S32>> ok,
+                       double pivot_tolerance, double trusted_error, int32_t max_refine_steps,
+                       double stall_ratio) {
+  SolveSettings settings;
+  settings.pivot_tolerance = pivot_tolerance;
+  settings.trusted_error = trusted_error;
+  settings.max_refine_steps = max_refine_steps;
+  settings.stall_ratio = stall_ratio;
+  if (!(pivot_tolerance >= 0) || !(trusted_error >= 0) || max_refine_steps < 1 || !(stall_ratio > 0))
+    return ffi::Error::InvalidArgument("kalmax_cpu: invalid solve settings");
   BatchShape bs;
   if (ffi::Error e = batch_from_output(x->dimensions(), 2, &bs); e.failure()) return e;
   const auto xd = x->dimensions();
@@ -389,7 +398,7 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
           const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
           oko[bi] = forward_one<Real, NK>(P, xo + bi * std::size_t(T) * n, Lo + bi * std::size_t(T) * n2,
                                           Mo + bi * std::size_t(m_blocks) * n2, So + bi * n2,
-                                          ws.data(), idx.data(), caches.get(P));
+                                          ws.data(), idx.data(), caches.get(P), settings);
         }
       });
       return ffi::Error::Success();
@@ -567,7 +576,12 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuForward, kc::ForwardImpl,
                                   .Ret<ffi::AnyBuffer>()  // L
                                   .Ret<ffi::AnyBuffer>()  // M
                                   .Ret<ffi::AnyBuffer>()  // subT
-                                  .Ret<ffi::Buffer<ffi::S32>>());  // ok
+                                  .Ret<ffi::Buffer<ffi::S32>>()  // ok
+                                  // Settings from kalmax/_src/tolerances.py (never copied here).
+                                  .Attr<double>("pivot_tolerance")
+                                  .Attr<double>("trusted_error")
+                                  .Attr<int32_t>("max_refine_steps")
+                                  .Attr<double>("stall_ratio"));
 
 XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuSolve, kc::SolveImpl,
                               ffi::Ffi::Bind()

@@ -256,18 +256,16 @@ void solve_one(const FactorView<Real>& F, bool ok, const Real* v, Real* x, int T
 // ---------------------------------------------------------------------------
 // Forward: assemble, factorise and solve in one sweep.
 
-// A Schur complement whose pivots fell below this fraction of the matching
-// diagonal entry of H has lost all but a couple of digits to cancellation;
-// same rule and threshold as kalmax/_src/blocktri.py (common practice: a small
-// multiple of n·eps).
-template <class Real>
-inline Real pivot_tolerance(int n) {
-  // max(100·n·eps, eps^(2/3)): see blocktri.pivot_tolerance for why the floor.
-  const Real eps = std::numeric_limits<Real>::epsilon();
-  const Real a = Real(100) * Real(n) * eps;
-  const Real b = std::cbrt(eps * eps);
-  return a > b ? a : b;
-}
+// The numerical settings of a solve. They are not constants of this file:
+// kalmax/_src/tolerances.py defines them and kalmax/_src/backends/cpu.py
+// passes them on every call as XLA FFI attributes, so the JAX paths and the
+// kernel cannot drift apart.
+struct SolveSettings {
+  double pivot_tolerance = 0;  // smallest accepted (pivot)² / H_ii
+  double trusted_error = 0;    // largest accepted estimate ‖δ‖∞/‖x‖∞
+  int max_refine_steps = 0;    // at most this many corrections
+  double stall_ratio = 0;      // stop once an estimate is not below this × the previous one
+};
 
 // ---------------------------------------------------------------------------
 // Forward-error check and iterative refinement (kalmax/_src/accuracy.py).
@@ -281,28 +279,23 @@ inline Real pivot_tolerance(int n) {
 // the small terms keep their digits) gives δ = H⁻¹r ≈ x* − x. We add δ to x
 // and report the answer as untrusted when ‖δ‖∞/‖x‖∞ exceeds trusted_error.
 
-// Must match accuracy._TRUSTED: six significant digits in double, three in float.
-template <class Real>
-inline Real trusted_error() {
-  return std::numeric_limits<Real>::digits > 30 ? Real(1e-6) : Real(1e-3);
-}
-
 // Iterative refinement, as accuracy.refine: add δ_k = H⁻¹(−∇J(x_k)) while
-// ‖δ_k‖∞/‖x_k‖∞ is above trusted_error, keeps halving, and fewer than
-// kMaxRefineSteps were taken. False when the last estimate is still too big.
+// ‖δ_k‖∞/‖x_k‖∞ is above the trusted error, keeps shrinking by the stall
+// ratio, and fewer than max_refine_steps were taken. The verdict is made on
+// the last estimate alone: one that stalled inside the tolerance is
+// accepted. False when the last estimate is still too big.
 //
 // One step is two sweeps. The first forms r_t = −∇J(x)_t and at once runs the
 // forward substitution on it: the residual of step t needs only x (known),
 // so its arithmetic has no dependency on the substitution chain and overlaps
 // with it. The second back-substitutes and adds the correction to x.
-constexpr int kMaxRefineSteps = 4;  // must match accuracy.MAX_STEPS
-
 template <class Real, int NK>
 bool refine_one(const Trajectory<Real>& P, const FactorView<Real>& F, Real* x, Real* ws, int* idx,
-                PatternCache<Real>* cache) {
+                PatternCache<Real>* cache, const SolveSettings& settings) {
   const int T = P.T, n = fixed<NK>(P.n), p = P.p;
   const std::size_t n2 = std::size_t(n) * n, Tn = std::size_t(T) * n;
-  const Real tol = trusted_error<Real>();
+  const Real tol = static_cast<Real>(settings.trusted_error);
+  const Real stall = static_cast<Real>(settings.stall_ratio);
   Arena<Real> arena(ws);  // the factorisation's scratch is free again
   Real* Lq = arena.take(n2);
   Real* Qinv = arena.take(n2);
@@ -333,7 +326,7 @@ bool refine_one(const Trajectory<Real>& P, const FactorView<Real>& F, Real* x, R
 
   std::vector<Real> d(Tn);
   Real prev = std::numeric_limits<Real>::infinity();
-  for (int k = 0; k < kMaxRefineSteps; ++k) {
+  for (int k = 0; k < settings.max_refine_steps; ++k) {
     fill(d.data(), Tn, Real(0));
     for (int t = 0; t < T; ++t) {
       Real* rt = d.data() + std::size_t(t) * n;
@@ -407,8 +400,8 @@ bool refine_one(const Trajectory<Real>& P, const FactorView<Real>& F, Real* x, R
     }
     if (!finite) return false;
     const Real est = xmax > Real(0) ? dmax / xmax : dmax;
-    if (k > 0 && !(est < Real(0.5) * prev)) return false;  // stalled: more steps will not help
-    if (est <= tol) return true;
+    if (est <= tol) return true;  // accepted, whether or not it stalled on the way
+    if (k > 0 && !(est < stall * prev)) return false;  // stalled above the bar: more steps will not help
     prev = est;
   }
   return false;
@@ -426,7 +419,7 @@ bool refine_one(const Trajectory<Real>& P, const FactorView<Real>& F, Real* x, R
 // written and subT_out (n×n) receives H_subᵀ instead (see FactorView).
 template <class Real, int NK>
 int forward_one(const Trajectory<Real>& P, Real* x, Real* Li, Real* M, Real* subT_out, Real* ws,
-                int* idx, PatternCache<Real>* cache) {
+                int* idx, PatternCache<Real>* cache, const SolveSettings& settings) {
   const int T = P.T, n = fixed<NK>(P.n), p = P.p;
   const std::size_t n2 = std::size_t(n) * n;
   Arena<Real> arena(ws);
@@ -449,7 +442,7 @@ int forward_one(const Trajectory<Real>& P, Real* x, Real* Li, Real* M, Real* sub
   Real* wm = arena.take(n);
 
   const Real nan = quiet_nan<Real>();
-  const Real tol = pivot_tolerance<Real>(n);
+  const Real tol = static_cast<Real>(settings.pivot_tolerance);
   const bool fixed_transition = !P.A_tv && !P.Q_tv;
   Real* tmp = arena.take(n);
   Real* tmp2 = arena.take(n);
@@ -603,7 +596,7 @@ int forward_one(const Trajectory<Real>& P, Real* x, Real* Li, Real* M, Real* sub
   F.M = M;
   F.subT = fixed_transition ? subT_out : nullptr;
   back_substitute<Real, NK>(F, x, T, n, tmp, tmp2);
-  if (ok) ok = refine_one<Real, NK>(P, F, x, ws, idx, cache) ? 1 : 0;
+  if (ok) ok = refine_one<Real, NK>(P, F, x, ws, idx, cache, settings) ? 1 : 0;
   if (!ok) fill(x, Tn, nan);
   return ok;
 }

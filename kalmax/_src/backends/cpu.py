@@ -19,6 +19,10 @@ provides three XLA FFI targets:
   substitution so that u is used as soon as it is known. The formulas are in
   ``cpu/smoother.h``; the JAX path (``stationarity_pairing``) is the oracle.
 
+The numerical settings of the forward pass (pivot tolerance, trusted error,
+refinement steps, stall ratio) come from ``tolerances.py`` and travel as FFI
+attributes on every call: the kernel has no copies of them.
+
 Time-invariant fields are passed once (their rank tells the kernel); absent
 optional fields are passed as zero-size arrays. Every ``ffi_call`` uses
 ``vmap_method="expand_dims"``: under ``jax.vmap`` the kernel receives the
@@ -27,8 +31,8 @@ over the batch itself, so ``vmap``, ``grad`` and ``vmap`` of ``grad`` all reach
 one kernel call.
 
 If the library is missing or refused (e.g. built against a newer XLA FFI than
-the installed jaxlib), ``LOAD_ERROR`` says why, the backend is not registered,
-``method="auto"`` falls back to the pure-JAX ``"scan"`` path, and
+the installed jaxlib), ``LOAD_ERROR`` says why, the backend is registered as
+unavailable with that reason (``backends/__init__.py``), ``method="auto"`` falls back to the pure-JAX ``"scan"`` path, and
 ``method="cpu"`` raises a ValueError quoting the reason.
 
 Derivatives of the kernel calls themselves (needed only for second-order AD,
@@ -49,12 +53,14 @@ from typing import NamedTuple, Optional
 import jax
 import jax.numpy as jnp
 
-from . import accuracy, blocktri
-from .blocktri import BlockFactor
-from .linalg import lsolve, mT
-from .model import StateSpace
-from .normal_equations import assemble, stationarity_pairing
-from .primitive import Backend, register_backend
+import numpy as np
+
+from .. import blocktri, tolerances
+from ..blocktri import BlockFactor
+from ..linalg import lsolve, mT
+from ..model import StateSpace
+from ..normal_equations import stationarity_pairing
+from .base import Backend, checked_solve
 
 LIBRARY_STEM = "_cpu_kernel"
 
@@ -69,8 +75,8 @@ _VMAP = "expand_dims"  # the kernel loops over leading batch axes itself
 
 
 def library_path() -> Optional[str]:
-    """Path of the compiled kernel library next to this module, or None."""
-    here = os.path.dirname(os.path.abspath(__file__))
+    """Path of the compiled kernel library (built into ``kalmax/_src``), or None."""
+    here = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
     for suffix in importlib.machinery.EXTENSION_SUFFIXES:
         path = os.path.join(here, LIBRARY_STEM + suffix)
         if os.path.exists(path):
@@ -85,7 +91,7 @@ def _load() -> Optional[str]:
     path = library_path()
     if path is None:
         return (
-            f"no compiled library {LIBRARY_STEM}*.so in {os.path.dirname(os.path.abspath(__file__))}; "
+            f"no compiled library {LIBRARY_STEM}*.so in {os.path.dirname(os.path.dirname(os.path.abspath(__file__)))}; "
             "build it with `pip install --no-build-isolation -e .` (or `make venv`)"
         )
     try:
@@ -143,6 +149,16 @@ class CpuFactor(NamedTuple):
     ok: object
 
 
+def settings_attributes(dtype, n: int) -> dict:
+    """The forward kernel's FFI attributes, read from ``tolerances`` (at trace time)."""
+    return dict(
+        pivot_tolerance=np.float64(tolerances.pivot_tolerance(dtype, n)),
+        trusted_error=np.float64(tolerances.trusted_error(dtype)),
+        max_refine_steps=np.int32(tolerances.max_refine_steps()),
+        stall_ratio=np.float64(tolerances.stall_ratio()),
+    )
+
+
 def _kernel_forward(model: StateSpace, y, w):
     T, _ = y.shape
     n = model.A.shape[-1]
@@ -156,7 +172,9 @@ def _kernel_forward(model: StateSpace, y, w):
         _sds((n, n), dt),
         _sds((), jnp.int32),
     )
-    x, Linv, M, subT, ok = jax.ffi.ffi_call("kalmax_cpu_forward", out, vmap_method=_VMAP)(*_operands(model, y, w))
+    x, Linv, M, subT, ok = jax.ffi.ffi_call("kalmax_cpu_forward", out, vmap_method=_VMAP)(
+        *_operands(model, y, w), **settings_attributes(dt, n)
+    )
     return x, CpuFactor(Linv=Linv, M=M, subT=subT, ok=ok != 0)
 
 
@@ -230,10 +248,7 @@ def _kernel_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
 
 
 def _jax_forward(model: StateSpace, y, w):
-    system = assemble(model, y, w)
-    x, bf = blocktri.factor_solve(system.diag, system.sub, system.rhs)
-    x, ok = accuracy.refine(model, y, w, x, bf.ok, bf, blocktri.solve)
-    bf = bf._replace(ok=ok)
+    x, bf, system = checked_solve(model, y, w, blocktri.factor_solve, blocktri.solve)
     n = model.A.shape[-1]
     if model.A.ndim == 2 and model.Q.ndim == 2:
         M, subT = jnp.zeros((0, n, n), y.dtype), mT(system.sub)
@@ -290,9 +305,5 @@ LOAD_ERROR: Optional[str] = _load()
 
 
 def available() -> bool:
-    """True when the compiled kernel is loaded and registered as ``method="cpu"``."""
+    """True when the compiled kernel loaded (and so is registered as ``method="cpu"``)."""
     return LOAD_ERROR is None
-
-
-if LOAD_ERROR is None:
-    register_backend("cpu", CPU)

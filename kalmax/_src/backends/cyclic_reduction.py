@@ -52,11 +52,9 @@ from typing import NamedTuple, Tuple
 import jax
 import jax.numpy as jnp
 
-from . import accuracy
-from .blocktri import pivot_tolerance
-from .linalg import chol, lsolve, lsolve_vec, matvec, mT
-from .normal_equations import assemble
-from .primitive import Backend, register_backend
+from ..linalg import chol, lsolve, lsolve_vec, matvec, mT
+from ..tolerances import pivot_tolerance
+from .base import Backend, checked_solve
 
 
 class ReductionLevel(NamedTuple):
@@ -230,11 +228,8 @@ def band_inverse(factor: ReductionFactor):
 
 def forward(model, y, w):
     """Backend forward: assemble H x = g and solve it by cyclic reduction."""
-    system = assemble(model, y, w)
-    x, factor = factor_solve(system.diag, system.sub, system.rhs)
-    x, ok = accuracy.refine(model, y, w, x, factor.ok, factor, solve)
-    return x, dataclasses.replace(factor, ok=ok)
+    x, factor, _ = checked_solve(model, y, w, factor_solve, solve)
+    return x, factor
 
 
 PARALLEL = Backend(forward=forward, adjoint=solve, logdet=logdet, band_inverse=band_inverse)
-register_backend("parallel", PARALLEL)

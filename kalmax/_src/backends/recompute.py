@@ -33,10 +33,11 @@ from typing import NamedTuple
 import jax.numpy as jnp
 from jax import lax
 
-from . import accuracy, blocktri
-from .linalg import chol, lsolve, lsolve_vec, mT
-from .normal_equations import assemble
-from .primitive import Backend, register_backend
+from .. import blocktri
+from ..linalg import chol, lsolve, lsolve_vec, mT
+from ..normal_equations import assemble
+from ..tolerances import pivot_tolerance
+from .base import Backend, checked_solve
 
 
 class RecomputeFactor(NamedTuple):
@@ -74,7 +75,7 @@ def checkpointed_solve(diag, sub, rhs, chunk: int | None = None):
     dtype = rhs.dtype
     K = default_chunk(T) if chunk is None else int(chunk)
     C = -(-T // K)
-    tol = blocktri.pivot_tolerance(dtype, n)
+    tol = pivot_tolerance(dtype, n)
     zero_nn = jnp.zeros((n, n), dtype)
 
     def coupling(t):
@@ -146,11 +147,26 @@ def checkpointed_solve(diag, sub, rhs, chunk: int | None = None):
 
 def forward(model, y, w):
     """Backend forward: assemble, checkpointed solve; keep only the inputs, log|H| and ok."""
-    system = assemble(model, y, w)
-    x, ld, ok = checkpointed_solve(system.diag, system.sub, system.rhs)
-    x, ok = accuracy.refine(model, y, w, x, ok, (system.diag, system.sub),
-                            lambda blocks, v: checkpointed_solve(*blocks, v)[0])
-    return x, RecomputeFactor(model=model, y=y, w=w, logdet=ld, ok=ok)
+    x, blocks, _ = checked_solve(model, y, w, _blocks_factor_solve, _blocks_solve)
+    return x, RecomputeFactor(model=model, y=y, w=w, logdet=blocks.logdet, ok=blocks.ok)
+
+
+class _Blocks(NamedTuple):
+    """What the forward pass's refinement solves with: H's blocks (alive anyway), log|H|, ok."""
+
+    diag: object
+    sub: object
+    logdet: object
+    ok: object
+
+
+def _blocks_factor_solve(diag, sub, rhs):
+    x, ld, ok = checkpointed_solve(diag, sub, rhs)
+    return x, _Blocks(diag, sub, ld, ok)
+
+
+def _blocks_solve(blocks: _Blocks, v):
+    return checkpointed_solve(blocks.diag, blocks.sub, v)[0]
 
 
 def adjoint(factor: RecomputeFactor, v):
@@ -172,4 +188,3 @@ def band_inverse(factor: RecomputeFactor):
 
 
 RECOMPUTE = Backend(forward=forward, adjoint=adjoint, logdet=logdet, band_inverse=band_inverse)
-register_backend("scan-recompute", RECOMPUTE)

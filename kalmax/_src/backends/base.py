@@ -1,0 +1,85 @@
+r"""What a solver backend is, and the one forward pass every JAX backend runs.
+
+A backend solves the block-tridiagonal normal equations H x = g of the
+smoothing problem (``normal_equations.py``) and keeps a factor of H for what
+follows: the adjoint solve of the implicit-function VJP (``primitive.py``),
+log|H| for the likelihood, and the band of H⁻¹ for covariances.
+
+Every forward pass is the same four steps, written once in
+:func:`checked_solve` so that no backend can leave one out:
+
+1. assemble H and g from the model, the measurements and the mask;
+2. factor H and solve (the backend's own algorithm);
+3. refine x with the model's residual and estimate its error
+   (``accuracy.refine``, settings from ``tolerances.py``);
+4. mark the factor failed (and x NaN) when the factorisation broke down or
+   the estimate stayed above the bar.
+
+The compiled CPU kernel performs the same four steps in C++ in one sweep
+(``cpu/smoother.h``: ``forward_one`` then ``refine_one``) with the settings
+passed in as attributes; its pure-JAX twin, which defines its derivatives,
+goes through :func:`checked_solve` like every other backend.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from typing import Callable, NamedTuple, Optional
+
+from .. import accuracy
+from ..normal_equations import assemble
+
+
+class Backend(NamedTuple):
+    """A solver of the normal equations, selectable as ``method=name``.
+
+    forward: ``(model, y, w) -> (x (T, n), factor)``; x NaN and ``factor.ok``
+        False when the answer is not trusted.
+    adjoint: ``(factor, v (T, n)) -> H⁻¹ v``, with the stored factor.
+    logdet: ``(factor) -> log|H|``.
+    band_inverse: ``(factor) -> (Σ_tt (T, n, n), Σ_{t+1,t} (T-1, n, n))``,
+        the band of H⁻¹. None: the factor is a ``blocktri.BlockFactor`` and
+        ``blocktri.selected_inverse`` applies.
+    gradients: ``(model, y, w, x, factor, x_bar) -> (model_bar, y_bar)``,
+        the whole backward pass in one call (a fused compiled kernel). None:
+        the adjoint solve plus JAX autodiff of ``stationarity_pairing``.
+    """
+
+    forward: Callable
+    adjoint: Callable
+    logdet: Callable
+    band_inverse: Optional[Callable] = None
+    gradients: Optional[Callable] = None
+
+
+class Unavailable(NamedTuple):
+    """A backend that could not be set up here (e.g. its library did not load), and why."""
+
+    reason: str
+
+
+def with_ok(factor, ok):
+    """The factor with its ``ok`` flag replaced (NamedTuple or dataclass factors)."""
+    if dataclasses.is_dataclass(factor):
+        return dataclasses.replace(factor, ok=ok)
+    return factor._replace(ok=ok)
+
+
+def checked_solve(model, y, w, factor_solve, solve):
+    """Assemble, factor and solve, refine, mark: the forward pass of every JAX backend.
+
+    Args:
+        model, y, w: the canonicalised problem.
+        factor_solve: ``(diag, sub, rhs) -> (x, factor)`` with ``factor.ok``
+            the scalar verdict of the factorisation (x NaN when it failed).
+        solve: ``(factor, v) -> H⁻¹ v`` with that factor.
+
+    Returns:
+        ``(x, factor, system)``: the refined x (NaN when not trusted), the
+        factor with ``ok`` replaced by the final verdict, and the assembled
+        ``NormalEquations`` (for backends that keep parts of it).
+    """
+    system = assemble(model, y, w)
+    x, factor = factor_solve(system.diag, system.sub, system.rhs)
+    x, ok = accuracy.refine(model, y, w, x, factor.ok, factor, solve)
+    return x, with_ok(factor, ok), system
