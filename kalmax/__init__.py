@@ -55,4 +55,4 @@ from ._src.sharding import pad_batch as pad_batch
 from ._src.sharding import replicate as replicate
 from ._src.sharding import shard_batch as shard_batch
 
-__version__ = "0.1.0"
+from ._src.version import __version__ as __version__

@@ -78,7 +78,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="kalmax", formatter_class=fmt, description=MAIN_DESCRIPTION + _SAFETY_WRAPPED,
         epilog=EXIT_CODES_HELP)
-    from . import __version__
+    from ._src.version import __version__
 
     parser.add_argument("--version", action="version", version=f"kalmax {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")

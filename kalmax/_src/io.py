@@ -203,7 +203,7 @@ def write_table(path, names: Sequence[str], columns: Dict[str, Sequence], out: A
 
 def spec_to_dict(spec: ModelSpec) -> dict:
     """The JSON document of a :class:`ModelSpec` (see :func:`save_model`)."""
-    from .. import __version__
+    from .version import __version__
 
     params = {k: (list(v) if isinstance(v, (list, tuple)) else v) for k, v in spec.params.items()}
     return {

@@ -350,11 +350,7 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
                        ffi::Result<ffi::AnyBuffer> subT, ffi::Result<ffi::Buffer<ffi::S32>> ok,
                        double pivot_tolerance, double trusted_error, int32_t max_refine_steps,
                        double stall_ratio) {
-  SolveSettings settings;
-  settings.pivot_tolerance = pivot_tolerance;
-  settings.trusted_error = trusted_error;
-  settings.max_refine_steps = max_refine_steps;
-  settings.stall_ratio = stall_ratio;
+  const SolveSettings settings{pivot_tolerance, trusted_error, max_refine_steps, stall_ratio};
   if (!(pivot_tolerance >= 0) || !(trusted_error >= 0) || max_refine_steps < 1 || !(stall_ratio > 0))
     return ffi::Error::InvalidArgument("kalmax_cpu: invalid solve settings");
   BatchShape bs;
