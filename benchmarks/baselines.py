@@ -72,6 +72,34 @@ def scan_smoother(A, C, Q, R, b, d, m0, P0, y, w):
     return jnp.concatenate([m_s, m_f[-1:]], axis=0)
 
 
+def scan_log_likelihood(A, C, Q, R, b, d, m0, P0, y, w):
+    """log p(observed y) by a covariance-form Kalman filter under lax.scan.
+
+    The prediction-error decomposition: Σ_t log N(y_K,t; C_K m_t|t-1 + d_K,
+    C_K P_t|t-1 C_Kᵀ + R_KK). Missing entries enter as the unit-variance
+    pseudo-measurements of ``_masked_update_terms``, whose log-density terms
+    (−½ log 2π each, no dependence on the state) are removed again.
+    """
+    def step(carry, inputs):
+        m, P, ll = carry
+        y_t, w_t = inputs
+        Cw, Rw, target = _masked_update_terms(C, R, d, y_t, w_t)
+        S = Cw @ P @ Cw.T + Rw
+        cS = jax.scipy.linalg.cho_factor(S, lower=True)
+        v = target - Cw @ m
+        K = jax.scipy.linalg.cho_solve(cS, Cw @ P).T
+        alpha = jax.scipy.linalg.solve_triangular(cS[0], v, lower=True)
+        ll = ll - 0.5 * jnp.sum(alpha**2) - jnp.sum(jnp.log(jnp.diagonal(cS[0]))) \
+            - 0.5 * jnp.sum(w_t) * jnp.log(2 * jnp.pi)
+        m_f = m + K @ v
+        P_f = P - K @ S @ K.T
+        P_f = 0.5 * (P_f + P_f.T)
+        return (A @ m_f + b, A @ P_f @ A.T + Q, ll), None
+
+    (_, _, ll), _ = lax.scan(step, (m0, P0, jnp.zeros((), y.dtype)), (y, w))
+    return ll
+
+
 # ---------------------------------------------------------------------------
 # (4) KKT system of the equality-constrained form, sparse LU
 

@@ -41,7 +41,11 @@ EXIT_CODES_HELP = """exit codes:
   5    numerical failure: the fit or the smoother produced non-finite values
   130  interrupted
 On any failure no output file is created or changed: outputs are written to
-temporary files and renamed into place only when all of them are complete."""
+temporary files and renamed into place only when all of them are complete.
+
+compiled programs are kept between runs in $KALMAX_CACHE_DIR (default
+~/.cache/kalmax/xla), so a second run on same-shaped data starts in seconds;
+KALMAX_COMPILE_CACHE=0 switches this off."""
 
 MAIN_DESCRIPTION = """\
 Smooth, impute and fit sensor readings with a continuous-time linear-Gaussian
@@ -449,6 +453,34 @@ def cmd_apply(args) -> int:
     return EXIT_OK
 
 
+def compilation_cache_dir() -> Optional[str]:
+    """Where compiled programs are kept between runs (None: switched off by KALMAX_COMPILE_CACHE=0).
+
+    KALMAX_CACHE_DIR, else $XDG_CACHE_HOME/kalmax/xla, else ~/.cache/kalmax/xla.
+    """
+    if os.environ.get("KALMAX_COMPILE_CACHE", "1").strip().lower() in ("0", "no", "off", "false"):
+        return None
+    if os.environ.get("KALMAX_CACHE_DIR"):
+        return os.environ["KALMAX_CACHE_DIR"]
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return os.path.join(base, "kalmax", "xla")
+
+
+def _use_compilation_cache(jax) -> None:
+    # Every run compiles the same programs for the same shapes: keeping them
+    # on disk makes a second run on same-shaped data start in seconds. A cache
+    # that cannot be created is not an error: the run compiles as usual.
+    path = compilation_cache_dir()
+    if path is None:
+        return
+    try:
+        os.makedirs(path, exist_ok=True)
+        jax.config.update("jax_compilation_cache_dir", path)
+        jax.config.update("jax_persistent_cache_min_compile_time_secs", 0.5)
+    except Exception:  # noqa: BLE001  (an unwritable home, an old jax): run without the cache
+        pass
+
+
 def main(argv: Optional[List[str]] = None) -> int:
     """Entry point of the ``kalmax`` command; returns the exit code."""
     parser = build_parser()
@@ -463,6 +495,7 @@ def main(argv: Optional[List[str]] = None) -> int:
 
     # Timestamps and variances span many orders of magnitude: the command line works in float64.
     jax.config.update("jax_enable_x64", True)
+    _use_compilation_cache(jax)
     from ._src.io import DataError, ModelFileError
     from ._src.pipeline import FitError
 

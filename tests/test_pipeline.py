@@ -48,7 +48,8 @@ def test_holdout_objective_fits_ratio_and_calibration_makes_standardised_errors_
     start = pipeline.default_spec("random-walk", 1, "t", ["y"], ["level0"], series)
     start = start.replace(params={"q": [50.0]}, noise=(0.01,))  # far too wiggly
     train = series.mask
-    loss = pipeline.make_loss(start, series, train, "holdout", folds=3, seed=1)
+    loss_fn, data = pipeline.make_loss(start, series, train, "holdout", folds=3, seed=1)
+    loss = lambda theta: loss_fn(theta, *data)  # noqa: E731
     out = pipeline.fit_spec(start, series, train, objective="holdout", steps=60, learning_rate=0.2,
                             folds=3, seed=1, progress=False)
     assert out.history[-1] < out.history[0]

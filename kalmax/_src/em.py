@@ -38,7 +38,7 @@ import numpy as np
 
 from .checks import canonicalize
 from .likelihood import log_likelihood
-from .linalg import mT
+from .linalg import chol, lsolve, mT, spd_inverse
 from .model import StateSpace
 from .normal_equations import masked_measurement_cov
 from .smoothing import smooth
@@ -52,7 +52,8 @@ def _outer(u, v):
 
 def _solve_right(S_uz, S_zz):
     """S_uz S_zz⁻¹ for symmetric positive-definite S_zz."""
-    return jnp.linalg.solve(S_zz, mT(S_uz)).T
+    L = chol(S_zz)
+    return mT(lsolve(L, lsolve(L, mT(S_uz)), transpose=True))
 
 
 def _regression(mu_x, E_xx, E_ux, E_u, with_intercept: bool):
@@ -97,7 +98,7 @@ def _completed_measurements(model: StateSpace, y, w):
     d = jnp.zeros((T, p), y.dtype) if model.d is None else jnp.broadcast_to(model.d, (T, p))
     ww = _outer(w, w)
     # S_t = R_KK⁻¹ padded with zeros, through the SPD stand-in R̃_t of the core.
-    S = ww * jnp.linalg.inv(masked_measurement_cov(R, w))
+    S = ww * spd_inverse(masked_measurement_cov(R, w))
     miss = 1 - w
     y0 = jnp.where(w > 0, y, 0)
     RS = R @ S  # rows M: R_MK R_KK⁻¹ (columns outside K are zero)

@@ -97,7 +97,13 @@ class _Progress:
             self.bar.update(self.task, completed=step, description=f"fit: {text}")
         elif step % self.every == 0 or step == self.total:
             elapsed = time.perf_counter() - self.start
-            print(f"fit step {step}/{self.total}  {text}  ({elapsed:.1f} s)", file=sys.stderr, flush=True)
+            if step == 0:
+                self.first = elapsed  # the first step includes compilation: leave it out of the rate
+            left = ""
+            if 0 < step < self.total:
+                rate = (elapsed - getattr(self, "first", 0.0)) / step
+                left = f", about {rate * (self.total - step):.0f} s left"
+            print(f"fit step {step}/{self.total}  {text}  ({elapsed:.1f} s{left})", file=sys.stderr, flush=True)
 
     def close(self, reason: str):
         if not self.enabled:
@@ -122,6 +128,7 @@ def fit(
     jit: bool = True,
     callback: Optional[Callable] = None,
     neg_log_lik_fn: Optional[Callable] = None,
+    args: tuple = (),
 ) -> FitResult:
     r"""Minimise ``loss_fn(params)`` with an Optax optimiser.
 
@@ -151,6 +158,12 @@ def fit(
         neg_log_lik_fn: optional params → negative log-likelihood; when given,
             ``FitResult.standard_errors`` holds
             ``standard_errors(neg_log_lik_fn, result.params)``.
+        args: extra arguments passed to ``loss_fn`` (and ``validation_fn``)
+            after the params: ``loss_fn(params, *args)``. Pass the data this
+            way rather than closing over it: under ``jit`` closed-over arrays
+            become constants of the compiled program, which XLA may spend
+            seconds folding (and a new array means a new compilation), while
+            arguments are passed at run time.
 
     Returns:
         :class:`FitResult`. A non-finite loss stops the fit and returns the
@@ -167,12 +180,14 @@ def fit(
     if patience is not None and int(patience) < 1:
         raise ValueError(f"patience must be a positive integer or None; got {patience}.")
     steps = int(steps)
+    args = tuple(args)
     opt = optax.with_extra_args_support(optimizer)
     value_and_grad = jax.value_and_grad(loss_fn)
 
-    def step_fn(params, opt_state):
-        loss, grads = value_and_grad(params)
-        updates, opt_state = opt.update(grads, opt_state, params, value=loss, grad=grads, value_fn=loss_fn)
+    def step_fn(params, opt_state, *data):
+        loss, grads = value_and_grad(params, *data)
+        updates, opt_state = opt.update(grads, opt_state, params, value=loss, grad=grads,
+                                        value_fn=lambda p: loss_fn(p, *data))
         return optax.apply_updates(params, updates), opt_state, loss
 
     loss_only = loss_fn
@@ -194,11 +209,11 @@ def fit(
         # One evaluation per params: the loss comes from the step itself
         # except after the last update, where only the loss is needed.
         if k < steps:
-            new_params, new_state, loss = step_fn(current, opt_state)
+            new_params, new_state, loss = step_fn(current, opt_state, *args)
         else:
-            loss = loss_only(current)
+            loss = loss_only(current, *args)
         loss = float(loss)
-        val = None if val_fn is None else float(val_fn(current))
+        val = None if val_fn is None else float(val_fn(current, *args))
         losses.append(loss)
         if val is not None:
             vals.append(val)

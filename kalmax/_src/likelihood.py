@@ -69,17 +69,42 @@ def _log_likelihood(model, y, w, method):
     return _log_likelihood_fwd(model, y, w, method)[0]
 
 
+def _portable_value_and_grad(model, y, w):
+    """log p(y) and its gradient by the pure-JAX route (the oracle of compiled ones)."""
+    val, (model_bar, y_bar) = jax.value_and_grad(_log_likelihood, argnums=(0, 1))(model, y, w, "scan")
+    return val, model_bar, y_bar
+
+
+def _fused(backend):
+    """backend.log_likelihood, given the portable route's derivatives for second-order AD.
+
+    x and the factor are functions of (model, y, w), which the portable route
+    recomputes, so their tangents reach the result through model and y alone.
+    """
+    fn = jax.custom_jvp(backend.log_likelihood)
+    fn.defjvp(lambda primals, tangents: jax.jvp(_portable_value_and_grad, primals[:3], tangents[:3]))
+    return fn
+
+
 def _log_likelihood_fwd(model, y, w, method):
     backend = get_backend(method)
     x, factor = backend.forward(model, y, w)
+    if backend.log_likelihood is not None:
+        # Value and gradient in one compiled pass; the backward pass only scales.
+        val, model_bar, y_bar = _fused(backend)(model, y, w, x, factor)
+        return val, (model_bar, y_bar)
     val = _explicit_terms(model, y, w, x) - 0.5 * backend.logdet(factor)
     val = jnp.where(jnp.all(jnp.isfinite(x)), val, jnp.nan)
     return val, (model, y, w, x, factor)
 
 
 def _log_likelihood_bwd(method, res, g):
-    model, y, w, x, factor = res
     backend = get_backend(method)
+    if backend.log_likelihood is not None:  # the forward pass already holds the gradient
+        model_bar, y_bar = res
+        model_bar = jax.tree_util.tree_map(lambda a: g * a, model_bar)
+        return model_bar, g * y_bar, jnp.zeros(y_bar.shape, y_bar.dtype)
+    model, y, w, x, factor = res
     _, pull = jax.vjp(lambda m, yy: _explicit_terms(m, yy, w, x), model, y)
     model_bar, y_bar = pull(g)
 

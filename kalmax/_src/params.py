@@ -36,6 +36,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .linalg import chol
 from .model import FIELDS, StateSpace
 
 Array = Any
@@ -162,7 +163,7 @@ class CholeskyCov:
 
     def inverse(self, value, nominal):
         k = value.shape[-1]
-        L = jnp.linalg.cholesky(value)
+        L = chol(value)
         L = L + (jnp.log(jnp.diagonal(L, axis1=-2, axis2=-1)) - jnp.diagonal(L, axis1=-2, axis2=-1))[
             ..., :, None
         ] * jnp.eye(k, dtype=L.dtype)

@@ -256,31 +256,36 @@ def _scaled(model, y, s):
 
 def make_loss(spec: ModelSpec, series: Series, train_mask, objective: str, *,
               fixed=(), folds: int = 4, seed: int = 0):
-    """loss(theta) for ``theta`` = spec.to_unconstrained(fixed).
+    """(loss, data): loss(theta, *data) for ``theta`` = spec.to_unconstrained(fixed).
+
+    The measurements and masks are returned separately so that they reach
+    the compiled step as arguments, not as constants baked into it (XLA can
+    spend seconds folding a large closed-over mask). The timestamps stay
+    concrete: the exact discretisation sizes its loop from them.
 
     objective "likelihood": −log p(y_train) / N_train (exact, diffuse prior).
     objective "holdout": pooled K-fold cross-validated squared error of the
     smoother on the training entries, each column in units of its standard
     deviation (so columns in different units weigh alike).
     """
-    t = jnp.asarray(series.t)
+    t = np.asarray(series.t)
     y = jnp.asarray(np.where(train_mask, series.y, 0.0))
     mask = jnp.asarray(train_mask)
     n_obs = float(np.sum(train_mask))
     if objective == "likelihood":
-        def loss(theta):
+        def loss(theta, y, mask):
             model = spec.state_space(t, theta)
             return -log_likelihood(model, y, mask) / n_obs
-        return loss
+        return loss, (y, mask)
     if objective == "holdout":
         s = jnp.asarray(_standardiser(series, train_mask))
         holds = splits.holdout_folds(mask, folds, seed)
 
-        def loss(theta):
+        def loss(theta, y, mask, s, holds):
             model, ys = _scaled(spec.state_space(t, theta), y, s)
             sse, cnt = jax.vmap(lambda h: holdout_sums(model, ys, mask, h))(holds)
             return jnp.sum(sse) / jnp.sum(cnt)
-        return loss
+        return loss, (y, mask, s, holds)
     raise ValueError(f"objective must be 'likelihood' or 'holdout'; got {objective!r}.")
 
 
@@ -340,8 +345,8 @@ def fit_spec(spec: ModelSpec, series: Series, train_mask, *, objective: str = "l
     theta0 = {k: jnp.asarray(v) for k, v in spec.to_unconstrained(fixed).items()}
     if not theta0:  # everything fixed: nothing to fit
         return FitOutcome(spec, [], 0, 0)
-    loss = make_loss(spec, series, train_mask, objective, fixed=fixed, folds=folds, seed=seed)
-    result = fit(loss, theta0, optax.adam(learning_rate), steps=steps, progress=progress)
+    loss, data = make_loss(spec, series, train_mask, objective, fixed=fixed, folds=folds, seed=seed)
+    result = fit(loss, theta0, optax.adam(learning_rate), steps=steps, progress=progress, args=data)
     first = float(result.history["loss"][0])
     if not math.isfinite(first):
         raise FitError(f"the {objective} loss of the starting model is not finite. Either some state cannot be "

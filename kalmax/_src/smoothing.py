@@ -6,12 +6,10 @@ from typing import NamedTuple, Optional
 
 import jax.numpy as jnp
 
-from . import blocktri
 from .checks import canonicalize
-from .normal_equations import assemble
 from .linalg import matvec
 from .model import StateSpace
-from .primitive import smoothed_means
+from .primitive import band_inverse, get_backend, smoothed_means
 
 
 class Smoothed(NamedTuple):
@@ -65,8 +63,9 @@ def smooth(model: StateSpace, y, mask=None, *, covariances: bool = False, method
             GPU/TPU), ``"scan"`` (the portable pure-JAX block-Cholesky scan),
             ``"cpu"``, ``"parallel"`` (block cyclic reduction, O(log T) depth)
             or ``"scan-recompute"`` (re-factorises in the backward pass instead
-            of storing factors). Covariances always use the differentiable
-            ``"scan"`` recursion.
+            of storing factors). Covariances use the same backend's factor
+            and band inverse (a compiled sweep with ``"cpu"``); their
+            gradients come from the JAX selected-inversion recursion.
 
     Returns:
         :class:`Smoothed` with ``states`` (T, n) and ``measurements`` (T, p).
@@ -89,23 +88,27 @@ def smooth(model: StateSpace, y, mask=None, *, covariances: bool = False, method
     x = smoothed_means(model, y, w, method)
     out = Smoothed(states=x, measurements=predict_measurements(model, x))
     if covariances:
-        state_cov, cross = posterior_band(model, w)
+        state_cov, cross = posterior_band(model, w, method)
         spec = "pi,tij,qj->tpq" if model.C.ndim == 2 else "tpi,tij,tqj->tpq"
         meas_cov = jnp.einsum(spec, model.C, state_cov, model.C)
         out = out._replace(state_cov=state_cov, measurement_cov=meas_cov, state_cross_cov=cross)
     return out
 
 
-def posterior_band(model: StateSpace, w):
+def posterior_band(model: StateSpace, w, method: str = "auto"):
     """(Cov[x_t | y] (T, n, n), Cov[x_{t+1}, x_t | y] (T-1, n, n)) for a canonical problem.
 
     The posterior precision H does not depend on the values of y, only on
     which entries are observed, so the right-hand side is irrelevant here.
+    The backend's own factor and band inverse are used (one compiled sweep
+    each with ``method="cpu"``); the result is NaN when the factor failed.
     """
-    zeros = jnp.zeros(w.shape, w.dtype)
-    system = assemble(model, zeros, w)
-    _, factor = blocktri.factor_solve(system.diag, system.sub, system.rhs)
-    return blocktri.selected_inverse(factor)
+    backend = get_backend(method)
+    # Offsets and the prior mean do not enter H: drop them, so that a
+    # non-finite one cannot fail the factor through the accuracy check.
+    model = model.replace(b=None, d=None, x0_mean=None)
+    _, factor = backend.forward(model, jnp.zeros(w.shape, w.dtype), w)
+    return band_inverse(backend, factor)
 
 
 def prediction_error(model: StateSpace, y, mask, holdout, *, method: str = "auto"):

@@ -43,6 +43,10 @@ class Backend(NamedTuple):
     gradients: ``(model, y, w, x, factor, x_bar) -> (model_bar, y_bar)``,
         the whole backward pass in one call (a fused compiled kernel). None:
         the adjoint solve plus JAX autodiff of ``stationarity_pairing``.
+    log_likelihood: ``(model, y, w, x, factor) -> (value, model_bar, y_bar)``,
+        log p(y) and its gradient w.r.t. every model field and y from the
+        stored factor, in one pass (a compiled kernel). None: the JAX route
+        of ``likelihood.py`` (band of H⁻¹, then autodiff of per-step terms).
     """
 
     forward: Callable
@@ -50,6 +54,7 @@ class Backend(NamedTuple):
     logdet: Callable
     band_inverse: Optional[Callable] = None
     gradients: Optional[Callable] = None
+    log_likelihood: Optional[Callable] = None
 
 
 class Unavailable(NamedTuple):

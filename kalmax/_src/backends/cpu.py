@@ -69,6 +69,8 @@ _TARGETS = {
     "kalmax_cpu_forward": "KalmaxCpuForward",
     "kalmax_cpu_solve": "KalmaxCpuSolve",
     "kalmax_cpu_gradients": "KalmaxCpuGradients",
+    "kalmax_cpu_band": "KalmaxCpuBand",
+    "kalmax_cpu_loglik": "KalmaxCpuLoglik",
 }
 
 _VMAP = "expand_dims"  # the kernel loops over leading batch axes itself
@@ -211,8 +213,14 @@ def logdet(factor: CpuFactor):
     return -2 * jnp.sum(jnp.log(d))
 
 
-def band_inverse(factor: CpuFactor):
-    """(Σ_tt (T, n, n), Σ_{t+1,t} (T-1, n, n)): the block-tridiagonal band of H⁻¹."""
+def _kernel_band(factor: CpuFactor):
+    T, n = factor.Linv.shape[-3], factor.Linv.shape[-1]
+    dt = factor.Linv.dtype
+    out = (_sds((T, n, n), dt), _sds((max(T - 1, 0), n, n), dt))
+    return jax.ffi.ffi_call("kalmax_cpu_band", out, vmap_method=_VMAP)(*_factor_operands(factor))
+
+
+def _jax_band(factor: CpuFactor):
     return blocktri.selected_inverse(block_factor(factor))
 
 
@@ -237,6 +245,21 @@ def _kernel_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
         x0_cov=keep(gP0, "x0_cov"),
     )
     return model_bar, gy
+
+
+def _kernel_log_likelihood(model: StateSpace, y, w, x, factor: CpuFactor):
+    ops = _operands(model, y, w)
+    out = (_sds((), y.dtype),) + tuple(_sds(o.shape, o.dtype) for o in ops[:9])
+    val, gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = jax.ffi.ffi_call("kalmax_cpu_loglik", out, vmap_method=_VMAP)(
+        *_factor_operands(factor), x, *ops
+    )
+
+    def keep(g, field):
+        return None if getattr(model, field) is None else g
+
+    model_bar = StateSpace(A=gA, C=gC, Q=gQ, R=gR, b=keep(gb, "b"), d=keep(gd, "d"),
+                           x0_mean=keep(gm0, "x0_mean"), x0_cov=keep(gP0, "x0_cov"))
+    return val, model_bar, gy
 
 
 # ---------------------------------------------------------------------------
@@ -278,6 +301,7 @@ def _differentiable(kernel_fn, jax_fn):
 _forward = _differentiable(_kernel_forward, _jax_forward)
 _adjoint = _differentiable(_kernel_adjoint, _jax_adjoint)
 _gradients = _differentiable(_kernel_gradients, _jax_gradients)
+_band = _differentiable(_kernel_band, _jax_band)
 
 
 def forward(model: StateSpace, y, w):
@@ -295,11 +319,29 @@ def gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
     return _gradients(model, y, w, x, factor, x_bar)
 
 
-CPU = Backend(forward=forward, adjoint=adjoint, logdet=logdet, band_inverse=band_inverse, gradients=gradients)
+def band_inverse(factor: CpuFactor):
+    """(Σ_tt (T, n, n), Σ_{t+1,t} (T-1, n, n)): the band of H⁻¹, one compiled backward sweep.
+
+    Derivatives (covariance gradients) come from the JAX selected inversion.
+    """
+    return _band(factor)
+
+
+def log_likelihood(model: StateSpace, y, w, x, factor: CpuFactor):
+    """(log p(y), model_bar, y_bar): the value and its full gradient in one compiled sweep.
+
+    No derivative rule of its own: ``likelihood.py`` supplies the portable
+    route's derivatives for second-order AD.
+    """
+    return _kernel_log_likelihood(model, y, w, x, factor)
+
+
+CPU = Backend(forward=forward, adjoint=adjoint, logdet=logdet, band_inverse=band_inverse, gradients=gradients,
+              log_likelihood=log_likelihood)
 
 # Same kernels, but the backward pass goes through the adjoint solve plus JAX
 # autodiff of the stationarity pairing: the reference for `gradients`.
-CPU_JAX_GRADIENTS = CPU._replace(gradients=None)
+CPU_JAX_GRADIENTS = CPU._replace(gradients=None, log_likelihood=None, band_inverse=_jax_band)
 
 LOAD_ERROR: Optional[str] = _load()
 

@@ -7,6 +7,9 @@
 //   kalmax_cpu_solve      (L, M, subT, ok, v) -> H⁻¹ v
 //   kalmax_cpu_gradients  (L, M, subT, ok, x, x̄, A, Q, b, C, R, d, m0, P0, y, w)
 //                         -> (Ā, Q̄, b̄, C̄, R̄, d̄, m̄0, P̄0, ȳ)
+//   kalmax_cpu_band       (L, M, subT, ok) -> (Σ_tt, Σ_{t+1,t})      band of H⁻¹
+//   kalmax_cpu_loglik     (L, M, subT, ok, x, A, Q, b, C, R, d, m0, P0, y, w)
+//                         -> (log p(y), its gradients w.r.t. A ... y)
 //
 // The factor (Li, M, subT, ok): Li (T, n, n) the inverses L_t⁻¹ of the
 // diagonal blocks of the block Cholesky factor; when A or Q
@@ -35,6 +38,7 @@
 #include <type_traits>
 #include <vector>
 
+#include "likelihood.h"
 #include "smoother.h"
 #include "xla/ffi/api/ffi.h"
 
@@ -551,6 +555,109 @@ ffi::Error GradientsImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT
   });
 }
 
+
+ffi::Error BandImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi::Buffer<ffi::S32> ok,
+                    ffi::Result<ffi::AnyBuffer> diag, ffi::Result<ffi::AnyBuffer> sub) {
+  BatchShape bs;
+  if (ffi::Error e = batch_from_output(diag->dimensions(), 3, &bs); e.failure()) return e;
+  const auto dd = diag->dimensions();
+  const int T = static_cast<int>(dd[dd.size() - 3]);
+  const int n = static_cast<int>(dd[dd.size() - 1]);
+  FactorOperands fo;
+  if (ffi::Error e = describe_factor(L, M, subT, ok, bs, T, n, diag->element_type(), &fo); e.failure())
+    return e;
+  if (static_cast<int64_t>(sub->element_count()) != bs.count * int64_t(T > 0 ? T - 1 : 0) * n * n ||
+      sub->element_type() != diag->element_type())
+    return ffi::Error::InvalidArgument("kalmax_cpu: band outputs have unexpected sizes");
+  advise_huge_pages(diag);
+  advise_huge_pages(sub);
+  return with_real_type(diag->element_type(), [&](auto real) {
+    using Real = decltype(real);
+    return with_state_size(n, [&](auto nk) {
+      constexpr int NK = decltype(nk)::value;
+      const std::size_t n2 = std::size_t(n) * n;
+      Real* Do = static_cast<Real*>(diag->untyped_data());
+      Real* So = static_cast<Real*>(sub->untyped_data());
+      for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
+        for (int64_t bi = begin; bi < end; ++bi)
+          band_one<Real, NK>(fo.view<Real>(bs, bi), fo.ok_at(bs, bi), T, n, Do + bi * std::size_t(T) * n2,
+                             So + bi * std::size_t(T > 0 ? T - 1 : 0) * n2);
+      });
+      return ffi::Error::Success();
+    });
+  });
+}
+
+ffi::Error LoglikImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi::Buffer<ffi::S32> ok,
+                      ffi::AnyBuffer x, ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b,
+                      ffi::AnyBuffer C, ffi::AnyBuffer R, ffi::AnyBuffer d, ffi::AnyBuffer m0,
+                      ffi::AnyBuffer P0, ffi::AnyBuffer y, ffi::AnyBuffer w,
+                      ffi::Result<ffi::AnyBuffer> value, ffi::Result<ffi::AnyBuffer> gA,
+                      ffi::Result<ffi::AnyBuffer> gQ, ffi::Result<ffi::AnyBuffer> gb,
+                      ffi::Result<ffi::AnyBuffer> gC, ffi::Result<ffi::AnyBuffer> gR,
+                      ffi::Result<ffi::AnyBuffer> gd, ffi::Result<ffi::AnyBuffer> gm0,
+                      ffi::Result<ffi::AnyBuffer> gP0, ffi::Result<ffi::AnyBuffer> gy) {
+  BatchShape bs;
+  if (ffi::Error e = batch_from_output(gy->dimensions(), 2, &bs); e.failure()) return e;
+  Operand oX;
+  if (ffi::Error e = describe(x, "x", bs, &oX); e.failure()) return e;
+  if (oX.core.size() != 2) return ffi::Error::InvalidArgument("kalmax_cpu: x must have shape (T, n)");
+  const int T = static_cast<int>(oX.core[0]);
+  const int n = static_cast<int>(oX.core[1]);
+  FactorOperands fo;
+  if (ffi::Error e = describe_factor(L, M, subT, ok, bs, T, n, y.element_type(), &fo); e.failure())
+    return e;
+  const ffi::AnyBuffer in[] = {A, Q, b, C, R, d, m0, P0, y, w};
+  ModelOperands mo;
+  if (ffi::Error e = describe_model(in, bs, T, n, &mo); e.failure()) return e;
+  if (fo.compact != (mo.kA == Kind::kInvariant && mo.kQ == Kind::kInvariant) && T > 1)
+    return ffi::Error::InvalidArgument("kalmax_cpu: factor form does not match the model");
+  if (x.element_type() != y.element_type() || value->element_type() != y.element_type() ||
+      static_cast<int64_t>(value->element_count()) != bs.count)
+    return ffi::Error::InvalidArgument("kalmax_cpu: value must be one scalar of y's dtype per trajectory");
+  ffi::Result<ffi::AnyBuffer>* outs[] = {&gA, &gQ, &gb, &gC, &gR, &gd, &gm0, &gP0, &gy};
+  const Operand* ins[] = {&mo.A, &mo.Q, &mo.b, &mo.C, &mo.R, &mo.d, &mo.m0, &mo.P0, &mo.y};
+  for (int i = 0; i < 9; ++i) {
+    if ((*outs[i])->element_type() != y.element_type() ||
+        static_cast<int64_t>((*outs[i])->element_count()) != bs.count * ins[i]->core_size)
+      return ffi::Error::InvalidArgument("kalmax_cpu: gradient output " + std::to_string(i) +
+                                         " has an unexpected size or dtype");
+  }
+  for (auto* out : outs) advise_huge_pages(*out);
+  return with_real_type(y.element_type(), [&](auto real) {
+    using Real = decltype(real);
+    return with_state_size(n, [&](auto nk) {
+      constexpr int NK = decltype(nk)::value;
+      const int p = mo.p;
+      const Kind kinds[] = {mo.kA, mo.kQ, mo.kb, mo.kC, mo.kR, mo.kd, mo.km0, mo.kP0};
+      const std::size_t items[] = {std::size_t(n) * n, std::size_t(n) * n, std::size_t(n),
+                                   std::size_t(p) * n, std::size_t(p) * p, std::size_t(p),
+                                   std::size_t(n), std::size_t(n) * n};
+      Real* vo = static_cast<Real*>(value->untyped_data());
+      for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
+        std::vector<double> acc(accumulator_size(n, p));
+        std::vector<int> idx(p + 1);
+        PatternCaches<Real> caches(mo);
+        for (int64_t bi = begin; bi < end; ++bi) {
+          const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
+          Gradients<Real> G;
+          GradSink<Real>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
+          for (int f = 0; f < 8; ++f) {
+            if (kinds[f] == Kind::kAbsent) continue;
+            sinks[f]->out = static_cast<Real*>((*outs[f])->untyped_data()) + bi * ins[f]->core_size;
+            sinks[f]->tv = kinds[f] == Kind::kVarying;
+            sinks[f]->item = items[f];
+          }
+          G.y = static_cast<Real*>(gy->untyped_data()) + bi * mo.y.core_size;
+          loglik_one<Real, NK>(P, fo.view<Real>(bs, bi), fo.ok_at(bs, bi), at<Real>(oX, bs, bi), vo + bi, G,
+                               acc.data(), idx.data(), caches.get(P));
+        }
+      });
+      return ffi::Error::Success();
+    });
+  });
+}
+
 }  // namespace
 }  // namespace kalmax_cpu
 
@@ -606,6 +713,43 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuGradients, kc::GradientsImpl,
                                   .Arg<ffi::AnyBuffer>()         // x0_cov
                                   .Arg<ffi::AnyBuffer>()         // y
                                   .Arg<ffi::AnyBuffer>()         // w
+                                  .Ret<ffi::AnyBuffer>()         // Ā
+                                  .Ret<ffi::AnyBuffer>()         // Q̄
+                                  .Ret<ffi::AnyBuffer>()         // b̄
+                                  .Ret<ffi::AnyBuffer>()         // C̄
+                                  .Ret<ffi::AnyBuffer>()         // R̄
+                                  .Ret<ffi::AnyBuffer>()         // d̄
+                                  .Ret<ffi::AnyBuffer>()         // m̄0
+                                  .Ret<ffi::AnyBuffer>()         // P̄0
+                                  .Ret<ffi::AnyBuffer>());       // ȳ
+
+XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuBand, kc::BandImpl,
+                              ffi::Ffi::Bind()
+                                  .Arg<ffi::AnyBuffer>()         // L
+                                  .Arg<ffi::AnyBuffer>()         // M
+                                  .Arg<ffi::AnyBuffer>()         // subT
+                                  .Arg<ffi::Buffer<ffi::S32>>()  // ok
+                                  .Ret<ffi::AnyBuffer>()         // Σ_tt
+                                  .Ret<ffi::AnyBuffer>());       // Σ_{t+1,t}
+
+XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuLoglik, kc::LoglikImpl,
+                              ffi::Ffi::Bind()
+                                  .Arg<ffi::AnyBuffer>()         // L
+                                  .Arg<ffi::AnyBuffer>()         // M
+                                  .Arg<ffi::AnyBuffer>()         // subT
+                                  .Arg<ffi::Buffer<ffi::S32>>()  // ok
+                                  .Arg<ffi::AnyBuffer>()         // x
+                                  .Arg<ffi::AnyBuffer>()         // A
+                                  .Arg<ffi::AnyBuffer>()         // Q
+                                  .Arg<ffi::AnyBuffer>()         // b
+                                  .Arg<ffi::AnyBuffer>()         // C
+                                  .Arg<ffi::AnyBuffer>()         // R
+                                  .Arg<ffi::AnyBuffer>()         // d
+                                  .Arg<ffi::AnyBuffer>()         // x0_mean
+                                  .Arg<ffi::AnyBuffer>()         // x0_cov
+                                  .Arg<ffi::AnyBuffer>()         // y
+                                  .Arg<ffi::AnyBuffer>()         // w
+                                  .Ret<ffi::AnyBuffer>()         // log p(y)
                                   .Ret<ffi::AnyBuffer>()         // Ā
                                   .Ret<ffi::AnyBuffer>()         // Q̄
                                   .Ret<ffi::AnyBuffer>()         // b̄

@@ -13,6 +13,7 @@
 #pragma once
 
 #include <algorithm>
+#include <cmath>
 #include <cstdint>
 #include <unordered_map>
 #include <vector>
@@ -29,6 +30,7 @@ struct PatternBlocks {
   const Real* G;     // n×n
   const Real* F;     // k×n
   const Real* Rinv;  // k×k
+  Real logdet = 0;   // log|R_KK|
 };
 
 template <class Real>
@@ -95,6 +97,7 @@ class PatternCache {
       e.ok = false;
       return e;
     }
+    for (int a = 0; a < k; ++a) e.logdet += Real(2) * std::log(Lr[a * k + a]);
     // W = Lr⁻¹C_K (into F), G = WᵀW, then F = Lr⁻ᵀW = R_KK⁻¹C_K.
     for (int a = 0; a < k; ++a)
       for (int j = 0; j < n; ++j) F[a * n + j] = C_[std::size_t(idx[a]) * n + j];
