@@ -40,15 +40,54 @@ def _masked_update_terms(C, R, d, y_t, w_t):
     return Cw, Rw, innov_target
 
 
-def scan_smoother(A, C, Q, R, b, d, m0, P0, y, w):
+class _Lapack:
+    """Cholesky and solves as a JAX user would write them (jaxlib's LAPACK on CPU)."""
+
+    cho_factor = staticmethod(lambda S: jax.scipy.linalg.cho_factor(S, lower=True))
+    cho_solve = staticmethod(jax.scipy.linalg.cho_solve)
+    tri_solve = staticmethod(lambda L, v: jax.scipy.linalg.solve_triangular(L, v, lower=True))
+
+
+class _WrittenOut:
+    """The same through kalmax's written-out decompositions.
+
+    jaxlib 0.10.2's batched CPU LAPACK deadlocks the thread pool when vmap
+    makes the per-step factorisations a large batch (observed here for this
+    baseline at B = 256, n = 16: two ``lapack_strsm_ffi`` calls blocked in
+    ``ParallelBatchMap``); the ML-regime cells use this variant so that the
+    baseline finishes at all.
+    """
+
+    @staticmethod
+    def cho_factor(S):
+        from kalmax._src.linalg import chol
+        return chol(S), True
+
+    @staticmethod
+    def cho_solve(c, B):
+        from kalmax._src.linalg import lsolve
+        L = c[0]
+        return lsolve(L, lsolve(L, B), transpose=True)
+
+    @staticmethod
+    def tri_solve(L, v):
+        from kalmax._src.linalg import lsolve_vec
+        return lsolve_vec(L, v)
+
+
+SOLVERS = {"lapack": _Lapack, "written-out": _WrittenOut}
+
+
+def scan_smoother(A, C, Q, R, b, d, m0, P0, y, w, solver="lapack"):
     """Smoothed means (T, n) by Kalman filter + RTS smoother (covariance form)."""
+    la = SOLVERS[solver]
     def filter_step(carry, inputs):
         m_pred, P_pred = carry
         y_t, w_t = inputs
         Cw, Rw, target = _masked_update_terms(C, R, d, y_t, w_t)
         S = Cw @ P_pred @ Cw.T + Rw
-        cS = jax.scipy.linalg.cho_factor(S, lower=True)
-        K = jax.scipy.linalg.cho_solve(cS, Cw @ P_pred).T  # P Cᵀ S⁻¹
+        cS = la.cho_factor(S)
+        K = la.cho_solve(cS, Cw @ P_pred).T  # P Cᵀ S⁻¹
         m_f = m_pred + K @ (target - Cw @ m_pred)
         P_f = P_pred - K @ S @ K.T
         P_f = 0.5 * (P_f + P_f.T)
@@ -61,8 +100,8 @@ def scan_smoother(A, C, Q, R, b, d, m0, P0, y, w):
     def smooth_step(carry, inputs):
         m_s_next, P_s_next = carry
         m_f_t, P_f_t, m_p_next, P_p_next = inputs
-        cP = jax.scipy.linalg.cho_factor(P_p_next, lower=True)
-        G = jax.scipy.linalg.cho_solve(cP, A @ P_f_t).T  # P_f Aᵀ P_pred⁻¹
+        cP = la.cho_factor(P_p_next)
+        G = la.cho_solve(cP, A @ P_f_t).T  # P_f Aᵀ P_pred⁻¹
         m_s = m_f_t + G @ (m_s_next - m_p_next)
         P_s = P_f_t + G @ (P_s_next - P_p_next) @ G.T
         return (m_s, P_s), m_s
@@ -72,7 +111,7 @@ def scan_smoother(A, C, Q, R, b, d, m0, P0, y, w):
     return jnp.concatenate([m_s, m_f[-1:]], axis=0)
 
 
-def scan_log_likelihood(A, C, Q, R, b, d, m0, P0, y, w):
+def scan_log_likelihood(A, C, Q, R, b, d, m0, P0, y, w, solver="lapack"):
     """log p(observed y) by a covariance-form Kalman filter under lax.scan.
 
     The prediction-error decomposition: Σ_t log N(y_K,t; C_K m_t|t-1 + d_K,
@@ -80,15 +119,17 @@ def scan_log_likelihood(A, C, Q, R, b, d, m0, P0, y, w):
     pseudo-measurements of ``_masked_update_terms``, whose log-density terms
     (−½ log 2π each, no dependence on the state) are removed again.
     """
+    la = SOLVERS[solver]
+
     def step(carry, inputs):
         m, P, ll = carry
         y_t, w_t = inputs
         Cw, Rw, target = _masked_update_terms(C, R, d, y_t, w_t)
         S = Cw @ P @ Cw.T + Rw
-        cS = jax.scipy.linalg.cho_factor(S, lower=True)
+        cS = la.cho_factor(S)
         v = target - Cw @ m
-        K = jax.scipy.linalg.cho_solve(cS, Cw @ P).T
-        alpha = jax.scipy.linalg.solve_triangular(cS[0], v, lower=True)
+        K = la.cho_solve(cS, Cw @ P).T
+        alpha = la.tri_solve(cS[0], v)
         ll = ll - 0.5 * jnp.sum(alpha**2) - jnp.sum(jnp.log(jnp.diagonal(cS[0]))) \
             - 0.5 * jnp.sum(w_t) * jnp.log(2 * jnp.pi)
         m_f = m + K @ v

@@ -101,6 +101,8 @@ def _row(X, i):
 
 @jax.custom_jvp
 def _chol_columns(S):
+    if S.ndim == 2 and S.shape[-1] <= STRAIGHT_MAX:
+        return _chol_straight(S)
     return _chol_unrolled(S)
 
 
@@ -117,6 +119,39 @@ def _chol_columns_jvp(primals, tangents):
     k = S.shape[-1]
     phi = jnp.tril(X) - 0.5 * X * jnp.eye(k, dtype=X.dtype)
     return L, L @ phi
+
+
+# One small block (a step inside a scan over time, typically) is factorised
+# by straight-line code instead of a loop: a loop iteration costs more at run
+# time than the few flops of a column of a tiny block.
+STRAIGHT_MAX = 16
+
+
+def _chol_straight(S):
+    k = S.shape[-1]
+    A = 0.5 * (S + S.T)
+    cols = []
+    rows = jnp.arange(k)
+    good = jnp.ones((), bool)
+    for j in range(k):
+        v = A[:, j]
+        for m in range(j):
+            v = v - cols[m] * cols[m][j]
+        d = jnp.sqrt(v[j])
+        good = good & (d > 0)
+        cols.append(jnp.where(rows > j, v / d, jnp.where(rows == j, d, 0)))
+    return jnp.where(good, jnp.stack(cols, axis=1), jnp.nan)
+
+
+def _lsolve_straight(L, B, transpose):
+    k = L.shape[-1]
+    X = [None] * k
+    for i in (range(k - 1, -1, -1) if transpose else range(k)):
+        r = B[i]
+        for j in (range(i + 1, k) if transpose else range(i)):
+            r = r - (L[j, i] if transpose else L[i, j]) * X[j]
+        X[i] = r / L[i, i]
+    return jnp.stack(X)
 
 
 def _chol_unrolled(S):
@@ -169,6 +204,8 @@ def lsolve(L, B, *, transpose: bool = False):
 
 @partial(jax.custom_jvp, nondiff_argnums=(2,))
 def _lsolve_columns(L, B, transpose):
+    if B.ndim == 2 and L.shape[-1] <= STRAIGHT_MAX:
+        return _lsolve_straight(L, B, transpose)
     return _lsolve_unrolled(L, B, transpose)
 
 
