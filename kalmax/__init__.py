@@ -43,10 +43,10 @@ from ._src.continuous import damped_oscillator as damped_oscillator
 from ._src.continuous import discretize as discretize
 from ._src.continuous import local_linear_trend as local_linear_trend
 from ._src.continuous import random_walk as random_walk
-from ._src.io import ModelFileError as ModelFileError
-from ._src.io import load_model as load_model
-from ._src.io import save_model as save_model
-from ._src.spec import ModelSpec as ModelSpec
+from ._src.tools.errors import ModelFileError as ModelFileError
+from ._src.tools.model_file import load_model as load_model
+from ._src.tools.model_file import save_model as save_model
+from ._src.tools.spec import ModelSpec as ModelSpec
 
 # Scale: data-parallel helpers over a device mesh (the solver backends are in _src/backends).
 from ._src.sharding import batch_mesh as batch_mesh

@@ -14,6 +14,9 @@ import traceback
 from pathlib import Path
 from typing import List, Optional
 
+from ._src.tools.atomic_outputs import AtomicOutputs
+from ._src.tools.errors import DataError, FitError, ModelFileError, UsageError
+
 SAFETY_NOTE = (
     "Safety: state estimates often feed decisions (navigation, monitoring, control). kalmax comes with no "
     "guarantee of any kind for safety-critical use. Validate every model against your own data, check the "
@@ -63,12 +66,8 @@ Typical session:
 """
 
 
-class UsageError(Exception):
-    """A command-line combination argparse cannot check by itself."""
-
-
 def _kinds_text() -> str:
-    from ._src.spec import KINDS
+    from ._src.tools.spec import KINDS
 
     lines = []
     for k in KINDS.values():
@@ -194,7 +193,6 @@ def _outputs(args, model_file: bool):
     if os.path.abspath(args.data) in resolved:
         raise UsageError("an output file would overwrite the input DATA file.")
     # Check the destinations before any work: a long fit should not end in "cannot write".
-    from ._src.io import DataError
 
     for p in paths:
         if p.is_dir():
@@ -209,103 +207,21 @@ def _check_level(args):
         raise UsageError(f"--level must lie strictly between 0 and 1; got {args.level}.")
 
 
-def _parse_measures(items, kind_name: str, dims: Optional[int]):
-    from ._src.spec import KINDS
-
-    cols, states = [], []
-    for item in items:
-        col, sep, state = item.partition("=")
-        col, state = col.strip(), state.strip()
-        if not col or (sep and not state):
-            raise UsageError(f"--measure {item!r}: write COL or COL=STATE.")
-        cols.append(col)
-        states.append(state or None)
-    kind = KINDS[kind_name]
-    if kind.fixed_dims is not None:
-        if dims not in (None, kind.fixed_dims):
-            raise UsageError(f"--dims does not apply to model kind {kind_name!r} (it has {kind.fixed_dims} axis).")
-        dims = kind.fixed_dims
-    elif dims is None:
-        dims = max(1, sum(s is None for s in states))
-    if dims < 1:
-        raise UsageError(f"--dims must be a positive integer; got {dims}.")
-    names = kind.state_names(dims)
-    firsts = [names[k] for k in range(dims)] if kind.fixed_dims is None else [names[0]] * len(cols)
-    k = 0
-    for i, s in enumerate(states):
-        if s is None:
-            if k >= len(firsts):
-                raise UsageError(f"--measure {cols[i]}: more plain columns than the {dims} position/level states; "
-                                 "name the state with COL=STATE or raise --dims.")
-            states[i] = firsts[k]
-            k += 1 if kind.fixed_dims is None else 0
-        elif s not in names:
-            raise UsageError(f"--measure {cols[i]}={s}: model kind {kind_name!r} with dims={dims} has states "
-                             f"{', '.join(names)}.")
-    return cols, states, dims
-
-
-def _apply_sets(spec, sets):
-    import numpy as np
-
-    params = dict(spec.params)
-    noise = list(spec.noise)
-    for item in sets:
-        name, sep, value = item.partition("=")
-        name = name.strip()
-        if not sep:
-            raise UsageError(f"--set {item!r}: write NAME=VALUE.")
-        try:
-            values = [float(v) for v in value.split(",")]
-        except ValueError:
-            raise UsageError(f"--set {item!r}: {value!r} is not a number or a comma-separated list.") from None
-        if not all(math.isfinite(v) and v > 0 for v in values):
-            raise UsageError(f"--set {item!r}: values must be finite and > 0.")
-        if name == "noise":
-            if len(values) == 1:
-                noise = values * len(noise)
-            elif len(values) == len(noise):
-                noise = values
-            else:
-                raise UsageError(f"--set noise: give 1 value or {len(noise)} (one per column).")
-        elif name.startswith("noise."):
-            col = name[len("noise."):]
-            if col not in spec.columns or len(values) != 1:
-                raise UsageError(f"--set {item!r}: no measured column {col!r} (or more than one value).")
-            noise[spec.columns.index(col)] = values[0]
-        elif name in params:
-            shape = np.shape(params[name])
-            if shape == ():
-                if len(values) != 1:
-                    raise UsageError(f"--set {name}: takes one value.")
-                params[name] = values[0]
-            else:
-                if len(values) == 1:
-                    values = values * shape[0]
-                if len(values) != shape[0]:
-                    raise UsageError(f"--set {name}: give 1 value or {shape[0]} (one per axis).")
-                params[name] = values
-        else:
-            raise UsageError(f"--set {name}: unknown parameter; this model has "
-                             f"{', '.join(list(params) + ['noise', 'noise.COL'])}.")
-    return spec.replace(params=params, noise=tuple(noise))
-
-
 def _format_errors(errs):
     return ", ".join(f"{k} {v:.4g}" for k, v in errs.items() if k != "all")
 
 
 def _table_for(args, spec, series, smoothing):
-    from ._src import pipeline
+    from ._src.tools import apply_workflow
 
-    return pipeline.output_table(spec, series, smoothing, level=args.level, with_states=args.with_states)
+    return apply_workflow.output_table(spec, series, smoothing, level=args.level, with_states=args.with_states)
 
 
 def _read(path, time_column, columns, time_format=None):
-    from ._src import io, pipeline
+    from ._src.tools import series, tables
 
-    names, cols = io.read_table(path)
-    return pipeline.series_from_table(names, cols, time_column, columns, source=str(path), time_format=time_format)
+    names, cols = tables.read_table(path)
+    return series.series_from_table(names, cols, time_column, columns, source=str(path), time_format=time_format)
 
 
 # ----------------------------------------------------------------------------
@@ -314,7 +230,7 @@ def _read(path, time_column, columns, time_format=None):
 
 
 def cmd_models(args) -> int:
-    from ._src.spec import KINDS
+    from ._src.tools.spec import KINDS
 
     for k in KINDS.values():
         print(f"{k.name}\n    {k.summary}")
@@ -327,9 +243,11 @@ def cmd_models(args) -> int:
 def cmd_fit(args) -> int:
     import numpy as np
 
-    from ._src import io, pipeline, splits
-    from ._src.report import write_report
-    from ._src.spec import KINDS
+    from ._src import splits
+    from ._src.tools import apply_workflow, fit_workflow, model_file, starting_values, tables
+    from ._src.tools.report import write_report
+    from ._src.tools.settings import apply_settings, parse_measures
+    from ._src.tools.spec import KINDS, check_columns
 
     _check_level(args)
     if args.steps < 0:
@@ -342,14 +260,14 @@ def cmd_fit(args) -> int:
         raise UsageError(f"--learning-rate must be > 0; got {args.learning_rate}.")
     table_path, report_path, model_path = _outputs(args, model_file=True)
 
-    start = io.load_model(args.start) if args.start else None
+    start = model_file.load_model(args.start) if args.start else None
     if start is not None:
         for opt, val, have in (("--model", args.model, start.kind), ("--time", args.time, start.time_column),
                                ("--dims", args.dims, start.dims)):
             if val is not None and val != have:
                 raise UsageError(f"{opt} {val} contradicts the --start model file ({have}); drop one of them.")
         if args.measure:
-            cols, states, _ = _parse_measures(args.measure, start.kind, start.dims)
+            cols, states, _ = parse_measures(args.measure, start.kind, start.dims)
             if tuple(cols) != start.columns or tuple(states) != start.measured:
                 raise UsageError("--measure contradicts the columns of the --start model file; drop one of them.")
         series = _read(args.data, start.time_column, start.columns, start.time_format)
@@ -361,14 +279,14 @@ def cmd_fit(args) -> int:
             raise UsageError(f"fit needs {', '.join(missing)} (or --start MODEL.json).")
         if args.model not in KINDS:
             raise UsageError(f"--model {args.model!r} is not a model kind; choose one of {', '.join(KINDS)}.")
-        cols, states, dims = _parse_measures(args.measure, args.model, args.dims)
-        if len(set(cols)) != len(cols):
-            raise UsageError("each --measure column may appear only once.")
-        if args.time in cols:
-            raise UsageError(f"the time column {args.time!r} cannot also be measured.")
+        cols, states, dims = parse_measures(args.measure, args.model, args.dims)
+        try:
+            check_columns(args.time, cols)
+        except ValueError as e:
+            raise UsageError(f"--measure: {e}") from None
         series = _read(args.data, args.time, cols)
-        spec = pipeline.default_spec(args.model, dims, args.time, cols, states, series)
-    spec = _apply_sets(spec, args.set)
+        spec = starting_values.default_spec(args.model, dims, args.time, cols, states, series)
+    spec = apply_settings(spec, args.set)
     allowed = set(spec.kind_info.params) | {"noise"}
     bad = [f for f in args.fix if f not in allowed]
     if bad:
@@ -382,25 +300,25 @@ def cmd_fit(args) -> int:
     train = mask & ~test
     empty = [c for j, c in enumerate(spec.columns) if not train[:, j].any()]
     if empty:
-        raise pipeline.DataError(f"{args.data}: after holding out test cells, column(s) {', '.join(empty)} have "
+        raise DataError(f"{args.data}: after holding out test cells, column(s) {', '.join(empty)} have "
                                  "no training observation; lower --test-fraction.")
     _say(args, f"Read {args.data}: {len(series.t)} rows, {int(mask.sum())} observed cells "
                f"({', '.join(f'{c} {int(mask[:, j].sum())}' for j, c in enumerate(spec.columns))}).")
-    before = pipeline.heldout_rmse(spec, series, test) if test.any() else None
+    before = apply_workflow.heldout_rmse(spec, series, test) if test.any() else None
     if before is not None:
         _say(args, f"Held-out RMSE of the starting model: {_format_errors(before)}")
     _say(args, f"Fitting {spec.kind} (objective: {args.objective}, {args.steps} steps) ...")
-    outcome = pipeline.fit_spec(spec, series, train, objective=args.objective, steps=args.steps,
+    outcome = fit_workflow.fit_spec(spec, series, train, objective=args.objective, steps=args.steps,
                                 learning_rate=args.learning_rate, fixed=tuple(args.fix), folds=args.folds,
                                 seed=args.seed, progress=not args.quiet)
     fitted = outcome.spec
-    after = pipeline.heldout_rmse(fitted, series, test) if test.any() else None
+    after = apply_workflow.heldout_rmse(fitted, series, test) if test.any() else None
     if after is not None:
         _say(args, f"Held-out RMSE of the fitted model:   {_format_errors(after)}")
         _say(args, f"Held-out RMSE, all columns in units of their sd: before {before['all']:.4g}, "
                    f"after {after['all']:.4g}")
     if outcome.history and not math.isfinite(outcome.history[-1]):
-        raise pipeline.FitError("the fit loss became non-finite.")
+        raise FitError("the fit loss became non-finite.")
     fitted = fitted.replace(fit={
         "data": Path(args.data).name, "rows": int(len(series.t)), "objective": args.objective,
         "steps_run": outcome.steps_run, "best_step": outcome.best_step, "stop_reason": outcome.stop_reason,
@@ -408,15 +326,15 @@ def cmd_fit(args) -> int:
         "learning_rate": args.learning_rate, "fixed": list(args.fix), "test_fraction": args.test_fraction,
         "seed": args.seed, "heldout_rmse_before": before, "heldout_rmse_after": after,
     })
-    smoothing = pipeline.smooth_series(fitted, series)
+    smoothing = apply_workflow.smooth_series(fitted, series)
     names, cols = _table_for(args, fitted, series, smoothing)
     summary = ""
     if after is not None:
         summary = (f"held-out RMSE (sd units): start {before['all']:.3g} -> fitted {after['all']:.3g}; "
                    f"objective {args.objective}, {outcome.steps_run} steps")
-    with io.AtomicOutputs() as out:
-        io.write_table(table_path, names, cols, out)
-        io.save_model(model_path, fitted, out)
+    with AtomicOutputs() as out:
+        tables.write_table(table_path, names, cols, out)
+        model_file.save_model(model_path, fitted, out)
         if report_path is not None:
             write_report(out.temp_for(report_path), fitted, series, smoothing, level=args.level,
                          test_mask=test if test.any() else None, history=outcome.history,
@@ -433,18 +351,18 @@ def cmd_fit(args) -> int:
 
 
 def cmd_apply(args) -> int:
-    from ._src import io, pipeline
-    from ._src.report import write_report
+    from ._src.tools import apply_workflow, model_file, tables
+    from ._src.tools.report import write_report
 
     _check_level(args)
     table_path, report_path, _ = _outputs(args, model_file=False)
-    spec = io.load_model(args.model_file)
+    spec = model_file.load_model(args.model_file)
     series = _read(args.data, spec.time_column, spec.columns, spec.time_format)
     _say(args, f"Read {args.data}: {len(series.t)} rows, {int(series.mask.sum())} observed cells.")
-    smoothing = pipeline.smooth_series(spec, series)
+    smoothing = apply_workflow.smooth_series(spec, series)
     names, cols = _table_for(args, spec, series, smoothing)
-    with io.AtomicOutputs() as out:
-        io.write_table(table_path, names, cols, out)
+    with AtomicOutputs() as out:
+        tables.write_table(table_path, names, cols, out)
         if report_path is not None:
             write_report(out.temp_for(report_path), spec, series, smoothing, level=args.level,
                          title=f"kalmax apply: {spec.kind} model {Path(args.model_file).name} on "
@@ -496,9 +414,6 @@ def main(argv: Optional[List[str]] = None) -> int:
     # Timestamps and variances span many orders of magnitude: the command line works in float64.
     jax.config.update("jax_enable_x64", True)
     _use_compilation_cache(jax)
-    from ._src.io import DataError, ModelFileError
-    from ._src.pipeline import FitError
-
     try:
         return cmd_fit(args) if args.command == "fit" else cmd_apply(args)
     except UsageError as e:

@@ -107,22 +107,24 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
 
     from . import cli
-    from ._src import io
-    from ._src.spec import ModelSpec
+    from ._src.tools.atomic_outputs import AtomicOutputs
+    from ._src.tools.model_file import load_model, save_model
+    from ._src.tools.spec import ModelSpec
+    from ._src.tools.tables import write_table
 
     started = time.perf_counter()
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     names, cols, truth = drifter_table()
     data = out / "drifter.csv"
-    with io.AtomicOutputs() as files:
-        io.write_table(data, names, cols, files)
+    with AtomicOutputs() as files:
+        write_table(data, names, cols, files)
         columns = ("east", "north", "current_east", "current_north")
         poor = ModelSpec(kind="constant-velocity", dims=2, time_column="time", columns=columns,
                          measured=("position0", "position1", "velocity0", "velocity1"),
                          params={"q": [1.0, 1.0]}, noise=(1.0, 1.0, 1.0, 1.0), time_format="iso8601",
                          fit={"note": "deliberately poor starting model for the demo"})
-        io.save_model(out / "poor_start.json", poor, files)
+        save_model(out / "poor_start.json", poor, files)
     n_rows = len(cols["time"])
     print(f"Invented scenario: surface float on an imaginary fjord, {n_rows} rows over 2 h "
           f"(written to {data}).")
@@ -138,7 +140,7 @@ def main(argv=None) -> int:
     code = cli.main(argv_fit)
     if code != 0:
         return code
-    fitted = io.load_model(out / "drifter_model.json")
+    fitted = load_model(out / "drifter_model.json")
     print("\nFitted versus the values the scenario was generated with:")
     print(f"  acceleration noise q (east, north): {fitted.params['q'][0]:.3g}, {fitted.params['q'][1]:.3g}"
           f"   (true {TRUE_Q:.3g})")

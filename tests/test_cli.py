@@ -23,7 +23,7 @@ import numpy as np  # noqa: E402
 import pytest  # noqa: E402
 
 import kalmax as kx  # noqa: E402
-from kalmax._src import io as kio  # noqa: E402
+from kalmax._src.tools import atomic_outputs, model_file as kio  # noqa: E402
 
 sys.path.insert(0, os.path.dirname(__file__))
 import reference  # noqa: E402
@@ -327,7 +327,7 @@ def test_help_explains_and_carries_the_safety_note(tmp_path, capsys):
 
 def test_failure_while_writing_rolls_back_every_output(tmp_path, capsys, monkeypatch):
     """The table and model are written before the report; a report failure must remove them too."""
-    from kalmax._src import report
+    from kalmax._src.tools import report
 
     spec = kx.ModelSpec(kind="random-walk", dims=1, time_column="t", columns=("y",), measured=("level0",),
                         params={"q": [0.1]}, noise=(0.1,))
@@ -344,12 +344,12 @@ def test_failure_while_writing_rolls_back_every_output(tmp_path, capsys, monkeyp
     assert res.returncode == 1 and "internal error" in res.stderr and "disk full" in res.stderr
     assert snapshot(tmp_path) == before  # no new file, no .part leftover, out.csv unchanged
     with pytest.raises(RuntimeError):
-        with kio.AtomicOutputs() as out:
+        with atomic_outputs.AtomicOutputs() as out:
             out.temp_for(tmp_path / "a.txt").write_text("a")
             out.temp_for(tmp_path / "b.txt").write_text("b")
             raise RuntimeError("fail after both were written")
     assert snapshot(tmp_path) == before
-    with kio.AtomicOutputs() as out:
+    with atomic_outputs.AtomicOutputs() as out:
         out.temp_for(tmp_path / "a.txt").write_text("a")
         out.temp_for(tmp_path / "out.csv").write_text("new")
     assert (tmp_path / "a.txt").read_text() == "a" and (tmp_path / "out.csv").read_text() == "new"

@@ -59,7 +59,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import kalmax as kx
-from kalmax._src import io as kio
+from kalmax._src.tools import model_file as kio
 
 SCALE = max(1, int(os.environ.get("KALMAX_PROPERTY_SCALE", "1")))
 BOUNDED = dict(deadline=None, derandomize=True, database=None,
@@ -157,7 +157,7 @@ def _assert_clear(exc, path):
 
 def _assert_valid_spec(spec):
     assert isinstance(spec, kx.ModelSpec)
-    kx._src.spec.check_spec(spec)
+    kx._src.tools.spec.check_spec(spec)
     assert 1 <= spec.dims <= kio.MAX_DIMS
     assert 1 <= len(spec.columns) <= kio.MAX_COLUMNS
     assert all(isinstance(c, str) and len(c) <= kio.MAX_NAME_CHARS for c in spec.columns)

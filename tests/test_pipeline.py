@@ -1,4 +1,4 @@
-"""The command line's pipeline from Python: table parsing, the held-out objective, calibration."""
+"""The command line's tool wing from Python: table parsing, the held-out objective, calibration."""
 
 import jax
 
@@ -10,28 +10,28 @@ import numpy as np  # noqa: E402
 import pytest  # noqa: E402
 
 import kalmax as kx  # noqa: E402
-from kalmax._src import pipeline  # noqa: E402
-from kalmax._src.io import DataError  # noqa: E402
+from kalmax._src.tools import apply_workflow, fit_workflow, objectives, series as series_mod, starting_values  # noqa: E402
+from kalmax._src.tools.errors import DataError  # noqa: E402
 
 
 def test_series_parsing_numbers_dates_and_missing_cells():
     cols = {"t": ["0", "1.5", "4"], "a": ["1", "", "NaN"], "b": ["NA", "2.5", "-3e2"]}
-    s = pipeline.series_from_table(["t", "a", "b"], cols, "t", ["a", "b"])
+    s = series_mod.series_from_table(["t", "a", "b"], cols, "t", ["a", "b"])
     np.testing.assert_array_equal(s.t, [0.0, 1.5, 4.0])
     np.testing.assert_array_equal(s.mask, [[True, False], [False, True], [False, True]])
     assert s.y[2, 1] == -300.0 and s.time_format == "number"
     iso = {"t": ["2030-01-01T00:00:00Z", "2030-01-01T00:00:02.5+00:00", "2030-01-01T01:00:00"], "a": ["1", "2", "3"]}
-    s = pipeline.series_from_table(["t", "a"], iso, "t", ["a"])
+    s = series_mod.series_from_table(["t", "a"], iso, "t", ["a"])
     np.testing.assert_allclose(s.t, [0.0, 2.5, 3600.0])  # naive date-times are read as UTC
     assert s.time_format == "iso8601"
     with pytest.raises(DataError, match="mixes numbers and date-times"):
-        pipeline.series_from_table(["t", "a"], {"t": ["1", "2030-01-01"], "a": ["1", "2"]}, "t", ["a"])
+        series_mod.series_from_table(["t", "a"], {"t": ["1", "2030-01-01"], "a": ["1", "2"]}, "t", ["a"])
     with pytest.raises(DataError, match="not finite"):
-        pipeline.series_from_table(["t", "a"], {"t": ["1", "2"], "a": ["1", "inf"]}, "t", ["a"])
+        series_mod.series_from_table(["t", "a"], {"t": ["1", "2"], "a": ["1", "inf"]}, "t", ["a"])
     with pytest.raises(DataError, match="hold no observation"):
-        pipeline.series_from_table(["t", "a", "b"], {"t": ["1", "2"], "a": ["1", ""], "b": ["", ""]}, "t", ["a", "b"])
+        series_mod.series_from_table(["t", "a", "b"], {"t": ["1", "2"], "a": ["1", ""], "b": ["", ""]}, "t", ["a", "b"])
     with pytest.raises(DataError, match="at least 2"):
-        pipeline.series_from_table(["t", "a"], {"t": ["1"], "a": ["1"]}, "t", ["a"])
+        series_mod.series_from_table(["t", "a"], {"t": ["1"], "a": ["1"]}, "t", ["a"])
 
 
 def _random_walk_series(rng, T=120):
@@ -40,17 +40,17 @@ def _random_walk_series(rng, T=120):
     y = (level + 0.7 * rng.normal(size=T))[:, None]
     y[rng.random(y.shape) < 0.1] = np.nan
     cols = {"t": [repr(float(v)) for v in t], "y": ["" if np.isnan(v) else repr(float(v)) for v in y[:, 0]]}
-    return pipeline.series_from_table(["t", "y"], cols, "t", ["y"])
+    return series_mod.series_from_table(["t", "y"], cols, "t", ["y"])
 
 
 def test_holdout_objective_fits_ratio_and_calibration_makes_standardised_errors_one(rng):
     series = _random_walk_series(rng)
-    start = pipeline.default_spec("random-walk", 1, "t", ["y"], ["level0"], series)
+    start = starting_values.default_spec("random-walk", 1, "t", ["y"], ["level0"], series)
     start = start.replace(params={"q": [50.0]}, noise=(0.01,))  # far too wiggly
     train = series.mask
-    loss_fn, data = pipeline.make_loss(start, series, train, "holdout", folds=3, seed=1)
+    loss_fn, data = objectives.make_loss(start, series, train, "holdout", folds=3, seed=1)
     loss = lambda theta: loss_fn(theta, *data)  # noqa: E731
-    out = pipeline.fit_spec(start, series, train, objective="holdout", steps=60, learning_rate=0.2,
+    out = fit_workflow.fit_spec(start, series, train, objective="holdout", steps=60, learning_rate=0.2,
                             folds=3, seed=1, progress=False)
     assert out.history[-1] < out.history[0]
     print("holdout loss", out.history[0], "->", out.history[-1], "ratio", out.spec.params["q"][0] / out.spec.noise[0])
@@ -63,7 +63,7 @@ def test_holdout_objective_fits_ratio_and_calibration_makes_standardised_errors_
     np.testing.assert_allclose(loss(scaled.to_unconstrained()), loss(theta_fit), rtol=1e-9)
     # After calibration the cross-validated standardised squared errors average 1
     # (calibrating again changes nothing: the factor is 1).
-    again = pipeline.calibrate_scale(out.spec, series, train, folds=3, seed=1)
+    again = objectives.calibrate_scale(out.spec, series, train, folds=3, seed=1)
     np.testing.assert_allclose(again.noise, out.spec.noise, rtol=1e-8)
     np.testing.assert_allclose(again.params["q"], out.spec.params["q"], rtol=1e-8)
 
@@ -75,7 +75,7 @@ def test_heldout_rmse_uses_only_the_hidden_cells(rng):
     test = np.zeros_like(series.mask)
     idx = np.nonzero(series.mask[:, 0])[0][::5]
     test[idx, 0] = True
-    got = pipeline.heldout_rmse(spec, series, test)
+    got = apply_workflow.heldout_rmse(spec, series, test)
     # Independent: kx.prediction_error hides the same cells and averages their squared errors.
     mse = kx.prediction_error(spec.state_space(series.t), np.nan_to_num(series.y), series.mask, test)
     assert math.isclose(got["y"], math.sqrt(float(mse)), rel_tol=1e-9)

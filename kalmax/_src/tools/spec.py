@@ -16,9 +16,9 @@ from typing import Callable, Dict, Mapping, Optional, Tuple
 import jax.numpy as jnp
 import numpy as np
 
-from . import continuous
-from .continuous import ContinuousModel
-from .model import StateSpace
+from .. import continuous
+from ..continuous import ContinuousModel
+from ..model import StateSpace
 
 
 @dataclasses.dataclass(frozen=True)
@@ -183,12 +183,7 @@ def check_spec(spec: ModelSpec) -> None:
         raise ValueError(f"dims must be a positive integer; got {spec.dims!r}.")
     if kind.fixed_dims is not None and spec.dims != kind.fixed_dims:
         raise ValueError(f"model kind {spec.kind!r} has dims = {kind.fixed_dims}; got {spec.dims}.")
-    if len(spec.columns) < 1:
-        raise ValueError("a model needs at least one measurement column.")
-    if len(set(spec.columns)) != len(spec.columns):
-        raise ValueError(f"measurement columns must be distinct; got {list(spec.columns)}.")
-    if spec.time_column in spec.columns:
-        raise ValueError(f"the time column {spec.time_column!r} cannot also be a measurement column.")
+    check_columns(spec.time_column, spec.columns)
     if len(spec.measured) != len(spec.columns):
         raise ValueError(f"measured needs one state name per column ({len(spec.columns)}); got {len(spec.measured)}.")
     names = kind.state_names(spec.dims)
@@ -206,6 +201,16 @@ def check_spec(spec: ModelSpec) -> None:
         raise ValueError(f"time_format must be 'number' or 'iso8601'; got {spec.time_format!r}.")
     if not (isinstance(spec.jitter, (int, float)) and np.isfinite(spec.jitter) and spec.jitter >= 0):
         raise ValueError(f"jitter must be a finite number >= 0; got {spec.jitter!r}.")
+
+
+def check_columns(time_column: str, columns) -> None:
+    """Raise ValueError unless the measurement columns are distinct, at least one, and not the time column."""
+    if len(columns) < 1:
+        raise ValueError("a model needs at least one measurement column.")
+    if len(set(columns)) != len(columns):
+        raise ValueError(f"measurement columns must be distinct; got {list(columns)}.")
+    if time_column in columns:
+        raise ValueError(f"the time column {time_column!r} cannot also be a measurement column.")
 
 
 def _check_positive(name, value, shape) -> None:

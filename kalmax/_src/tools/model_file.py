@@ -1,28 +1,20 @@
-"""Files: measurement tables (CSV, optional Parquet) and the versioned model file.
+"""The versioned model file of the command line (JSON).
 
-Every writer goes through :class:`AtomicOutputs`: each output is written to a
-temporary file in its destination folder and renamed into place only after
-*all* outputs of a command were written, so a failure never leaves a partial
-or half-updated set of files behind (a rename within one folder is atomic on
-POSIX and Windows file systems).
-
-The model file is JSON (human-readable, no code execution on load, unlike
-pickle) with a format name and a format version; readers refuse other
-versions rather than guess, and cap the file size and the model sizes so that
-a hostile or corrupt file cannot exhaust memory.
+JSON is human-readable and runs no code on load (unlike pickle). The file
+names its format and format version; readers refuse other versions rather
+than guess, and cap the file size and the model sizes so that a hostile or
+corrupt file cannot exhaust memory.
 """
 
 from __future__ import annotations
 
-import csv
 import datetime as _dt
 import json
 import math
-import os
-import tempfile
 from pathlib import Path
-from typing import Dict, List, Sequence, Tuple
 
+from .atomic_outputs import AtomicOutputs
+from .errors import ModelFileError
 from .spec import KINDS, ModelSpec
 
 FORMAT_NAME = "kalmax-model"
@@ -34,176 +26,9 @@ MAX_NAME_CHARS = 200
 MAX_MESSAGE_CHARS = 1000  # an error message quoting a huge value from the file is shortened to this
 
 
-class DataError(Exception):
-    """A measurement table cannot be read or does not fit the request."""
-
-
-class ModelFileError(Exception):
-    """A model file cannot be read, is from another format version, or is invalid."""
-
-
-# ----------------------------------------------------------------------------
-# Atomic outputs
-# ----------------------------------------------------------------------------
-
-
-class AtomicOutputs:
-    """Collect outputs in temporary files; rename them all into place on success.
-
-    Usage::
-
-        with AtomicOutputs() as out:
-            write_something(out.temp_for("result.csv"))
-            write_other(out.temp_for("report.png"))
-        # both exist now, or (after an exception) neither was touched
-    """
-
-    def __init__(self):
-        self._pending: List[Tuple[Path, Path]] = []
-
-    def temp_for(self, final) -> Path:
-        final = Path(final)
-        folder = final.parent if str(final.parent) else Path(".")
-        if not folder.is_dir():
-            raise DataError(f"cannot write {final}: folder {folder} does not exist.")
-        if final.is_dir():
-            raise DataError(f"cannot write {final}: it is a folder.")
-        try:
-            fd, tmp = tempfile.mkstemp(prefix=f".{final.name}.", suffix=".part", dir=folder)
-        except OSError as e:
-            raise DataError(f"cannot write {final}: {e.strerror}.") from None
-        os.close(fd)
-        self._pending.append((Path(tmp), final))
-        return Path(tmp)
-
-    def __enter__(self) -> "AtomicOutputs":
-        return self
-
-    def __exit__(self, exc_type, exc, tb) -> bool:
-        if exc_type is None:
-            for tmp, final in self._pending:
-                os.replace(tmp, final)
-        else:
-            for tmp, _ in self._pending:
-                try:
-                    tmp.unlink()
-                except FileNotFoundError:
-                    pass
-        return False
-
-
-# ----------------------------------------------------------------------------
-# Tables
-# ----------------------------------------------------------------------------
-
-
-def _format_of(path: Path) -> str:
-    suffix = path.suffix.lower()
-    if suffix in (".parquet", ".pq"):
-        return "parquet"
-    return "csv"
-
-
-def _need_pyarrow(path):
-    try:
-        import pyarrow  # noqa: F401
-        import pyarrow.parquet  # noqa: F401
-    except ImportError:
-        raise DataError(
-            f"{path}: Parquet files need the optional package pyarrow, which is not installed. "
-            "Install it with `pip install pyarrow` (or `pip install kalmax[parquet]`), or use a CSV file."
-        ) from None
-    import pyarrow.parquet as pq
-
-    return pq
-
-
-def read_table(path) -> Tuple[List[str], Dict[str, list]]:
-    """Read a CSV or Parquet table: (column names, {name: list of cell values}).
-
-    CSV cells are strings ('' for blank); Parquet cells are Python values
-    (None for null). The format follows the file extension (.parquet/.pq =
-    Parquet, anything else = CSV with a header row).
-    """
-    path = Path(path)
-    if not path.exists():
-        raise DataError(f"cannot read {path}: no such file.")
-    if path.is_dir():
-        raise DataError(f"cannot read {path}: it is a folder, not a file.")
-    if _format_of(path) == "parquet":
-        pq = _need_pyarrow(path)
-        try:
-            table = pq.read_table(path)
-        except Exception as e:  # pyarrow raises several unrelated types for bad files
-            raise DataError(f"cannot read {path} as Parquet: {e}") from None
-        data = table.to_pydict()
-        return list(table.column_names), data
-    try:
-        with open(path, newline="", encoding="utf-8-sig") as f:
-            rows = list(csv.reader(f))
-    except UnicodeDecodeError as e:
-        raise DataError(f"cannot read {path} as CSV: it is not UTF-8 text ({e.reason} at byte {e.start}).") from None
-    except (OSError, csv.Error) as e:
-        raise DataError(f"cannot read {path} as CSV: {e}") from None
-    if not rows or not any(cell.strip() for cell in rows[0]):
-        raise DataError(f"{path} is empty: a CSV file needs a header row naming its columns.")
-    header = [h.strip() for h in rows[0]]
-    dupes = sorted({h for h in header if header.count(h) > 1})
-    if dupes:
-        raise DataError(f"{path}: the header names these columns more than once: {', '.join(dupes)}.")
-    cols: Dict[str, list] = {h: [] for h in header}
-    for lineno, row in enumerate(rows[1:], start=2):
-        if not row or (len(row) == 1 and not row[0].strip()):
-            continue  # blank line
-        if len(row) != len(header):
-            raise DataError(f"{path}, line {lineno}: {len(row)} cells, but the header has {len(header)} columns.")
-        for h, cell in zip(header, row):
-            cols[h].append(cell.strip())
-    return header, cols
-
-
-def _csv_cell(v) -> str:
-    if v is None:
-        return ""
-    if isinstance(v, float):
-        return "" if math.isnan(v) else repr(v)
-    return str(v)
-
-
-def write_table(path, names: Sequence[str], columns: Dict[str, Sequence], out: AtomicOutputs) -> None:
-    """Write a table to ``path`` (CSV or, by extension, Parquet) through ``out``.
-
-    Float NaN is written as a blank CSV cell / a Parquet null.
-    """
-    path = Path(path)
-    if _format_of(path) == "parquet":
-        pq = _need_pyarrow(path)
-        import pyarrow as pa
-
-        def clean(v):
-            return None if isinstance(v, float) and math.isnan(v) else v
-
-        arrays = {k: [clean(v) for v in columns[k]] for k in names}
-        tmp = out.temp_for(path)
-        pq.write_table(pa.table(arrays), tmp)
-        return
-    tmp = out.temp_for(path)
-    with open(tmp, "w", newline="", encoding="utf-8") as f:
-        w = csv.writer(f)
-        w.writerow(names)
-        n = len(columns[names[0]]) if names else 0
-        for i in range(n):
-            w.writerow([_csv_cell(columns[k][i]) for k in names])
-
-
-# ----------------------------------------------------------------------------
-# Model file
-# ----------------------------------------------------------------------------
-
-
 def spec_to_dict(spec: ModelSpec) -> dict:
     """The JSON document of a :class:`ModelSpec` (see :func:`save_model`)."""
-    from .version import __version__
+    from ..version import __version__
 
     params = {k: (list(v) if isinstance(v, (list, tuple)) else v) for k, v in spec.params.items()}
     return {

@@ -1,0 +1,90 @@
+"""Smooth a series with a :class:`ModelSpec`: means, intervals, held-out errors, the result table."""
+
+from __future__ import annotations
+
+import math
+import statistics
+from typing import Dict, NamedTuple
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from ..smoothing import smooth
+from .errors import DataError, FitError
+from .series import Series, column_scales
+from .spec import ModelSpec
+
+
+# One compiled function for every call (a new lambda per call would recompile each time).
+_smooth_with_covariances = jax.jit(lambda model, y, mask: smooth(model, y, mask, covariances=True))
+
+
+class Smoothing(NamedTuple):
+    mean: np.ndarray  # (T, p) smoothed measurement means
+    sd: np.ndarray  # (T, p) predictive sd of a new noisy measurement (measurement_cov + R)
+    states: np.ndarray  # (T, n)
+
+
+def smooth_series(spec: ModelSpec, series: Series, mask=None) -> Smoothing:
+    """Smoothed means and predictive standard deviations of every measurement column.
+
+    The sd is that of a *new noisy measurement* at each timestamp: the
+    smoother's uncertainty about C x_t (``measurement_cov``) plus the
+    measurement noise R. Raises :class:`FitError` when the states are not
+    identified (NaN from the smoother).
+    """
+    mask = series.mask if mask is None else mask
+    model = spec.state_space(jnp.asarray(series.t))
+    y = jnp.asarray(np.where(mask, series.y, 0.0))
+    out = _smooth_with_covariances(model, y, jnp.asarray(mask))
+    mean = np.asarray(out.measurements)
+    var = np.diagonal(np.asarray(out.measurement_cov), axis1=-2, axis2=-1) + np.diag(np.asarray(model.R))
+    if not (np.all(np.isfinite(mean)) and np.all(np.isfinite(var))):
+        raise FitError("the smoother could not determine the states (too few observations for this model, "
+                       "or a numerically singular model); the result would be meaningless.")
+    return Smoothing(mean=mean, sd=np.sqrt(np.maximum(var, 0.0)), states=np.asarray(out.states))
+
+
+def heldout_rmse(spec: ModelSpec, series: Series, test_mask) -> Dict[str, float]:
+    """Root mean squared error on the test entries, per column and overall ("all", in sd units).
+
+    The smoother sees every observed entry except the test entries.
+    """
+    mask = series.mask
+    sm = smooth_series(spec, series, mask & ~test_mask)
+    err = np.where(test_mask, series.y - sm.mean, np.nan)
+    out = {}
+    for j, c in enumerate(spec.columns):
+        e = err[:, j][test_mask[:, j]]
+        out[c] = float(np.sqrt(np.mean(e**2))) if e.size else math.nan
+    s = column_scales(series, mask & ~test_mask)
+    z = (err / s)[test_mask]
+    out["all"] = float(np.sqrt(np.mean(z**2))) if z.size else math.nan
+    return out
+
+
+def output_table(spec: ModelSpec, series: Series, sm: Smoothing, *, level: float = 0.95,
+                 with_states: bool = False):
+    """(names, columns) of the result table: time, then per measurement column
+    the observed value, ``_smoothed`` mean, ``_lower``/``_upper`` interval bounds."""
+    z = statistics.NormalDist().inv_cdf(0.5 + level / 2)
+    names = [spec.time_column]
+    cols = {spec.time_column: series.times_raw}
+    for j, c in enumerate(spec.columns):
+        lo = sm.mean[:, j] - z * sm.sd[:, j]
+        hi = sm.mean[:, j] + z * sm.sd[:, j]
+        for suffix, values in (("", series.y[:, j]), ("_smoothed", sm.mean[:, j]),
+                               ("_lower", lo), ("_upper", hi)):
+            names.append(c + suffix)
+            cols[c + suffix] = [float(v) for v in values]
+    if with_states:
+        for k, s in enumerate(spec.state_names()):
+            name = f"state_{s}"
+            names.append(name)
+            cols[name] = [float(v) for v in sm.states[:, k]]
+    clash = len(set(names)) != len(names)
+    if clash:
+        raise DataError("the output column names collide (a measurement column is already called like "
+                        "another column plus _smoothed/_lower/_upper); rename the input columns.")
+    return names, cols

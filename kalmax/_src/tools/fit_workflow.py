@@ -1,0 +1,48 @@
+"""Fit the free parameters of a :class:`ModelSpec` to a series (the work of ``kalmax fit``)."""
+
+from __future__ import annotations
+
+import math
+from typing import List, NamedTuple
+
+import jax.numpy as jnp
+import numpy as np
+
+from ..fitting import fit
+from .errors import FitError
+from .objectives import calibrate_scale, make_loss
+from .series import Series
+from .spec import ModelSpec
+
+
+class FitOutcome(NamedTuple):
+    spec: ModelSpec
+    history: List[float]  # loss after k updates, k = 0..steps_run (entry 0: the start)
+    best_step: int  # index into history of the returned parameters
+    steps_run: int
+    stop_reason: str = "steps"  # as kx.fit reports it
+
+
+def fit_spec(spec: ModelSpec, series: Series, train_mask, *, objective: str = "likelihood",
+             steps: int = 300, learning_rate: float = 0.05, fixed=(), folds: int = 4, seed: int = 0,
+             progress: bool = True) -> FitOutcome:
+    """Fit the free parameters of ``spec`` (in log space, Adam) to the training entries."""
+    import optax
+
+    theta0 = {k: jnp.asarray(v) for k, v in spec.to_unconstrained(fixed).items()}
+    if not theta0:  # everything fixed: nothing to fit
+        return FitOutcome(spec, [], 0, 0)
+    loss, data = make_loss(spec, series, train_mask, objective, fixed=fixed, folds=folds, seed=seed)
+    result = fit(loss, theta0, optax.adam(learning_rate), steps=steps, progress=progress, args=data)
+    first = float(result.history["loss"][0])
+    if not math.isfinite(first):
+        raise FitError(f"the {objective} loss of the starting model is not finite. Either some state cannot be "
+                       "determined from the measured columns (e.g. an axis that no column measures), or the "
+                       "starting values are extreme; check the --measure mapping, or set starting values "
+                       "with --set.")
+    theta = {k: np.asarray(v) for k, v in result.params.items()}
+    fitted = spec.with_unconstrained(theta)
+    if objective == "holdout":
+        fitted = calibrate_scale(fitted, series, train_mask, folds=folds, seed=seed)
+    history = [float(h) for h in np.asarray(result.history["loss"])]
+    return FitOutcome(fitted, history, int(result.best_step), int(result.steps_run), str(result.stop_reason))

@@ -1,0 +1,97 @@
+"""The fitting objectives of the command line, as functions of log-parameters.
+
+"likelihood": the exact negative log-likelihood of the training cells per
+cell. "holdout": the pooled K-fold cross-validated squared error of the
+smoother, in units of each column's sd, followed by :func:`calibrate_scale`
+(the held-out error cannot see the overall scale of the variances).
+"""
+
+from __future__ import annotations
+
+import math
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from .. import splits
+from ..likelihood import log_likelihood
+from ..smoothing import holdout_sums, smooth
+from .errors import FitError
+from .series import Series, column_scales
+from .spec import ModelSpec, param_shape
+
+
+def _scaled(model, y, s):
+    """The same model in standardised units y_j / s_j (smoothed states are unchanged)."""
+    inv = 1.0 / s
+    return model.replace(C=model.C * inv[:, None], R=model.R * inv[:, None] * inv[None, :]), y * inv
+
+
+def make_loss(spec: ModelSpec, series: Series, train_mask, objective: str, *,
+              fixed=(), folds: int = 4, seed: int = 0):
+    """(loss, data): loss(theta, *data) for ``theta`` = spec.to_unconstrained(fixed).
+
+    The measurements and masks are returned separately so that they reach
+    the compiled step as arguments, not as constants baked into it (XLA can
+    spend seconds folding a large closed-over mask). The timestamps stay
+    concrete: the exact discretisation sizes its loop from them.
+
+    objective "likelihood": −log p(y_train) / N_train (exact, diffuse prior).
+    objective "holdout": pooled K-fold cross-validated squared error of the
+    smoother on the training entries, each column in units of its standard
+    deviation (so columns in different units weigh alike).
+    """
+    t = np.asarray(series.t)
+    y = jnp.asarray(np.where(train_mask, series.y, 0.0))
+    mask = jnp.asarray(train_mask)
+    n_obs = float(np.sum(train_mask))
+    if objective == "likelihood":
+        def loss(theta, y, mask):
+            model = spec.state_space(t, theta)
+            return -log_likelihood(model, y, mask) / n_obs
+        return loss, (y, mask)
+    if objective == "holdout":
+        s = jnp.asarray(column_scales(series, train_mask))
+        holds = splits.holdout_folds(mask, folds, seed)
+
+        def loss(theta, y, mask, s, holds):
+            model, ys = _scaled(spec.state_space(t, theta), y, s)
+            sse, cnt = jax.vmap(lambda h: holdout_sums(model, ys, mask, h))(holds)
+            return jnp.sum(sse) / jnp.sum(cnt)
+        return loss, (y, mask, s, holds)
+    raise ValueError(f"objective must be 'likelihood' or 'holdout'; got {objective!r}.")
+
+
+def calibrate_scale(spec: ModelSpec, series: Series, train_mask, *, folds: int = 4, seed: int = 0) -> ModelSpec:
+    """Rescale every variance so that cross-validated standardised errors average 1.
+
+    The smoothed means depend only on the *ratios* of the variances, so the
+    held-out error cannot tell their overall scale c. Multiplying all of them
+    by c multiplies every predictive variance (posterior plus noise) by c, so
+    c = mean over held-out entries of e² / v, with v the predictive variance
+    of that entry for a new noisy measurement (measurement_cov + R) from the
+    fold that hid it.
+    """
+    t = jnp.asarray(series.t)
+    y = jnp.asarray(np.where(train_mask, series.y, 0.0))
+    mask = jnp.asarray(train_mask)
+    holds = splits.holdout_folds(mask, folds, seed)
+    model = spec.state_space(t)
+    R = np.diag(np.asarray(model.R))
+
+    def one(h):
+        out = smooth(model, y, mask & ~h, covariances=True)
+        v = jnp.diagonal(out.measurement_cov, axis1=-2, axis2=-1) + R
+        return jnp.where(h, (y - out.measurements) ** 2 / v, 0.0)
+
+    z2 = np.asarray(jax.jit(jax.vmap(one))(holds))
+    c = float(z2.sum() / np.asarray(holds).sum())
+    if not (math.isfinite(c) and c > 0):
+        raise FitError("could not calibrate the noise scale (non-finite held-out errors).")
+    kind = spec.kind_info
+    params = {}
+    for k, v in spec.params.items():
+        scale = c if k.startswith("q") else 1.0  # q, q_level, q_slope are variances per unit time
+        params[k] = [scale * float(x) for x in v] if param_shape(kind, k, spec.dims) else scale * float(v)
+    return spec.replace(params=params, noise=tuple(c * r for r in spec.noise))
