@@ -14,6 +14,7 @@ import traceback
 from pathlib import Path
 from typing import List, Optional
 
+from ._src.tools import signals
 from ._src.tools.atomic_outputs import AtomicOutputs
 from ._src.tools.errors import DataError, FitError, ModelFileError, UsageError
 
@@ -30,21 +31,26 @@ EXIT_USAGE = 2  # bad command line (argparse's own convention)
 EXIT_DATA = 3  # data file problem: unreadable, missing column, bad timestamps, no observations, unwritable output
 EXIT_MODEL_FILE = 4  # model file problem: unreadable, another format version, invalid contents
 EXIT_FIT = 5  # numerical failure: non-finite loss, states not identified
-EXIT_INTERRUPTED = 130  # Ctrl-C
+EXIT_INTERRUPTED = 130  # Ctrl-C (SIGINT): temporaries removed, no output written
+EXIT_TERMINATED = 143  # SIGTERM (kill, timeout, a job scheduler): handled like Ctrl-C
 
 _SAFETY_WRAPPED = textwrap.fill(SAFETY_NOTE, width=78, break_on_hyphens=False)
 
 EXIT_CODES_HELP = """exit codes:
   0    success: every output file was written
   1    internal error (a bug; rerun with --debug and report the traceback)
-  2    bad command line
+  2    bad command line, including an output that is an input or another output
   3    data problem: unreadable file, missing column, timestamps not strictly
-       increasing, no observations, output folder missing
+       increasing or mixing styles, no observations, output folder missing
   4    model file problem: unreadable, from another format version, invalid
   5    numerical failure: the fit or the smoother produced non-finite values
-  130  interrupted
+  130  interrupted (Ctrl-C, SIGINT)
+  143  terminated (SIGTERM)
 On any failure no output file is created or changed: outputs are written to
-temporary files and renamed into place only when all of them are complete.
+temporary files (.NAME.kalmax-XXXXXXXX.part, in the output's folder) and
+renamed into place only when all of them are complete. A run killed outright
+(SIGKILL, power cut) can leave such temporary files: delete them at will; the
+next run writing the same output removes those older than a day.
 
 compiled programs are kept between runs in $KALMAX_CACHE_DIR (default
 ~/.cache/kalmax/xla), so a second run on same-shaped data starts in seconds;
@@ -55,8 +61,10 @@ Smooth, impute and fit sensor readings with a continuous-time linear-Gaussian
 model (a Kalman/Rauch-Tung-Striebel smoother on irregular timestamps).
 
 Input: a CSV (or Parquet) table with a time column and one column per measured
-quantity. Blank cells (or NaN, NA) are missing values; rows may come at
-irregular times and each sensor may report at its own rate.
+quantity. Blank cells are missing values, and so are cells holding one of the
+words NaN, NA, N/A, null, none or - (any case; --missing WORD replaces these
+words); rows may come at irregular times and each sensor may report at its own
+rate.
 
 Typical session:
   kalmax models                                   # which models exist
@@ -99,6 +107,11 @@ def build_parser() -> argparse.ArgumentParser:
                      help="coverage of the interval columns and bands, between 0 and 1 (default: %(default)s)")
     out.add_argument("--with-states", action="store_true",
                      help="also write the smoothed state (e.g. velocities) as state_NAME columns")
+    inp = common.add_argument_group("input")
+    inp.add_argument("--missing", action="append", default=None, metavar="WORD",
+                     help="a word that marks a missing measurement (any case; repeat for several). Given once "
+                          "or more, it replaces the default words NaN, NA, N/A, null, none and -; blank cells "
+                          "are always missing")
     misc = common.add_argument_group("other")
     misc.add_argument("--quiet", "-q", action="store_true", help="print errors only (no progress, no summary)")
     misc.add_argument("--debug", action="store_true", help="show the Python traceback of an internal error")
@@ -117,7 +130,11 @@ def build_parser() -> argparse.ArgumentParser:
             "  kalmax fit float.csv --time time --model constant-velocity --dims 2 \\\n"
             "      --measure east --measure north --measure speed_east=velocity0\n\n"
             "Time: numbers (any unit; the model's rates are per that unit) or ISO 8601 date-times\n"
-            "(then rates are per second). Timestamps must be strictly increasing.\n\n" + _SAFETY_WRAPPED),
+            "(then rates are per second). Timestamps must be strictly increasing and written one way:\n"
+            "all with a time zone (Z, +01:00) or all without (read as UTC), or all dates.\n"
+            "Time differences are computed exactly (epoch nanoseconds, fractions of a second).\n\n"
+            "Missing measurements: blank cells, and cells holding NaN, NA, N/A, null, none or -\n"
+            "(any case); --missing WORD replaces these words.\n\n" + _SAFETY_WRAPPED),
         epilog=EXIT_CODES_HELP)
     fit.add_argument("data", metavar="DATA", help="input table: .csv (header row) or .parquet (needs pyarrow)")
     g = fit.add_argument_group("what to fit")
@@ -180,20 +197,43 @@ def _default_path(data: str, suffix: str) -> Path:
     return p.with_name(p.stem + suffix)
 
 
-def _outputs(args, model_file: bool):
+def _same_file(a, b) -> bool:
+    """Whether paths ``a`` and ``b`` name one file: the same inode (hard and symbolic links) for
+    existing files, else the same fully resolved path."""
+    try:
+        if os.path.samefile(a, b):
+            return True
+    except OSError:  # one of them does not exist (yet)
+        pass
+    return os.path.normcase(os.path.realpath(a)) == os.path.normcase(os.path.realpath(b))
+
+
+def _outputs(args, model_file: bool, inputs):
+    """(table, report, model) output paths, checked. ``inputs``: (option, path) of every input file.
+
+    An output that is one of the inputs, or two outputs that are one file (by
+    resolved path, symbolic or hard link), is a :class:`UsageError`.
+    """
     table = Path(args.output) if args.output else _default_path(args.data, "_smoothed.csv")
     report = None if args.no_report else (Path(args.report) if args.report else _default_path(args.data, "_report.png"))
     model = None
     if model_file:
         model = Path(args.model_file) if args.model_file else _default_path(args.data, "_model.json")
-    paths = [p for p in (table, report, model) if p is not None]
-    resolved = [os.path.abspath(p) for p in paths]
-    if len(set(resolved)) != len(resolved):
-        raise UsageError("the output files must have different names.")
-    if os.path.abspath(args.data) in resolved:
-        raise UsageError("an output file would overwrite the input DATA file.")
+    named = [("--output" if args.output else "the table output", table),
+             ("--report" if args.report else "the report output", report),
+             ("--model-file" if model_file and args.model_file else "the model file output", model)]
+    named = [(opt, p) for opt, p in named if p is not None]
+    for i, (opt, p) in enumerate(named):
+        for opt2, p2 in named[:i]:
+            if _same_file(p, p2):
+                raise UsageError(f"the output files must be different files, but {opt2} {p2} and {opt} {p} are "
+                                 "the same file.")
+        for what, src in inputs:
+            if src is not None and _same_file(p, src):
+                raise UsageError(f"{opt} {p} would overwrite the input {what} {src} (the same file); "
+                                 "choose another output name.")
     # Check the destinations before any work: a long fit should not end in "cannot write".
-
+    paths = [p for _, p in named]
     for p in paths:
         if p.is_dir():
             raise DataError(f"cannot write {p}: it is a folder.")
@@ -217,11 +257,16 @@ def _table_for(args, spec, series, smoothing):
     return apply_workflow.output_table(spec, series, smoothing, level=args.level, with_states=args.with_states)
 
 
-def _read(path, time_column, columns, time_format=None):
+def _read(args, time_column, columns, time_format=None):
     from ._src.tools import series, tables
 
-    names, cols = tables.read_table(path)
-    return series.series_from_table(names, cols, time_column, columns, source=str(path), time_format=time_format)
+    if args.missing is not None:
+        bad = [w for w in args.missing if not w.strip()]
+        if bad:
+            raise UsageError("--missing needs a word; blank cells are always missing.")
+    names, cols = tables.read_table(args.data)
+    return series.series_from_table(names, cols, time_column, columns, source=str(args.data),
+                                    time_format=time_format, missing=args.missing)
 
 
 # ----------------------------------------------------------------------------
@@ -258,7 +303,8 @@ def cmd_fit(args) -> int:
         raise UsageError(f"--folds must be at least 2; got {args.folds}.")
     if not (args.learning_rate > 0 and math.isfinite(args.learning_rate)):
         raise UsageError(f"--learning-rate must be > 0; got {args.learning_rate}.")
-    table_path, report_path, model_path = _outputs(args, model_file=True)
+    table_path, report_path, model_path = _outputs(args, model_file=True,
+                                                   inputs=[("DATA", args.data), ("--start", args.start)])
 
     start = model_file.load_model(args.start) if args.start else None
     if start is not None:
@@ -270,7 +316,7 @@ def cmd_fit(args) -> int:
             cols, states, _ = parse_measures(args.measure, start.kind, start.dims)
             if tuple(cols) != start.columns or tuple(states) != start.measured:
                 raise UsageError("--measure contradicts the columns of the --start model file; drop one of them.")
-        series = _read(args.data, start.time_column, start.columns, start.time_format)
+        series = _read(args, start.time_column, start.columns, start.time_format)
         spec = start
     else:
         missing = [o for o, v in (("--time", args.time), ("--model", args.model), ("--measure", args.measure))
@@ -284,7 +330,7 @@ def cmd_fit(args) -> int:
             check_columns(args.time, cols)
         except ValueError as e:
             raise UsageError(f"--measure: {e}") from None
-        series = _read(args.data, args.time, cols)
+        series = _read(args, args.time, cols)
         spec = starting_values.default_spec(args.model, dims, args.time, cols, states, series)
     spec = apply_settings(spec, args.set)
     allowed = set(spec.kind_info.params) | {"noise"}
@@ -355,9 +401,10 @@ def cmd_apply(args) -> int:
     from ._src.tools.report import write_report
 
     _check_level(args)
-    table_path, report_path, _ = _outputs(args, model_file=False)
+    table_path, report_path, _ = _outputs(args, model_file=False,
+                                          inputs=[("DATA", args.data), ("MODEL.json", args.model_file)])
     spec = model_file.load_model(args.model_file)
-    series = _read(args.data, spec.time_column, spec.columns, spec.time_format)
+    series = _read(args, spec.time_column, spec.columns, spec.time_format)
     _say(args, f"Read {args.data}: {len(series.t)} rows, {int(series.mask.sum())} observed cells.")
     smoothing = apply_workflow.smooth_series(spec, series)
     names, cols = _table_for(args, spec, series, smoothing)
@@ -408,13 +455,18 @@ def main(argv: Optional[List[str]] = None) -> int:
         return EXIT_USAGE
     if args.command == "models":
         return cmd_models(args)
+    # SIGTERM unwinds like Ctrl-C: temporary outputs are removed, then exit 143 (130 for Ctrl-C).
+    with signals.raise_on_stop_signals():
+        return _run(parser, args)
 
-    import jax
 
-    # Timestamps and variances span many orders of magnitude: the command line works in float64.
-    jax.config.update("jax_enable_x64", True)
-    _use_compilation_cache(jax)
+def _run(parser, args) -> int:
     try:
+        import jax
+
+        # Timestamps and variances span many orders of magnitude: the command line works in float64.
+        jax.config.update("jax_enable_x64", True)
+        _use_compilation_cache(jax)
         return cmd_fit(args) if args.command == "fit" else cmd_apply(args)
     except UsageError as e:
         parser.exit(EXIT_USAGE, f"kalmax {args.command}: error: {e}\n")
@@ -427,9 +479,14 @@ def main(argv: Optional[List[str]] = None) -> int:
     except FitError as e:
         print(f"kalmax: fit failed: {e}", file=sys.stderr)
         return EXIT_FIT
-    except KeyboardInterrupt:
-        print("kalmax: interrupted; no output written.", file=sys.stderr)
-        return EXIT_INTERRUPTED
+    except KeyboardInterrupt as e:  # Ctrl-C, or signals.Interrupted for SIGINT / SIGTERM
+        terminated = isinstance(e, signals.Interrupted) and e.name == "SIGTERM"
+        what = "terminated (SIGTERM)" if terminated else "interrupted"
+        if isinstance(e, signals.Interrupted) and e.after_commit:
+            print(f"kalmax: {what} after every output file was written.", file=sys.stderr)
+        else:
+            print(f"kalmax: {what}; no output file was created or changed.", file=sys.stderr)
+        return EXIT_TERMINATED if terminated else EXIT_INTERRUPTED
     except Exception as e:  # the last resort: report, do not dump a traceback on a newcomer
         if args.debug:
             traceback.print_exc()

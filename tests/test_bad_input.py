@@ -8,14 +8,11 @@ ValueError from ``kx.validate`` that names the problem.
 """
 
 import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
 
-jax.config.update("jax_enable_x64", True)
-
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import pytest  # noqa: E402
-
-import kalmax as kx  # noqa: E402
+import kalmax as kx
 
 T, N, P = 6, 2, 2
 
@@ -182,6 +179,18 @@ def test_integer_model_field(field):
 def test_mask_of_wrong_dtype(dtype):
     model, y, mask = good()
     _raises_everywhere(TypeError, r"mask must be a boolean array \(True = observed\)", model, y, mask.astype(dtype))
+
+
+@pytest.mark.parametrize("dtype", [object, str])
+def test_mask_or_y_of_object_or_string_dtype(dtype):
+    """Object and string arrays are refused by name before JAX sees them (called directly: jax.jit
+    itself refuses such arguments before any kalmax code runs)."""
+    model, y, mask = good()
+    for name in ALL:
+        with pytest.raises(TypeError, match=r"mask must be a boolean array \(True = observed\); got dtype"):
+            _call(name, model, y, mask.astype(dtype))
+        with pytest.raises(TypeError, match=r"y must be a real floating-point array"):
+            _call(name, model, y.astype(dtype), mask)
 
 
 @pytest.mark.parametrize("dtype", [jnp.float16, jnp.bfloat16], ids=["float16", "bfloat16"])

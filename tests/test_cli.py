@@ -6,27 +6,22 @@ failure, that no output file (nor a temporary leftover) was created and that
 existing files were left untouched.
 """
 
-import jax
+import json
+import math
+import os
+import subprocess
+import sys
+from pathlib import Path
+from statistics import NormalDist
 
-jax.config.update("jax_enable_x64", True)
+import numpy as np
+import pytest
 
-import csv  # noqa: E402
-import json  # noqa: E402
-import math  # noqa: E402
-import os  # noqa: E402
-import subprocess  # noqa: E402
-import sys  # noqa: E402
-from pathlib import Path  # noqa: E402
-from statistics import NormalDist  # noqa: E402
+import kalmax as kx
+from kalmax._src.tools import atomic_outputs, model_file as kio
 
-import numpy as np  # noqa: E402
-import pytest  # noqa: E402
-
-import kalmax as kx  # noqa: E402
-from kalmax._src.tools import atomic_outputs, model_file as kio  # noqa: E402
-
-sys.path.insert(0, os.path.dirname(__file__))
-import reference  # noqa: E402
+import reference
+from table_files import read_csv, write_csv
 
 _SCRIPT = Path(sys.executable).parent / "kalmax"
 # The installed console script is the real entry point; `python -m kalmax` runs the same main().
@@ -39,19 +34,6 @@ def run(*args, cwd, env_extra=None):
     env.update(env_extra or {})
     return subprocess.run(COMMAND + [str(a) for a in args], cwd=cwd, env=env, capture_output=True, text=True,
                           timeout=300)
-
-
-def write_csv(path, header, rows):
-    with open(path, "w", newline="") as f:
-        w = csv.writer(f)
-        w.writerow(header)
-        w.writerows(rows)
-
-
-def read_csv(path):
-    with open(path, newline="") as f:
-        rows = list(csv.reader(f))
-    return rows[0], rows[1:]
 
 
 def snapshot(folder):

@@ -666,6 +666,52 @@ def test_loader_uses_no_code_executing_parser():
             assert node.func.id not in ("eval", "exec", "compile", "__import__")
 
 
+def _strict_cases():
+    """Values that plain Python equality or a missing check would let through."""
+    def with_model(**changes):
+        doc = _valid_doc()
+        doc["model"].update(changes)
+        return doc
+
+    def with_column(name):
+        doc = _valid_doc()
+        doc["model"]["measurements"][0]["column"] = name
+        return doc
+
+    states = list(_valid_doc()["model"]["states"])
+    return {
+        "format_version true": (dict(_valid_doc(), format_version=True), "format_version"),
+        "format_version 1.0": (dict(_valid_doc(), format_version=1.0), "format_version"),
+        "format_version '1'": (dict(_valid_doc(), format_version="1"), "format_version"),
+        "states of another kind": (with_model(states=["level0", "level1"]), "states"),
+        "states in another order": (with_model(states=states[::-1]), "states"),
+        "states missing one": (with_model(states=states[:-1]), "states"),
+        "states not a list": (with_model(states="position0"), "states"),
+        "an empty column name": (with_column(""), "column"),
+        "a blank column name": (with_column("   "), "column"),
+    }
+
+
+@pytest.mark.parametrize("name", list(_strict_cases()))
+def test_strict_values_are_refused(workdir, name):
+    doc, word = _strict_cases()[name]
+    path = _write(workdir, json.dumps(doc).encode())
+    with pytest.raises(kx.ModelFileError) as info:
+        kx.load_model(path)
+    _assert_clear(info.value, path)
+    assert word in str(info.value)
+    CASES["fixed"] += 1
+
+
+def test_matching_states_and_integer_version_load(workdir):
+    doc = _valid_doc()
+    assert doc["format_version"] == 1 and type(doc["format_version"]) is int
+    spec = kx.load_model(_write(workdir, json.dumps(doc).encode()))
+    assert list(spec.state_names()) == doc["model"]["states"]
+    del doc["model"]["states"]  # optional: the kind and dims define them
+    assert kx.load_model(_write(workdir, json.dumps(doc).encode())) == spec
+
+
 def test_missing_file_and_folder(workdir):
     """A missing path and a folder fail with a clear ModelFileError."""
     for path in (workdir / "does-not-exist.json", workdir):

@@ -20,10 +20,16 @@ def test_series_parsing_numbers_dates_and_missing_cells():
     np.testing.assert_array_equal(s.t, [0.0, 1.5, 4.0])
     np.testing.assert_array_equal(s.mask, [[True, False], [False, True], [False, True]])
     assert s.y[2, 1] == -300.0 and s.time_format == "number"
-    iso = {"t": ["2030-01-01T00:00:00Z", "2030-01-01T00:00:02.5+00:00", "2030-01-01T01:00:00"], "a": ["1", "2", "3"]}
+    iso = {"t": ["2030-01-01T00:00:00Z", "2030-01-01T00:00:02.5+00:00", "2030-01-01T02:00:00+01:00"], "a": ["1", "2", "3"]}
     s = series_mod.series_from_table(["t", "a"], iso, "t", ["a"])
-    np.testing.assert_allclose(s.t, [0.0, 2.5, 3600.0])  # naive date-times are read as UTC
+    np.testing.assert_allclose(s.t, [0.0, 2.5, 3600.0])
     assert s.time_format == "iso8601"
+    naive = {"t": ["2030-01-01T00:00:00", "2030-01-01T00:00:02.5", "2030-01-01T01:00:00"], "a": ["1", "2", "3"]}
+    np.testing.assert_allclose(series_mod.series_from_table(["t", "a"], naive, "t", ["a"]).t, [0.0, 2.5, 3600.0])
+    # A column mixing date-times with and without a zone would silently read the unmarked ones as UTC.
+    mixed = {"t": ["2030-01-01T00:00:00Z", "2030-01-01T01:00:00"], "a": ["1", "2"]}
+    with pytest.raises(DataError, match="data row 2 .* without a time zone"):
+        series_mod.series_from_table(["t", "a"], mixed, "t", ["a"])
     with pytest.raises(DataError, match="mixes numbers and date-times"):
         series_mod.series_from_table(["t", "a"], {"t": ["1", "2030-01-01"], "a": ["1", "2"]}, "t", ["a"])
     with pytest.raises(DataError, match="not finite"):

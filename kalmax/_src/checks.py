@@ -124,6 +124,13 @@ def canonicalize(model: StateSpace, y, mask):
     if mask is None:
         mask = ~jnp.isnan(y)
     else:
+        mask_dtype = _dtype_of("mask", mask)
+        if not (mask_dtype == np.bool_ or np.issubdtype(mask_dtype, np.number)):
+            # Object and string arrays would fail inside JAX without naming the argument.
+            raise TypeError(
+                f"mask must be a boolean array (True = observed); got dtype {mask_dtype}. "
+                "Build it with dtype=bool (for example mask = ~np.isnan(y))."
+            )
         mask = jnp.asarray(mask)
         if mask.dtype != jnp.bool_:
             raise TypeError(

@@ -1,7 +1,7 @@
 """The tool wing: what the ``kalmax`` command and the demo do around the numerical core.
 
 One job a module: error classes (``errors``), all-or-nothing outputs
-(``atomic_outputs``), tables (``tables``), the model spec and its text
+(``atomic_outputs``), stop signals during a command (``signals``), tables (``tables``), the model spec and its text
 settings (``spec``, ``settings``), the model file (``model_file``), table →
 series (``series``), starting values, objectives, the fit and apply
 workflows, and the report. The numerical core (``kalmax/_src/*.py``,

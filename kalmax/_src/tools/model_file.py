@@ -91,6 +91,12 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
     _require(doc.get("format") == FORMAT_NAME,
              f"not a kalmax model file (format is {doc.get('format')!r}, expected {FORMAT_NAME!r}).", path)
     version = doc.get("format_version")
+    if type(version) is not int:  # true and 1.0 compare equal to 1 in Python: refuse them by type
+        shown = json.dumps(version) if isinstance(version, (bool, int, float, str)) or version is None \
+            else f"a JSON {'list' if isinstance(version, list) else 'object'}"
+        raise ModelFileError(f"{path}: " + _clip(
+            f"format_version must be the integer {FORMAT_VERSION}; got {shown} (written by "
+            f"{doc.get('written_by', 'unknown')!r})."))
     if version != FORMAT_VERSION:
         raise ModelFileError(f"{path}: " + _clip(
             f"model file format version {version!r} (written by {doc.get('written_by', 'unknown')}); "
@@ -113,6 +119,11 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
                  and isinstance(e.get("noise_variance"), (int, float)) and not isinstance(e.get("noise_variance"), bool),
                  f"measurement {i} must have a text 'column', a text 'state' and a numeric 'noise_variance'.", path)
         _require(len(e["column"]) <= MAX_NAME_CHARS, f"measurement {i}: column name too long.", path)
+        _require(e["column"].strip() != "", f"measurement {i}: the column name is empty.", path)
+    if "states" in m:  # written for readers; optional, but if present it must be the kind's states
+        want = list(KINDS[kind].state_names(dims))
+        _require(m["states"] == want and all(isinstance(x, str) for x in m["states"]),
+                 f"'states' must be the states of a {kind} model with dims={dims}: {', '.join(want)}.", path)
     tcol = m.get("time_column")
     _require(isinstance(tcol, str) and 0 < len(tcol) <= MAX_NAME_CHARS, "'time_column' must be a non-empty text.", path)
     params = m.get("parameters")

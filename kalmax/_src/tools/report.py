@@ -17,13 +17,9 @@ MAX_PANELS = 8  # more measurement columns than this are summarised by the first
 def _time_axis(series):
     """x values for plotting and the axis label."""
     if series.time_format == "iso8601":
-        first = series.times_raw[0]
-        if isinstance(first, str):
-            start = _dt.datetime.fromisoformat(first.strip())
-        else:
-            start = first if isinstance(first, _dt.datetime) else _dt.datetime(first.year, first.month, first.day)
-        if start.tzinfo is None:
-            start = start.replace(tzinfo=_dt.timezone.utc)
+        from .series import first_datetime
+
+        start = first_datetime(series)  # in UTC; a time without a zone is read as UTC
         return np.array([start + _dt.timedelta(seconds=float(s)) for s in series.t]), "time (UTC)"
     return series.t + _first_number(series), "time"
 

@@ -7,14 +7,39 @@ row and column.
 from __future__ import annotations
 
 import datetime as _dt
+import decimal
 import math
-from typing import Dict, NamedTuple, Optional, Sequence
+import re
+from typing import Dict, Iterable, NamedTuple, Optional, Sequence
 
 import numpy as np
 
 from .errors import DataError
+from .tables import Instant, Unreadable
 
-_MISSING = {"", "nan", "na", "n/a", "null", "none", "-"}
+# Words read as a missing measurement (compared without case and surrounding
+# spaces). A blank cell is always missing. The command line's --missing
+# replaces this set.
+DEFAULT_MISSING = ("nan", "na", "n/a", "null", "none", "-")
+
+# Time differences are formed exactly (decimal arithmetic, 60 significant
+# digits: enough for epoch nanoseconds with many more digits to spare) and
+# rounded to float64 once, relative to the first time.
+_EXACT = decimal.Context(prec=60, rounding=decimal.ROUND_HALF_EVEN)
+_MAX_FRACTION_DIGITS = 30  # digits after the decimal point of an ISO 8601 time
+_EPOCH = _dt.datetime(1970, 1, 1, tzinfo=_dt.timezone.utc)
+# "YYYY-MM-DD" (or another ISO 8601 date), one separator, "HH:MM:SS", a fraction, an optional zone.
+# datetime.fromisoformat reads at most microseconds, so the fraction is read here.
+_ISO_FRACTION = re.compile(r"^(?P<head>[0-9W-]+[^0-9W:+.,-][0-9]{2}:?[0-9]{2}:?[0-9]{2})[.,](?P<digits>[0-9]+)"
+                           r"(?P<tail>(?:[Zz]|[+-][0-9:.,]*)?)$", re.ASCII)
+
+# The styles of a time column; one column holds one style.
+_STYLE_WORDS = {
+    "number": "a number",
+    "date": "a date without a time of day",
+    "zoned": "a date-time with a time zone",
+    "unzoned": "a date-time without a time zone",
+}
 
 
 class Series(NamedTuple):
@@ -22,7 +47,8 @@ class Series(NamedTuple):
 
     times_raw: the time cells as read (written back unchanged).
     t: (T,) float64 model times, relative to the first timestamp (seconds
-       for ISO 8601 date-times, file units for numbers).
+       for ISO 8601 date-times, file units for numbers). Each t[i] is the
+       exact difference time[i] - time[0], rounded once to float64.
     y: (T, p) float64 measurements, NaN where missing.
     time_format: "number" or "iso8601".
     """
@@ -37,44 +63,94 @@ class Series(NamedTuple):
         return ~np.isnan(self.y)
 
 
+def _epoch_seconds(dt: _dt.datetime) -> decimal.Decimal:
+    """Exact seconds since 1970-01-01 UTC (a datetime without a zone is read as UTC)."""
+    aware = dt if dt.tzinfo else dt.replace(tzinfo=_dt.timezone.utc)
+    d = aware - _EPOCH
+    micro = (d.days * 86400 + d.seconds) * 1_000_000 + d.microseconds
+    return decimal.Decimal(micro).scaleb(-6, context=_EXACT)
+
+
+def _parse_iso(s: str):
+    """(exact seconds since the epoch, style) of an ISO 8601 text; None if it is not one."""
+    try:
+        day = _dt.date.fromisoformat(s)
+    except ValueError:
+        pass
+    else:
+        return _epoch_seconds(_dt.datetime(day.year, day.month, day.day)), "date"
+    fraction = decimal.Decimal(0)
+    text = s
+    m = _ISO_FRACTION.match(s)
+    if m:
+        digits = m.group("digits")
+        if len(digits) > _MAX_FRACTION_DIGITS:
+            return None
+        fraction = decimal.Decimal("0." + digits)  # exact: a Decimal made from text is never rounded
+        text = m.group("head") + m.group("tail")
+    try:
+        dt = _dt.datetime.fromisoformat(text)
+    except ValueError:
+        return None
+    return _EXACT.add(_epoch_seconds(dt), fraction), ("zoned" if dt.tzinfo is not None else "unzoned")
+
+
 def _parse_time(cell):
-    """(value in seconds or file units, format) of one time cell; None if unparseable."""
+    """(exact value, format, style) of one time cell; None if unparseable.
+
+    The value is a :class:`decimal.Decimal`: seconds since 1970-01-01 for
+    date-times (format "iso8601"), the number itself for numbers ("number").
+    """
+    if isinstance(cell, Instant):
+        return decimal.Decimal(cell.ns).scaleb(-9, context=_EXACT), "iso8601", ("zoned" if cell.zone else "unzoned")
     if isinstance(cell, _dt.datetime):
-        dt = cell if cell.tzinfo else cell.replace(tzinfo=_dt.timezone.utc)
-        return dt.timestamp(), "iso8601"
+        return _epoch_seconds(cell), "iso8601", ("zoned" if cell.tzinfo is not None else "unzoned")
     if isinstance(cell, _dt.date):
-        return _dt.datetime(cell.year, cell.month, cell.day, tzinfo=_dt.timezone.utc).timestamp(), "iso8601"
-    if isinstance(cell, (int, float)) and not isinstance(cell, bool):
-        return float(cell), "number"
+        return _epoch_seconds(_dt.datetime(cell.year, cell.month, cell.day)), "iso8601", "date"
+    if isinstance(cell, bool):
+        return None
+    if isinstance(cell, (int, float, decimal.Decimal)):
+        return decimal.Decimal(cell), "number", "number"
     if isinstance(cell, str):
         s = cell.strip()
         try:
-            return float(s), "number"
-        except ValueError:
+            return decimal.Decimal(s), "number", "number"
+        except (decimal.InvalidOperation, ValueError):
             pass
-        try:
-            dt = _dt.datetime.fromisoformat(s)
-        except ValueError:
+        parsed = _parse_iso(s)
+        if parsed is None:
             return None
-        dt = dt if dt.tzinfo else dt.replace(tzinfo=_dt.timezone.utc)
-        return dt.timestamp(), "iso8601"
+        return parsed[0], "iso8601", parsed[1]
     return None
 
 
-def _parse_value(cell, col, row, source):
+def _unreadable(cell: Unreadable, col, source):
+    return DataError(f"{source}: column {col!r} has the Parquet type {cell.type}, which kalmax cannot read "
+                     f"({cell.why.rstrip('.')}).")
+
+
+def _parse_value(cell, col, row, source, missing=frozenset(DEFAULT_MISSING)):
     if cell is None:
         return math.nan
-    if isinstance(cell, (int, float)) and not isinstance(cell, bool):
-        v = float(cell)
+    if isinstance(cell, Unreadable):
+        raise _unreadable(cell, col, source)
+    if isinstance(cell, (int, float, decimal.Decimal)) and not isinstance(cell, bool):
+        try:
+            v = float(cell)
+        except (ValueError, OverflowError):  # a signalling NaN, an integer past the float range
+            v = math.inf
     elif isinstance(cell, str):
         s = cell.strip()
-        if s.lower() in _MISSING:
+        if not s or s.lower() in missing:
             return math.nan
         try:
             v = float(s)
         except ValueError:
             raise DataError(f"{source}: column {col!r}, data row {row}: {cell!r} is not a number "
-                            "(leave the cell blank for a missing value).") from None
+                            "(leave the cell blank for a missing value, or name the word with --missing).") from None
+        if math.isnan(v) and "nan" not in missing:
+            raise DataError(f"{source}: column {col!r}, data row {row}: {cell!r} is not a number "
+                            "(leave the cell blank for a missing value, or name the word with --missing).")
     else:
         raise DataError(f"{source}: column {col!r}, data row {row}: cannot use a value of type "
                         f"{type(cell).__name__} as a measurement.")
@@ -85,56 +161,95 @@ def _parse_value(cell, col, row, source):
     return v
 
 
+def _names_text(names: Sequence[str], limit: int = 20) -> str:
+    shown = ", ".join(repr(c) for c in names[:limit])
+    return shown if len(names) <= limit else f"{shown}, ... ({len(names)} in all)"
+
+
+def missing_words(words: Optional[Iterable[str]]) -> frozenset:
+    """The set of missing-value words (lower case, stripped); ``None`` gives :data:`DEFAULT_MISSING`."""
+    return frozenset(w.strip().lower() for w in (DEFAULT_MISSING if words is None else words))
+
+
 def series_from_table(names: Sequence[str], cols: Dict[str, list], time_column: str,
                       columns: Sequence[str], *, source: str = "input",
-                      time_format: Optional[str] = None) -> Series:
+                      time_format: Optional[str] = None,
+                      missing: Optional[Iterable[str]] = None) -> Series:
     """Pick and check the time and measurement columns of a table.
 
+    ``missing``: the words read as a missing measurement, compared without
+    case and surrounding spaces (default :data:`DEFAULT_MISSING`); a blank
+    cell is always missing, and so is a null or NaN number in a Parquet
+    column. A text cell that reads as NaN (``nan``, ``+nan``) is missing only
+    when ``nan`` is one of the words.
+
     Errors (all :class:`DataError`): a missing column, an unparseable or blank
-    timestamp, timestamps that are not strictly increasing, a non-numeric
+    timestamp, a time column that mixes numbers and date-times or date-time
+    styles (with and without a time zone, dates and date-times), timestamps
+    that are not strictly increasing (compared exactly) or too close together
+    to tell apart in float64 relative to the first, a non-numeric
     measurement cell, fewer than two rows, a measurement column with no
     observation at all, and (when ``time_format`` is given) timestamps of the
     other kind than the model was fitted on.
     """
+    missing_set = missing_words(missing)
     wanted = [time_column] + list(columns)
-    missing = [c for c in wanted if c not in cols]
-    if missing:
-        raise DataError(f"{source}: no column named {', '.join(repr(c) for c in missing)}; "
-                        f"the file has columns {', '.join(repr(c) for c in names)}.")
+    absent = [c for c in wanted if c not in cols]
+    if absent:
+        raise DataError(f"{source}: no column named {', '.join(repr(c) for c in absent)}; "
+                        f"the file has columns {_names_text(list(names))}.")
     raw = cols[time_column]
     T = len(raw)
     if T < 2:
         raise DataError(f"{source}: {T} data row(s); at least 2 are needed.")
-    t = np.empty(T)
-    fmt = None
+    exact = []
+    fmt = style = None
+    first_style_row = 0
     for i, cell in enumerate(raw):
+        if isinstance(cell, Unreadable):
+            raise _unreadable(cell, time_column, source)
         parsed = _parse_time(cell)
         if parsed is None or (isinstance(cell, str) and not cell.strip()) or cell is None:
             raise DataError(f"{source}: time column {time_column!r}, data row {i + 1}: {cell!r} is neither a "
                             "number nor an ISO 8601 date-time (e.g. 2024-05-01T12:00:00Z).")
-        value, f = parsed
+        value, f, st = parsed
         if fmt is None:
-            fmt = f
+            fmt, style, first_style_row = f, st, i
         elif f != fmt:
             raise DataError(f"{source}: time column {time_column!r} mixes numbers and date-times "
                             f"(data row {i + 1}: {cell!r}).")
-        if not math.isfinite(value):
+        elif st != style:
+            raise DataError(f"{source}: time column {time_column!r} mixes timestamp styles: data row "
+                            f"{first_style_row + 1} ({raw[first_style_row]!r}) is {_STYLE_WORDS[style]}, data row "
+                            f"{i + 1} ({cell!r}) is {_STYLE_WORDS[st]}. Write every timestamp the same way "
+                            "(e.g. all with a time zone, such as 2024-05-01T12:00:00Z).")
+        if not value.is_finite() or not math.isfinite(float(value)):
             raise DataError(f"{source}: time column {time_column!r}, data row {i + 1}: {cell!r} is not finite.")
-        t[i] = value
+        exact.append(value)
     if time_format is not None and fmt != time_format:
         raise DataError(f"{source}: the model was fitted on {time_format} timestamps, but time column "
                         f"{time_column!r} holds {fmt} values.")
-    dt = np.diff(t)
-    bad = np.nonzero(dt <= 0)[0]
-    if bad.size:
-        i = int(bad[0]) + 1
-        what = "repeats" if dt[bad[0]] == 0 else "goes back before"
+    bad = [i for i in range(1, T) if exact[i] <= exact[i - 1]]  # exact comparisons
+    if bad:
+        i = bad[0]
+        what = "repeats" if exact[i] == exact[i - 1] else "goes back before"
         raise DataError(f"{source}: timestamps must be strictly increasing, but data row {i + 1} ({raw[i]!r}) "
-                        f"{what} data row {i} ({raw[i - 1]!r}); {bad.size} such place(s). Sort the rows by "
+                        f"{what} data row {i} ({raw[i - 1]!r}); {len(bad)} such place(s). Sort the rows by "
                         "time and merge rows that share a timestamp.")
+    first = exact[0]
+    t = np.array([float(_EXACT.subtract(v, first)) for v in exact])
+    if not np.all(np.isfinite(t)):
+        raise DataError(f"{source}: time column {time_column!r} spans more than the floating-point range.")
+    dt = np.diff(t)
+    close = np.nonzero(dt <= 0)[0]
+    if close.size:
+        i = int(close[0]) + 1
+        raise DataError(f"{source}: data rows {i} and {i + 1} of time column {time_column!r} ({raw[i - 1]!r}, "
+                        f"{raw[i]!r}) are too close together to tell apart in float64 at their distance from the "
+                        f"first timestamp ({raw[0]!r}); {close.size} such place(s).")
     y = np.empty((T, len(columns)))
     for j, c in enumerate(columns):
-        y[:, j] = [_parse_value(cell, c, i + 1, source) for i, cell in enumerate(cols[c])]
+        y[:, j] = [_parse_value(cell, c, i + 1, source, missing_set) for i, cell in enumerate(cols[c])]
     counts = np.sum(~np.isnan(y), axis=0)
     if counts.sum() == 0:
         raise DataError(f"{source}: no observations: every cell of {', '.join(repr(c) for c in columns)} "
@@ -143,7 +258,14 @@ def series_from_table(names: Sequence[str], cols: Dict[str, list], time_column: 
     if empty:
         raise DataError(f"{source}: column(s) {', '.join(repr(c) for c in empty)} hold no observation at all; "
                         "drop them from the measured columns.")
-    return Series(times_raw=list(raw), t=t - t[0], y=y, time_format=fmt)
+    return Series(times_raw=list(raw), t=t, y=y, time_format=fmt)
+
+
+def first_datetime(series: Series) -> _dt.datetime:
+    """The first timestamp of an ``iso8601`` series as a datetime in UTC (microseconds, truncated)."""
+    parsed = _parse_time(series.times_raw[0])
+    micro = int(parsed[0].scaleb(6, context=_EXACT).to_integral_value(rounding=decimal.ROUND_FLOOR))
+    return _EPOCH + _dt.timedelta(microseconds=micro)
 
 
 def column_scales(series: Series, mask):

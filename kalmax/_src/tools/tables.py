@@ -1,19 +1,92 @@
 """Measurement tables: read and write CSV (built in) and Parquet (needs pyarrow).
 
 A table is (column names, {name: list of cells}). CSV cells are strings
-('' for blank); Parquet cells are Python values (None for null). Writers go
-through :class:`~.atomic_outputs.AtomicOutputs`.
+('' for blank); Parquet cells are Python values (None for null), except that
+a timestamp column gives :class:`Instant` cells (exact integer nanoseconds,
+whatever the column's resolution) and a column of a type that cannot be
+turned into Python values gives :class:`Unreadable` cells (an error only if
+the column is used). Writers go through :class:`~.atomic_outputs.AtomicOutputs`.
 """
 
 from __future__ import annotations
 
 import csv
+import datetime as _dt
 import math
+from collections import Counter
 from pathlib import Path
-from typing import Dict, List, Sequence, Tuple
+from typing import Dict, List, NamedTuple, Optional, Sequence, Tuple
 
 from .atomic_outputs import AtomicOutputs
 from .errors import DataError
+
+_NS_PER = {"s": 1_000_000_000, "ms": 1_000_000, "us": 1_000, "ns": 1}
+_DIGITS = {"s": 0, "ms": 3, "us": 6, "ns": 9}
+_EPOCH = _dt.datetime(1970, 1, 1)
+# Instants that datetime can show (years 1 to 9999).
+_MIN_NS = (_dt.datetime(1, 1, 1) - _EPOCH) // _dt.timedelta(microseconds=1) * 1000
+_MAX_NS = (_dt.datetime(9999, 12, 31, 23, 59, 59) - _EPOCH) // _dt.timedelta(microseconds=1) * 1000
+
+
+class Instant(NamedTuple):
+    """A timestamp from a Parquet timestamp column, kept exactly.
+
+    ns: integer nanoseconds since 1970-01-01T00:00:00 (UTC when ``zone`` is
+        set; for a column without a time zone, the wall-clock time read as UTC).
+    unit: the column's resolution, "s", "ms", "us" or "ns" (kept when written back).
+    zone: the column's time zone name, None for a column without one.
+
+    ``str()`` gives ISO 8601 with the digits of the resolution, in UTC with a
+    ``Z`` when the column has a zone.
+    """
+
+    ns: int
+    unit: str = "ns"
+    zone: Optional[str] = None
+
+    def __str__(self) -> str:
+        seconds, frac = divmod(self.ns, 1_000_000_000)
+        text = (_EPOCH + _dt.timedelta(seconds=seconds)).isoformat(timespec="seconds")
+        digits = _DIGITS.get(self.unit, 9)
+        if digits:
+            text += "." + f"{frac:09d}"[:digits]
+        return text + ("Z" if self.zone else "")
+
+
+class Unreadable(NamedTuple):
+    """A cell of a Parquet column whose type cannot be turned into Python values."""
+
+    type: str
+    why: str
+
+
+def _check_names(path, names: Sequence[str]) -> None:
+    counts = Counter(names)  # one pass: headers may have hundreds of thousands of columns
+    dupes = sorted(h for h, k in counts.items() if k > 1)
+    if dupes:
+        shown = ", ".join(repr(h) for h in dupes[:20]) + (f", ... ({len(dupes)} in all)" if len(dupes) > 20 else "")
+        raise DataError(f"{path}: the header names these columns more than once: {shown}.")
+
+
+def _parquet_cells(column, pa) -> list:
+    """The cells of one Parquet column (see the module docstring)."""
+    typ = column.type
+    if pa.types.is_timestamp(typ):
+        factor = _NS_PER[typ.unit]
+        out = []
+        for v in column.cast(pa.int64()).to_pylist():
+            if v is None:
+                out.append(None)
+                continue
+            ns = v * factor
+            if not _MIN_NS <= ns <= _MAX_NS:
+                return [Unreadable(str(typ), "a timestamp outside the years 1 to 9999")] * len(column)
+            out.append(Instant(ns, typ.unit, typ.tz or None))
+        return out
+    try:
+        return column.to_pylist()
+    except (ValueError, TypeError, OverflowError, NotImplementedError, pa.ArrowException) as e:
+        return [Unreadable(str(typ), str(e).split("\n")[0][:200])] * len(column)
 
 
 def _format_of(path: Path) -> str:
@@ -55,8 +128,11 @@ def read_table(path) -> Tuple[List[str], Dict[str, list]]:
             table = pq.read_table(path)
         except Exception as e:  # pyarrow raises several unrelated types for bad files
             raise DataError(f"cannot read {path} as Parquet: {e}") from None
-        data = table.to_pydict()
-        return list(table.column_names), data
+        import pyarrow as pa
+
+        names = [str(n) for n in table.column_names]
+        _check_names(path, names)
+        return names, {n: _parquet_cells(c, pa) for n, c in zip(names, table.columns)}
     try:
         with open(path, newline="", encoding="utf-8-sig") as f:
             rows = list(csv.reader(f))
@@ -67,9 +143,7 @@ def read_table(path) -> Tuple[List[str], Dict[str, list]]:
     if not rows or not any(cell.strip() for cell in rows[0]):
         raise DataError(f"{path} is empty: a CSV file needs a header row naming its columns.")
     header = [h.strip() for h in rows[0]]
-    dupes = sorted({h for h in header if header.count(h) > 1})
-    if dupes:
-        raise DataError(f"{path}: the header names these columns more than once: {', '.join(dupes)}.")
+    _check_names(path, header)
     cols: Dict[str, list] = {h: [] for h in header}
     for lineno, row in enumerate(rows[1:], start=2):
         if not row or (len(row) == 1 and not row[0].strip()):
@@ -102,7 +176,18 @@ def write_table(path, names: Sequence[str], columns: Dict[str, Sequence], out: A
         def clean(v):
             return None if isinstance(v, float) and math.isnan(v) else v
 
-        arrays = {k: [clean(v) for v in columns[k]] for k in names}
+        def array(values):
+            instants = [v for v in values if v is not None]
+            if instants and all(isinstance(v, Instant) for v in instants):
+                first = instants[0]
+                if all(v.unit == first.unit and v.zone == first.zone for v in instants):
+                    factor = _NS_PER[first.unit]
+                    ints = pa.array([None if v is None else v.ns // factor for v in values], pa.int64())
+                    return ints.cast(pa.timestamp(first.unit, tz=first.zone))
+                return pa.array([None if v is None else str(v) for v in values], pa.string())
+            return [clean(v) for v in values]
+
+        arrays = {k: array(columns[k]) for k in names}
         tmp = out.temp_for(path)
         pq.write_table(pa.table(arrays), tmp)
         return
