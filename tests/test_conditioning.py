@@ -15,16 +15,13 @@ import os
 from decimal import Decimal, localcontext
 
 import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+from scipy import linalg as sla
 
-jax.config.update("jax_enable_x64", True)
-
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import pytest  # noqa: E402
-from scipy import linalg as sla  # noqa: E402
-
-import kalmax as kx  # noqa: E402
-from kalmax._src import checks, normal_equations  # noqa: E402  (internals, read only)
+import kalmax as kx
+from kalmax._src import checks, normal_equations  # internals, read only
 
 try:
     import reference as ref

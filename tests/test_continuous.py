@@ -14,16 +14,13 @@ References used below:
 """
 
 import jax
+import jax.numpy as jnp
+import numpy as np
+import optax
+import pytest
+from scipy import integrate, linalg
 
-jax.config.update("jax_enable_x64", True)
-
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import optax  # noqa: E402
-import pytest  # noqa: E402
-from scipy import integrate, linalg  # noqa: E402
-
-import kalmax as kx  # noqa: E402
+import kalmax as kx
 
 
 def _cv_closed_form(q, d):
@@ -135,6 +132,33 @@ def test_traced_drift_equals_concrete_drift():
         np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-14)
 
 
+@pytest.mark.parametrize("builder", ["random_walk", "constant_velocity", "constant_acceleration", "local_linear_trend"])
+def test_nilpotent_closed_form_equals_the_series_route(builder, rng):
+    # A concrete nilpotent drift takes the polynomial closed form; the same drift
+    # passed traced takes the Taylor-series-and-doubling route of [VL]. Two
+    # different computations: values and gradients (w.r.t. G and the steps) agree.
+    cm = getattr(kx, builder)(q=0.7) if builder != "local_linear_trend" else kx.local_linear_trend(0.3, 0.05)
+    F = np.asarray(cm.drift)
+    dts = np.array([1e-3, 0.37, 2.0, 45.0, 900.0])
+    # Weights scaled by the size of each step's Q (Δ^(2o−1) grows to 1e15) so that every step counts.
+    W = rng.normal(size=(len(dts),) + F.shape) / (1.0 + dts[:, None, None] ** (2 * F.shape[0] - 1))
+
+    def loss(G, d, traced):
+        A, Q = kx.discretize(traced if traced is not None else F, G, d)
+        return jnp.sum(W * Q) + jnp.sum(W * A)
+
+    closed = jax.value_and_grad(lambda G, d: loss(G, d, None), argnums=(0, 1))(cm.diffusion, dts)
+    series = jax.jit(jax.value_and_grad(loss, argnums=(0, 1)))(cm.diffusion, dts, jnp.asarray(F))
+    np.testing.assert_allclose(closed[0], series[0], rtol=1e-10)
+    for a, b in zip(closed[1], series[1]):
+        np.testing.assert_allclose(a, b, rtol=1e-8, atol=1e-10 * np.max(np.abs(b)))
+    A, Q = kx.discretize(F, cm.diffusion, dts)
+    ref = [_ode_reference(F, np.asarray(cm.diffusion), d) for d in dts[:3]]
+    for k, (Ar, Qr) in enumerate(ref):
+        np.testing.assert_allclose(A[k], Ar, rtol=1e-12, atol=1e-14)
+        np.testing.assert_allclose(Q[k], Qr, rtol=1e-7, atol=1e-12)
+
+
 def test_gradients_match_finite_differences(rng):
     dts = np.array([0.3, 2.0, 40.0])
     W = rng.normal(size=(3, 2, 2))
@@ -215,3 +239,31 @@ def test_round_trip_recovers_continuous_parameters(rng):
     print(f"recovered q {q_hat:.4g} (true {q_true}), r {r_hat:.4g} (true {r_true}), steps {result.steps_run}")
     assert abs(np.log(q_hat / q_true)) < np.log(1.5), q_hat
     assert abs(np.log(r_hat / r_true)) < np.log(1.25), r_hat
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_huge_steps_of_a_stable_drift_reach_the_stationary_answer(dtype):
+    # For a stable drift, A = exp(FΔ) → 0 and Q → the stationary covariance P_inf,
+    # the solution of F P + P Fᵀ + G = 0 (SciPy's Lyapunov solver, independent of
+    # the doubling route). The steps go up to the largest the dtype holds.
+    cm = kx.damped_oscillator(frequency=0.3, damping=0.2, q=1.5)
+    F, G = np.asarray(cm.drift, np.float64), np.asarray(cm.diffusion, np.float64)
+    P_inf = linalg.solve_continuous_lyapunov(F, -G)
+    big = [1e6, 1e12, 1e20, 1e30] + ([1e300] if dtype == np.float64 else [3e38])
+    A, Q = kx.discretize(F.astype(dtype), G.astype(dtype), np.array(big, dtype))
+    tol = 1e-9 if dtype == np.float64 else 1e-4
+    assert np.all(np.isfinite(np.asarray(A))) and np.all(np.isfinite(np.asarray(Q)))
+    np.testing.assert_array_equal(np.asarray(A), 0.0)
+    for k in range(len(big)):
+        np.testing.assert_allclose(Q[k], P_inf, rtol=tol, atol=tol * np.max(np.abs(P_inf)))
+
+
+def test_traced_drift_beyond_the_doubling_cap_is_nan_not_wrong():
+    cm = kx.damped_oscillator(frequency=0.3, damping=0.2, q=1.5)
+    dts = np.array([1.0, 1e12])
+    A, Q = jax.jit(lambda F, G: kx.discretize(F, G, dts))(cm.drift, cm.diffusion)
+    assert np.all(np.isfinite(np.asarray(A[0]))) and np.all(np.isnan(np.asarray(A[1])))
+    assert np.all(np.isnan(np.asarray(Q[1])))
+    A_ok, Q_ok = kx.discretize(cm.drift, cm.diffusion, dts)  # concrete drift: exact at both
+    np.testing.assert_allclose(A[0], A_ok[0], rtol=1e-12)
+    assert np.all(np.isfinite(np.asarray(Q_ok)))

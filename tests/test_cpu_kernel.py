@@ -21,16 +21,14 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
-jax.config.update("jax_enable_x64", True)
+import kalmax as kx
+from kalmax._src import blocktri
+from kalmax._src.backends import cpu as cpu_backend, registry
+from kalmax._src.backends.scan import SCAN
+from kalmax._src.checks import canonicalize
 
-import kalmax as kx  # noqa: E402
-from kalmax._src import blocktri  # noqa: E402
-from kalmax._src.backends import cpu as cpu_backend, registry  # noqa: E402
-from kalmax._src.backends.scan import SCAN  # noqa: E402
-from kalmax._src.checks import canonicalize  # noqa: E402
-
-from helpers import to_model  # noqa: E402
-from reference import random_data, random_model, rts_smoother  # noqa: E402
+from helpers import to_model
+from reference import random_data, random_model, rts_smoother
 
 pytestmark = pytest.mark.skipif(
     bool(os.environ.get("KALMAX_NO_KERNEL")), reason="kernel build disabled by KALMAX_NO_KERNEL"

@@ -1,13 +1,9 @@
 """The built-in demo (`make demo`): deterministic invented data, a fit that helps, all outputs written."""
 
-import jax
+import numpy as np
 
-jax.config.update("jax_enable_x64", True)
-
-import numpy as np  # noqa: E402
-
-import kalmax as kx  # noqa: E402
-from kalmax import demo  # noqa: E402
+import kalmax as kx
+from kalmax import demo
 
 
 def test_scenario_is_deterministic_and_irregular():

@@ -13,23 +13,15 @@ Independent checks:
   39(1), Theorem 1), with a prior and with a flat (diffuse) prior.
 """
 
-import os
-import sys
+import jax.numpy as jnp
+import numpy as np
+import pytest
 
-import jax
+import kalmax as kx
+from kalmax._src.em import m_step
 
-jax.config.update("jax_enable_x64", True)
-
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import pytest  # noqa: E402
-
-import kalmax as kx  # noqa: E402
-from kalmax._src.em import m_step  # noqa: E402
-
-sys.path.insert(0, os.path.dirname(__file__))
-import reference as ref  # noqa: E402
-from helpers import to_dict, to_model  # noqa: E402
+import reference as ref
+from helpers import to_dict, to_model
 
 
 def _monotone(ll):

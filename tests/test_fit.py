@@ -1,22 +1,15 @@
 """The fitting loop and standard errors (kalmax/_src/fitting.py)."""
 
-import os
-import sys
-
 import jax
+import jax.numpy as jnp
+import numpy as np
+import optax
+import pytest
+from scipy import optimize
 
-jax.config.update("jax_enable_x64", True)
+import kalmax as kx
 
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import optax  # noqa: E402
-import pytest  # noqa: E402
-from scipy import optimize  # noqa: E402
-
-import kalmax as kx  # noqa: E402
-
-sys.path.insert(0, os.path.dirname(__file__))
-import reference as ref  # noqa: E402
+import reference as ref
 
 
 def _quadratic(target):

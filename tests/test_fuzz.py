@@ -19,16 +19,13 @@ import subprocess
 import sys
 
 import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
-jax.config.update("jax_enable_x64", True)
-
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import pytest  # noqa: E402
-from hypothesis import HealthCheck, given, settings  # noqa: E402
-from hypothesis import strategies as st  # noqa: E402
-
-import kalmax as kx  # noqa: E402
+import kalmax as kx
 
 SCALE = max(1, int(os.environ.get("KALMAX_PROPERTY_SCALE", "1")))
 BOUNDED = dict(deadline=None, derandomize=True, database=None,

@@ -8,14 +8,11 @@ differences (float64), so "finite" never hides "wrong".
 """
 
 import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
 
-jax.config.update("jax_enable_x64", True)
-
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import pytest  # noqa: E402
-
-import kalmax as kx  # noqa: E402
+import kalmax as kx
 
 try:
     import robust_helpers as rh

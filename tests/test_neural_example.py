@@ -13,8 +13,6 @@ from pathlib import Path
 
 import jax
 
-jax.config.update("jax_enable_x64", True)
-
 _PATH = Path(__file__).resolve().parents[1] / "examples" / "neural_tracking.py"
 
 

@@ -19,21 +19,13 @@ fixes the initial level). Checked below against a NumPy Kalman filter started
 exactly from x_1 | y_1.
 """
 
-import os
-import sys
+import jax.numpy as jnp
+import numpy as np
+import optax
 
-import jax
+import kalmax as kx
 
-jax.config.update("jax_enable_x64", True)
-
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import optax  # noqa: E402
-
-import kalmax as kx  # noqa: E402
-
-sys.path.insert(0, os.path.dirname(__file__))
-import reference as ref  # noqa: E402
+import reference as ref
 
 PUBLISHED_OBS_VAR = 15099.0  # σ²_ε, Durbin & Koopman (2012) §2.10
 PUBLISHED_LEVEL_VAR = 1469.1  # σ²_η, Durbin & Koopman (2012) §2.10

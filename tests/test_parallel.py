@@ -10,20 +10,17 @@ joint-Gaussian log-likelihood, central finite differences, and the sequential
 """
 
 import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
 
-jax.config.update("jax_enable_x64", True)
-
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import pytest  # noqa: E402
-
-import kalmax as kx  # noqa: E402
-import reference as ref  # noqa: E402
-from helpers import to_model  # noqa: E402
-from kalmax._src import blocktri  # noqa: E402
-from kalmax._src.backends import cyclic_reduction as parallel, recompute, registry  # noqa: E402
-from kalmax._src.backends.base import Backend  # noqa: E402
-from kalmax._src.normal_equations import assemble  # noqa: E402
+import kalmax as kx
+import reference as ref
+from helpers import to_model
+from kalmax._src import blocktri
+from kalmax._src.backends import cyclic_reduction as parallel, recompute, registry
+from kalmax._src.backends.base import Backend
+from kalmax._src.normal_equations import assemble
 
 N, P = 3, 2
 T0 = 7  # odd: a padding block at the first level (7 -> 4 -> 2 -> 1)

@@ -1,14 +1,11 @@
 """Parameterisations (kalmax/_src/params.py): validity, invertibility, fixed entries, bounds."""
 
 import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
 
-jax.config.update("jax_enable_x64", True)
-
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import pytest  # noqa: E402
-
-import kalmax as kx  # noqa: E402
+import kalmax as kx
 
 
 def _spd(rng, k, lead=()):

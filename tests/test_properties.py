@@ -21,16 +21,13 @@ dominates the run time. Counts of cases run are printed (pytest -s).
 import os
 
 import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
-jax.config.update("jax_enable_x64", True)
-
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import pytest  # noqa: E402
-from hypothesis import HealthCheck, given, settings  # noqa: E402
-from hypothesis import strategies as st  # noqa: E402
-
-import kalmax as kx  # noqa: E402
+import kalmax as kx
 
 try:
     import robust_helpers as rh

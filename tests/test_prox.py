@@ -9,16 +9,13 @@ thresholding), §6.2 (projections) -- section numbers from memory.
 """
 
 import jax
+import jax.numpy as jnp
+import numpy as np
+import optax
+import pytest
+from scipy import optimize
 
-jax.config.update("jax_enable_x64", True)
-
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import optax  # noqa: E402
-import pytest  # noqa: E402
-from scipy import optimize  # noqa: E402
-
-import kalmax as kx  # noqa: E402
+import kalmax as kx
 
 ETA, LAM = 0.3, 1.7
 

@@ -12,14 +12,11 @@ import subprocess
 import sys
 
 import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
 
-jax.config.update("jax_enable_x64", True)
-
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import pytest  # noqa: E402
-
-import kalmax as kx  # noqa: E402
+import kalmax as kx
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 TOL = 1e-10

@@ -1,20 +1,13 @@
 """Held-out masks and pooled prediction error (kalmax/_src/splits.py)."""
 
-import os
-import sys
-
 import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
 
-jax.config.update("jax_enable_x64", True)
+import kalmax as kx
 
-import jax.numpy as jnp  # noqa: E402
-import numpy as np  # noqa: E402
-import pytest  # noqa: E402
-
-import kalmax as kx  # noqa: E402
-
-sys.path.insert(0, os.path.dirname(__file__))
-import reference as ref  # noqa: E402
+import reference as ref
 
 
 def _mask(rng, T=40, p=3, missing=0.25):

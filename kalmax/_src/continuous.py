@@ -27,6 +27,21 @@ the pieces are joined by s doublings
 which follow from running the recursion for two steps of length h. Both
 formulas are exact, so the result is too (up to rounding), and every operation
 is differentiable: ``jax.grad`` flows to F, G and the timestamps.
+
+Nilpotent drifts (the integrator chains: random walk, constant velocity and
+acceleration, the local linear trend) have a closed form that costs a few
+multiply-adds per step instead of the block exponential. If F^o = 0, both
+exponential series stop after o terms, e^{Fs} = Σ_{j<o} s^j F^j/j!, and
+
+    A(h) = Σ_{j<o} h^j F^j/j!,
+    Q(h) = ∫_0^h e^{Fs} G e^{Fᵀs} ds = Σ_{m=0}^{2o−2} h^{m+1}/(m+1) · S_m,
+    S_m = Σ_{j+l=m} (F^j/j!) G (F^l/l!)ᵀ,
+
+a polynomial in h with matrix coefficients: exact for every step length, no
+splitting needed, and G (traced, fitted) enters only through the 2o−1 small
+matrices S_m. It is used when F is known while tracing (the builders keep it
+a NumPy array) and F^n = 0 holds exactly; at T = 10⁶ it made the likelihood
+gradient of a fitted random walk several times faster than the series.
 """
 
 from __future__ import annotations
@@ -43,8 +58,12 @@ from .model import StateSpace
 Array = Any
 
 # Cap on the doublings when the drift is only known at run time (traced): enough
-# for ‖F‖Δ up to 2^30, far beyond any time range of interest.
+# for ‖F‖Δ up to 2^30. The loop has this static length, so the cap is a cost
+# paid on every call; steps beyond it come back NaN (never a wrong number).
 _MAX_DOUBLINGS = 30
+# With a concrete drift and concrete steps the loop is as long as the longest
+# step needs; 1100 doublings cover every ‖F‖Δ a float64 can hold (2^1024).
+_MAX_DOUBLINGS_CONCRETE = 1100
 
 
 def _taylor_terms(dtype) -> int:
@@ -97,12 +116,40 @@ def _doublings(F, dts, F_np, dts_np):
     parameters, so they carry no gradient.
     """
     if F_np is not None and dts_np is not None:
-        ratio = _norm1inf(F_np.astype(np.float64), np) * np.abs(dts_np.astype(np.float64))
-        counts = np.clip(np.ceil(np.log2(np.maximum(ratio, 1.0))), 0, _MAX_DOUBLINGS).astype(np.int32)
+        with np.errstate(over="ignore"):
+            ratio = _norm1inf(F_np.astype(np.float64), np) * np.abs(dts_np.astype(np.float64))
+            counts = np.clip(np.ceil(np.log2(np.maximum(ratio, 1.0))), 0, _MAX_DOUBLINGS_CONCRETE).astype(np.int32)
         return jnp.asarray(counts), int(counts.max()) if counts.size else 0
     ratio = jax.lax.stop_gradient(_norm1inf(F, jnp) * jnp.abs(dts))
     counts = jnp.clip(jnp.ceil(jnp.log2(jnp.maximum(ratio, 1.0))), 0, _MAX_DOUBLINGS).astype(jnp.int32)
     return counts, _MAX_DOUBLINGS
+
+
+def _nilpotent_powers(F_np):
+    """[F^j/j! for j < o] (float64 NumPy) if F^o = 0 for some o ≤ n exactly, else None."""
+    F = np.asarray(F_np, dtype=np.float64)
+    n = F.shape[0]
+    powers = [np.eye(n)]
+    for j in range(1, n + 1):
+        nxt = powers[-1] @ F / j
+        if not np.any(nxt):
+            return powers
+        powers.append(nxt)
+    return None
+
+
+def _polynomial(powers, G, h):
+    """(A, Q) for steps h (K,) of a nilpotent drift (module docstring: the closed form)."""
+    dtype = G.dtype
+    o = len(powers)
+    P = jnp.asarray(np.stack(powers), dtype)  # (o, n, n)
+    hp = h[:, None] ** jnp.arange(2 * o, dtype=dtype)  # h^0 .. h^(2o-1)
+    A = jnp.einsum("kj,jab->kab", hp[:, :o], P)
+    PG = jnp.einsum("jab,bc->jac", P, G)  # (F^j/j!) G
+    S = [sum(PG[j] @ P[m - j].T for j in range(max(0, m - o + 1), min(m, o - 1) + 1)) for m in range(2 * o - 1)]
+    weights = hp[:, 1:] / jnp.arange(1, 2 * o, dtype=dtype)  # h^(m+1)/(m+1), m = 0..2o-2
+    Q = jnp.einsum("km,mab->kab", weights, jnp.stack(S))
+    return A, Q
 
 
 def discretize(drift, diffusion, dt, *, jitter=0.0):
@@ -151,8 +198,16 @@ def discretize(drift, diffusion, dt, *, jitter=0.0):
     scalar = dt.ndim == 0
     dts = jnp.atleast_1d(dt)
     G = 0.5 * (G + G.T)
+    powers = None if F_np is None else _nilpotent_powers(F_np)
+    if powers is not None:
+        A, Q = _polynomial(powers, G, dts)
+        Q = 0.5 * (Q + jnp.swapaxes(Q, -1, -2)) + jitter * jnp.eye(n, dtype=dtype)
+        return (A[0], Q[0]) if scalar else (A, Q)
     counts, loop = _doublings(F, dts, F_np, None if dt_np is None else np.atleast_1d(dt_np))
-    h = dts / jnp.exp2(counts.astype(dtype))
+    # h = Δ / 2^s in two halves: 2^s alone overflows (float32 beyond s = 127) for
+    # the longest steps, and a power of two scales exactly.
+    half = counts // 2
+    h = dts * jnp.exp2(-half.astype(dtype)) * jnp.exp2(-(counts - half).astype(dtype))
     A, Q = _van_loan(F, G, h, _taylor_terms(dtype))
     # Join the 2^s pieces: x(t+2h) = A(h)[A(h) x + w1] + w2 gives
     # A(2h) = A(h)², Q(2h) = A(h) Q(h) A(h)ᵀ + Q(h).
@@ -166,6 +221,12 @@ def discretize(drift, diffusion, dt, *, jitter=0.0):
     # A rolled loop with a static trip count: reverse-differentiable, and it
     # compiles in a fraction of the time of an unrolled one at the 30-step cap.
     A, Q = jax.lax.fori_loop(0, loop, double, (A, Q))
+    # A step that needed more doublings than the loop ran (a traced drift past the
+    # cap, or a step of inf) has no exact answer here: NaN, not a wrong number.
+    short = (counts >= loop) & (jnp.abs(dts) * jax.lax.stop_gradient(_norm1inf(F, jnp)) > jnp.exp2(
+        jnp.asarray(loop, dtype))) | ~jnp.isfinite(dts)
+    A = jnp.where(short[:, None, None], jnp.nan, A)
+    Q = jnp.where(short[:, None, None], jnp.nan, Q)
     Q = 0.5 * (Q + jnp.swapaxes(Q, -1, -2))
     Q = Q + jitter * jnp.eye(n, dtype=dtype)
     if scalar:
@@ -313,8 +374,8 @@ def random_walk(dims: int = 1, q=1.0, r=1.0, *, measured=None, jitter=0.0) -> Co
         jitter: see :class:`ContinuousModel`.
 
     Example:
-        >>> kx.random_walk(q=0.1, r=1.0).at_times(jnp.array([0.0, 2.0])).Q  # doctest: +SKIP
-        Array([[[0.2]]], dtype=float32)
+        >>> print(kx.random_walk(q=0.1, r=1.0).at_times(jnp.array([0.0, 2.0])).Q)
+        [[[0.2]]]
     """
     return _integrator_chain(1, dims, q, r, measured, jitter, "q")
 
@@ -378,8 +439,8 @@ def local_linear_trend(q_level=1.0, q_slope=1.0, r=1.0, *, measured=None, jitter
         measured: state indices measured (default: the level, index 0).
 
     Example:
-        >>> kx.local_linear_trend(0.1, 0.01, 1.0).C
-        Array([[1., 0.]], dtype=float32)
+        >>> print(kx.local_linear_trend(0.1, 0.01, 1.0).C)
+        [[1. 0.]]
     """
     dtype = _dtype(q_level, q_slope, r)
     F = np.asarray([[0.0, 1.0], [0.0, 0.0]], dtype)

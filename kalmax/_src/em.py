@@ -242,8 +242,13 @@ def em(
         (``history[-1]`` belongs to the returned model).
 
     Example:
-        >>> fitted, ll = kx.em(start, y, iterations=200, fixed=("A", "C"))  # doctest: +SKIP
-        >>> assert np.all(np.diff(ll) >= -1e-8 * abs(ll[-1]))  # doctest: +SKIP
+        >>> rng = np.random.default_rng(0)
+        >>> y = np.cumsum(rng.normal(size=(50, 1)), axis=0) + rng.normal(size=(50, 1))
+        >>> start = kx.StateSpace(A=jnp.eye(1), C=jnp.eye(1), Q=0.5 * jnp.eye(1), R=0.5 * jnp.eye(1))
+        >>> fitted, ll = kx.em(start, y, iterations=20, fixed=("A", "C"))
+        >>> ll.shape  # the starting model and 20 iterates
+        (21,)
+        >>> assert np.all(np.diff(ll) >= -1e-8 * abs(ll[-1]))
     """
     model, y, mask, dims, dtype = canonicalize(model, y, mask)
     names = _resolve_fields(model, fields, fixed)

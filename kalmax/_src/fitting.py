@@ -170,10 +170,19 @@ def fit(
         last params whose loss was finite (``stop_reason="non-finite"``).
 
     Example:
-        >>> spec = kx.Parameterization(nominal, Q=kx.DiagonalCov(), R=kx.DiagonalCov())  # doctest: +SKIP
-        >>> loss = lambda p: kx.prediction_error(spec.model(p), y, mask, hold)  # doctest: +SKIP
-        >>> result = kx.fit(loss, spec.init(), optax.adam(0.05), steps=300)  # doctest: +SKIP
-        >>> fitted = spec.model(result.params)  # doctest: +SKIP
+        >>> import optax
+        >>> rng = np.random.default_rng(0)
+        >>> y = jnp.asarray(np.cumsum(rng.normal(size=(40, 1)), axis=0) + rng.normal(size=(40, 1)))
+        >>> mask = jnp.ones(y.shape, bool)
+        >>> hold = kx.holdout_entries(mask, 0.2, seed=0)
+        >>> nominal = kx.StateSpace(A=jnp.eye(1), C=jnp.eye(1), Q=jnp.eye(1), R=jnp.eye(1))
+        >>> spec = kx.Parameterization(nominal, Q=kx.DiagonalCov(), R=kx.DiagonalCov())
+        >>> loss = lambda p, y, mask, hold: kx.prediction_error(spec.model(p), y, mask, hold)
+        >>> result = kx.fit(loss, spec.init(), optax.adam(0.05), steps=50, progress=False,
+        ...                 args=(y, mask, hold))
+        >>> result.stop_reason, result.steps_run
+        ('steps', 50)
+        >>> fitted = spec.model(result.params)
     """
     if int(steps) < 0:
         raise ValueError(f"steps must be >= 0; got {steps}.")
@@ -318,8 +327,16 @@ def standard_errors(neg_log_lik_fn: Callable, params, *, of: Optional[Callable] 
         NaN everywhere when the information is not positive definite.
 
     Example:
-        >>> nll = lambda p: -kx.log_likelihood(spec.model(p), y)  # doctest: +SKIP
-        >>> se_Q = kx.standard_errors(nll, fitted, of=lambda p: spec.model(p).Q)  # doctest: +SKIP
+        >>> rng = np.random.default_rng(0)
+        >>> y = np.cumsum(rng.normal(size=(60, 1)), axis=0) + rng.normal(size=(60, 1))
+        >>> nominal = kx.StateSpace(A=jnp.eye(1), C=jnp.eye(1), Q=jnp.eye(1), R=jnp.eye(1))
+        >>> spec = kx.Parameterization(nominal, Q=kx.DiagonalCov(), R=kx.DiagonalCov())
+        >>> mle, _ = kx.em(nominal, y, iterations=50, fixed=("A", "C"))
+        >>> fitted = spec.unconstrained(mle)
+        >>> nll = lambda p: -kx.log_likelihood(spec.model(p), y)
+        >>> se_Q = kx.standard_errors(nll, fitted, of=lambda p: spec.model(p).Q)
+        >>> print(mle.Q.round(3), se_Q.round(3))
+        [[1.367]] [[0.524]]
     """
     cov, unravel = parameter_covariance(neg_log_lik_fn, params, method=method, eps=eps)
     if of is None:

@@ -30,6 +30,7 @@ Gradient, from the same factor and no tape through the recursion:
 
 from __future__ import annotations
 
+import functools
 import math
 from functools import partial
 
@@ -75,6 +76,7 @@ def _portable_value_and_grad(model, y, w):
     return val, model_bar, y_bar
 
 
+@functools.lru_cache(maxsize=None)  # one wrapper per backend, not one per trace
 def _fused(backend):
     """backend.log_likelihood, given the portable route's derivatives for second-order AD.
 

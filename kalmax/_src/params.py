@@ -238,9 +238,18 @@ class Parameterization:
         >>> import jax.numpy as jnp, kalmax as kx
         >>> nominal = kx.StateSpace(A=jnp.eye(2), C=jnp.eye(2), Q=0.1 * jnp.eye(2), R=jnp.eye(2))
         >>> spec = kx.Parameterization(nominal, Q=kx.DiagonalCov(), R=kx.CholeskyCov())
-        >>> params = spec.init()            # {'Q': (2,), 'R': (3,)}
+        >>> params = spec.init()
+        >>> {name: value.shape for name, value in params.items()}
+        {'Q': (2,), 'R': (3,)}
         >>> model = spec.model(params)      # equals nominal
-        >>> loss = lambda p: kx.prediction_error(spec.model(p), y, mask, hold)  # doctest: +SKIP
+        >>> bool(jnp.allclose(model.Q, nominal.Q) and jnp.allclose(model.R, nominal.R))
+        True
+        >>> y = jnp.asarray(np.random.default_rng(0).normal(size=(6, 2)))
+        >>> mask = jnp.ones((6, 2), bool)
+        >>> hold = kx.holdout_entries(mask, 0.25, seed=0)
+        >>> loss = lambda p: kx.prediction_error(spec.model(p), y, mask, hold)
+        >>> sorted(jax.grad(loss)(params))
+        ['Q', 'R']
     """
 
     def __init__(self, nominal: StateSpace, **transforms):

@@ -146,7 +146,15 @@ def prox_ridge(strength: float, step_size: Schedule, center=None) -> optax.Gradi
             scalar; default 0.
 
     Example:
-        >>> opt = optax.chain(optax.sgd(0.1), kx.prox_ridge(1.0, 0.1, center=nominal_params))  # doctest: +SKIP
+        >>> import optax
+        >>> params = {"log_q": jnp.array([1.0, -2.0])}
+        >>> nominal_params = {"log_q": jnp.zeros(2)}
+        >>> opt = optax.chain(optax.sgd(0.1), kx.prox_ridge(1.0, 0.1, center=nominal_params))
+        >>> state = opt.init(params)
+        >>> zero_grads = {"log_q": jnp.zeros(2)}
+        >>> updates, state = opt.update(zero_grads, state, params)
+        >>> print(optax.apply_updates(params, updates)["log_q"].round(4))  # shrunk by 1 / (1 + 0.1)
+        [ 0.9091 -1.8182]
     """
 
     def apply(v, params, eta):

@@ -193,9 +193,19 @@ def data_parallel(loss_fn: Callable, batch, mesh: Optional[Mesh] = None, axis_na
         params -> scalar.
 
     Example:
+        >>> import optax
+        >>> nominal = kx.StateSpace(A=jnp.eye(1), C=jnp.eye(1), Q=jnp.eye(1), R=jnp.eye(1))
+        >>> spec = kx.Parameterization(nominal, Q=kx.DiagonalCov(), R=kx.DiagonalCov())
+        >>> y, mask = kx.pad_series([np.sin(np.arange(8.0))[:, None], np.cos(np.arange(6.0))[:, None]])
+        >>> hold = np.zeros_like(mask)
+        >>> hold[:, 3] = True
+        >>> (y, mask, hold), valid = kx.pad_batch((y, mask, hold), len(jax.devices()))
+        >>> hold = hold & valid[:, None, None]  # copies added as padding are not scored
         >>> f = kx.data_parallel(lambda p, b: kx.batch_prediction_error(spec.model(p), *b),
-        ...                      (y, mask, hold))  # doctest: +SKIP
-        >>> kx.fit(f, spec.init(), optax.adam(0.05))  # doctest: +SKIP
+        ...                      (y, mask, hold))
+        >>> result = kx.fit(f, spec.init(), optax.adam(0.05), steps=20, progress=False)
+        >>> bool(result.history["loss"][-1] < result.history["loss"][0])
+        True
     """
     mesh = _mesh(mesh, axis_name)
     sharded = shard_batch(batch, mesh, axis_name)

@@ -130,8 +130,16 @@ def prediction_error(model: StateSpace, y, mask, holdout, *, method: str = "auto
         scalar mean squared error, differentiable in ``model`` and ``y``.
 
     Example:
-        >>> loss = lambda m: kx.prediction_error(m, y, mask, holdout)  # doctest: +SKIP
-        >>> grads = jax.grad(loss)(model)  # doctest: +SKIP
+        >>> model = kx.StateSpace(A=jnp.eye(1), C=jnp.eye(1), Q=0.1 * jnp.eye(1), R=jnp.eye(1))
+        >>> y = jnp.array([[1.0], [1.2], [0.9], [1.4], [1.1]])
+        >>> mask = jnp.ones((5, 1), bool)
+        >>> holdout = jnp.zeros((5, 1), bool).at[2].set(True)  # score step 2 only
+        >>> loss = lambda m: kx.prediction_error(m, y, mask, holdout)
+        >>> print(f"{loss(model):.4f}")
+        0.0789
+        >>> grads = jax.grad(loss)(model)  # a StateSpace of gradients
+        >>> grads.Q.shape
+        (1, 1)
     """
     sse, count = holdout_sums(model, y, mask, holdout, method=method)
     return sse / count

@@ -114,8 +114,8 @@ def holdout_blocks(mask, block_length: int, fraction: float, seed):
         (T, p) bool held-out mask (a subset of ``mask``).
 
     Example:
-        >>> hold = kx.holdout_blocks(jnp.ones((100, 1), bool), 10, 0.3, seed=1)  # doctest: +SKIP
-        >>> int(hold.sum())  # three blocks of ten steps  # doctest: +SKIP
+        >>> hold = kx.holdout_blocks(jnp.ones((100, 1), bool), 10, 0.3, seed=1)
+        >>> int(hold.sum())  # three blocks of ten steps
         30
     """
     mask = _check_mask(mask)
@@ -146,8 +146,15 @@ def holdout_folds(mask, folds: int, seed, *, block_length=None):
         masks are disjoint and their union is ``mask``.
 
     Example:
-        >>> holds = kx.holdout_folds(mask, 5, seed=0)  # doctest: +SKIP
-        >>> cv = sum(kx.prediction_error(model, y, mask, h) for h in holds) / 5  # doctest: +SKIP
+        >>> mask = jnp.ones((20, 1), bool)
+        >>> holds = kx.holdout_folds(mask, 5, seed=0)
+        >>> holds.shape, int(holds.sum())
+        ((5, 20, 1), 20)
+        >>> model = kx.StateSpace(A=jnp.eye(1), C=jnp.eye(1), Q=0.1 * jnp.eye(1), R=0.1 * jnp.eye(1))
+        >>> y = jnp.asarray(np.sin(np.arange(20.0))[:, None])
+        >>> cv = sum(kx.prediction_error(model, y, mask, h) for h in holds) / 5
+        >>> print(f"{cv:.3f}")
+        0.395
     """
     mask = _check_mask(mask)
     if int(folds) < 2:
@@ -228,10 +235,13 @@ def batch_prediction_error(model: StateSpace, y, mask, holdout, *, method: str =
         scalar, differentiable in ``model``.
 
     Example:
-        >>> y, mask = kx.pad_series(trajectories)  # doctest: +SKIP
+        >>> trajectories = [np.sin(np.arange(12.0))[:, None], np.cos(np.arange(8.0))[:, None]]
+        >>> y, mask = kx.pad_series(trajectories)
         >>> hold = jax.vmap(lambda m, k: kx.holdout_entries(m, 0.2, k))(
-        ...     mask, jax.random.split(jax.random.key(0), len(trajectories)))  # doctest: +SKIP
-        >>> kx.batch_prediction_error(model, y, mask, hold)  # doctest: +SKIP
+        ...     mask, jax.random.split(jax.random.key(0), len(trajectories)))
+        >>> model = kx.StateSpace(A=jnp.eye(1), C=jnp.eye(1), Q=0.1 * jnp.eye(1), R=0.1 * jnp.eye(1))
+        >>> print(f"{kx.batch_prediction_error(model, y, mask, hold):.3f}")
+        0.622
     """
     y = jnp.asarray(y)
     if y.ndim != 3:

@@ -150,7 +150,13 @@ def validate(model: StateSpace, y, mask=None, *, rtol: float = 1e-6,
             conditioning check (it costs one factorisation and a few solves).
 
     Example:
-        >>> kx.validate(model, y, mask)  # doctest: +SKIP
+        >>> model = kx.StateSpace(A=jnp.eye(1), C=jnp.eye(1), Q=jnp.eye(1), R=jnp.eye(1))
+        >>> kx.validate(model, jnp.array([[0.3], [jnp.nan], [1.2]]))  # no output: no problem found
+        >>> kx.validate(model.replace(R=-jnp.eye(1)), jnp.zeros((3, 1)))
+        Traceback (most recent call last):
+            ...
+        ValueError: invalid smoothing problem:
+          - model.R is not positive definite: smallest eigenvalue -1.
     """
     if _is_traced((model, y, mask)):
         raise TypeError(

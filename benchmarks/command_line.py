@@ -1,0 +1,103 @@
+"""The command line at scale: `python benchmarks/command_line.py [--rows N] [--steps K] [--models ...]`.
+
+Invented data (simulated here, seeded): irregular timestamps with steps
+uniform in [0.5, 1.5], 10 % of the cells missing;
+  random-walk         one column, level diffusion q = 0.2 per unit time, noise sd 0.5;
+  constant-velocity   two columns (east, north), velocity diffusion 0.01, noise sd 0.5.
+
+Each model is fitted twice by `python -m kalmax fit` in a fresh process with
+an empty compilation cache folder: the first run compiles everything, the
+second finds the compiled programs on disk. Reported per run: wall time, the
+fitting time (the progress line of the last step, which counts from the
+start of the fit, compilation of the step included), the time to the first
+step (mostly compilation), and the CPU time of the child process (user +
+system; on a shared machine the wall time can be much longer than this).
+
+Writes benchmarks/command_line_results.json.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import re
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+
+
+def write_data(folder: Path, model: str, rows: int) -> Path:
+    rng = np.random.default_rng(1)
+    t = np.cumsum(rng.uniform(0.5, 1.5, rows))
+    t -= t[0]
+    path = folder / f"{model}.csv"
+    if model == "random-walk":
+        y = np.cumsum(rng.normal(0, np.sqrt(0.2), rows))[:, None] + rng.normal(0, 0.5, (rows, 1))
+        header = "t,y"
+    else:
+        v = np.cumsum(rng.normal(0, 0.1, (rows, 2)), axis=0)
+        y = np.cumsum(v, axis=0) + rng.normal(0, 0.5, (rows, 2))
+        header = "t,east,north"
+    y[rng.random(y.shape) < 0.1] = np.nan
+    with open(path, "w") as f:
+        f.write(header + "\n")
+        for k in range(rows):
+            cells = ["" if np.isnan(v) else f"{v:.6f}" for v in y[k]]
+            f.write(f"{t[k]:.6f}," + ",".join(cells) + "\n")
+    return path
+
+
+def run_fit(data: Path, model: str, steps: int, cache: Path) -> dict:
+    measures = ["--measure", "y"] if model == "random-walk" else ["--measure", "east", "--measure", "north"]
+    dims = [] if model == "random-walk" else ["--dims", "2"]
+    cmd = [sys.executable, "-m", "kalmax", "fit", str(data), "--time", "t", "--model", model, *dims, *measures,
+           "--steps", str(steps), "--no-report", "-o", str(data.with_suffix(".out.csv")),
+           "--model-file", str(data.with_suffix(".model.json"))]
+    env = dict(os.environ, KALMAX_CACHE_DIR=str(cache))
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    t0 = time.perf_counter()
+    proc = subprocess.run(cmd, capture_output=True, text=True, env=env)
+    wall = time.perf_counter() - t0
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    if proc.returncode != 0:
+        raise RuntimeError(f"kalmax fit failed ({proc.returncode}):\n{proc.stderr}")
+    steps_seen = re.findall(r"fit step (\d+)/\d+ .*?\(([\d.]+) s", proc.stderr)  # progress goes to stderr
+    first = float(steps_seen[0][1]) if steps_seen else float("nan")
+    last = float(steps_seen[-1][1]) if steps_seen else float("nan")
+    return {"wall_s": wall, "fit_s": last, "first_step_s": first,
+            "cpu_s": (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime),
+            "summary": [line for line in proc.stdout.splitlines() if line.startswith("Fitted parameters")]}
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--rows", type=int, default=10**6)
+    ap.add_argument("--steps", type=int, default=300)
+    ap.add_argument("--models", nargs="+", default=["random-walk", "constant-velocity"])
+    args = ap.parse_args(argv)
+    results = {"rows": args.rows, "steps": args.steps, "cores": os.cpu_count(),
+               "load_before": os.getloadavg()[0], "runs": {}}
+    with tempfile.TemporaryDirectory() as tmp:
+        tmp = Path(tmp)
+        for model in args.models:
+            data = write_data(tmp, model, args.rows)
+            cache = tmp / f"cache-{model}"
+            runs = [run_fit(data, model, args.steps, cache) for _ in range(2)]
+            results["runs"][model] = {"cold": runs[0], "cached": runs[1]}
+            for label, r in zip(("cold", "cached"), runs):
+                print(f"{model:18s} {label:6s} wall {r['wall_s']:7.1f} s  fit {r['fit_s']:7.1f} s  "
+                      f"first step {r['first_step_s']:5.1f} s  cpu {r['cpu_s']:7.1f} s  {r['summary']}", flush=True)
+    results["load_after"] = os.getloadavg()[0]
+    (HERE / "command_line_results.json").write_text(json.dumps(results, indent=2) + "\n")
+
+
+if __name__ == "__main__":
+    main()
