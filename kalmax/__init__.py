@@ -9,6 +9,13 @@ from ._src.smoothing import smooth as smooth
 from ._src.validation import condition_estimate as condition_estimate
 from ._src.validation import validate as validate
 
+# Filtering, forecasting and posterior sampling.
+from ._src.filtering import Filtered as Filtered
+from ._src.filtering import filter_states as filter_states
+from ._src.forecasting import Forecast as Forecast
+from ._src.forecasting import forecast as forecast
+from ._src.sampling import sample_states as sample_states
+
 # Learning layer: held-out splits, parameterisations, proximal steps, fitting, EM.
 from ._src.em import em as em
 from ._src.fitting import FitResult as FitResult

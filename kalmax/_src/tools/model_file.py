@@ -165,8 +165,12 @@ def save_model(path, spec: ModelSpec, out: AtomicOutputs = None) -> None:
     to commit it together with other outputs.
 
     Example:
-        >>> kx.save_model("drifter.json", spec)  # doctest: +SKIP
-        >>> kx.load_model("drifter.json") == spec  # doctest: +SKIP
+        >>> import os, tempfile
+        >>> spec = kx.ModelSpec(kind="random-walk", dims=1, time_column="time", columns=("depth",),
+        ...                     measured=("level0",), params={"q": [0.05]}, noise=(0.01,))
+        >>> path = os.path.join(tempfile.mkdtemp(), "drifter.json")
+        >>> kx.save_model(path, spec)
+        >>> kx.load_model(path) == spec
         True
     """
     text = json.dumps(spec_to_dict(spec), indent=2, allow_nan=False) + "\n"
