@@ -1,17 +1,16 @@
 """The command line's tool wing from Python: table parsing, the held-out objective, calibration."""
 
+import math
+
 import jax
+import jax.numpy as jnp
 
-jax.config.update("jax_enable_x64", True)
+import numpy as np
+import pytest
 
-import math  # noqa: E402
-
-import numpy as np  # noqa: E402
-import pytest  # noqa: E402
-
-import kalmax as kx  # noqa: E402
-from kalmax._src.tools import apply_workflow, fit_workflow, objectives, series as series_mod, starting_values  # noqa: E402
-from kalmax._src.tools.errors import DataError  # noqa: E402
+import kalmax as kx
+from kalmax._src.tools import apply_workflow, fit_workflow, objectives, series as series_mod, starting_values
+from kalmax._src.tools.errors import DataError
 
 
 def test_series_parsing_numbers_dates_and_missing_cells():
@@ -85,3 +84,39 @@ def test_heldout_rmse_uses_only_the_hidden_cells(rng):
     # Independent: kx.prediction_error hides the same cells and averages their squared errors.
     mse = kx.prediction_error(spec.state_space(series.t), np.nan_to_num(series.y), series.mask, test)
     assert math.isclose(got["y"], math.sqrt(float(mse)), rel_tol=1e-9)
+
+
+@pytest.mark.parametrize("kind,dims,measured", [
+    ("random-walk", 2, ["level0", "level1"]),
+    ("constant-velocity", 2, ["position0", "position1", "velocity0"]),  # axes of unequal width
+    ("constant-acceleration", 3, ["position0", "position1", "position2"]),
+])
+def test_likelihood_split_by_axis_equals_the_joint_likelihood(kind, dims, measured, rng):
+    # The per-axis batch is a different computation (dims small problems, padded
+    # columns) from the joint model; both are the exact likelihood, so values and
+    # gradients agree to rounding.
+    T = 120
+    t = np.cumsum(rng.uniform(0.3, 2.0, T))
+    t -= t[0]
+    y = rng.normal(size=(T, len(measured))).cumsum(axis=0)
+    y[rng.random(y.shape) < 0.25] = np.nan
+    cols = [f"c{j}" for j in range(len(measured))]
+    series = series_mod.Series(list(t), t, y, "number")
+    spec = starting_values.default_spec(kind, dims, "t", cols, measured, series)
+    assert objectives.independent_axes(spec) is not None
+    theta = {k: jnp.asarray(v) for k, v in spec.to_unconstrained().items()}
+    split, data = objectives.make_loss(spec, series, series.mask, "likelihood")
+    model_joint = lambda th: spec.state_space(series.t, th)  # noqa: E731
+    n_obs = float(series.mask.sum())
+    joint = lambda th: -kx.log_likelihood(model_joint(th), np.nan_to_num(y), series.mask) / n_obs  # noqa: E731
+    v_split, g_split = jax.value_and_grad(split)(theta, *data)
+    v_joint, g_joint = jax.value_and_grad(joint)(theta)
+    np.testing.assert_allclose(v_split, v_joint, rtol=1e-10)
+    for k in theta:
+        np.testing.assert_allclose(g_split[k], g_joint[k], rtol=1e-7, atol=1e-10)
+
+
+def test_an_axis_without_columns_keeps_the_joint_model():
+    spec = kx.ModelSpec(kind="constant-velocity", dims=2, time_column="t", columns=("a",), measured=("position0",),
+                        params={"q": [1.0, 1.0]}, noise=(1.0,))
+    assert objectives.independent_axes(spec) is None
