@@ -17,6 +17,7 @@ from typing import List, Optional
 from ._src.tools import signals
 from ._src.tools.atomic_outputs import AtomicOutputs
 from ._src.tools.errors import DataError, FitError, ModelFileError, UsageError
+from ._src.tools.time_units import UNITS, UNIT_WORDS
 
 SAFETY_NOTE = (
     "Safety: state estimates often feed decisions (navigation, monitoring, control). kalmax comes with no "
@@ -42,7 +43,8 @@ EXIT_CODES_HELP = """exit codes:
   2    bad command line, including an output that is an input or another output
   3    data problem: unreadable file, missing column, timestamps not strictly
        increasing or mixing styles, no observations, output folder missing
-  4    model file problem: unreadable, from another format version, invalid
+  4    model file problem: unreadable, from another format version, invalid,
+       or lacking what the request needs (a time unit for --forecast-step 1h)
   5    numerical failure: the fit or the smoother produced non-finite values
   130  interrupted (Ctrl-C, SIGINT)
   143  terminated (SIGTERM)
@@ -68,10 +70,24 @@ rate.
 
 Typical session:
   kalmax models                                   # which models exist
-  kalmax fit readings.csv --time time --model random-walk --measure temp
+  kalmax fit readings.csv --time time --model random-walk --measure temp \
+      --time-unit day --forecast 14               # rates per day; 14 rows of forecast
   kalmax apply readings_model.json new_readings.csv
 
 """
+
+
+TIME_HELP = """\
+Time: numbers or date-times (ISO 8601, e.g. 2024-05-01T12:00:00Z, or any layout
+given by --time-pattern), strictly increasing. Date-times are converted to the
+--time-unit (default s), so the model's rates are per that unit. Numbers are
+used as they are: --time-unit only names their unit (no conversion), unless
+--numeric-time-unit says what they count in (e.g. ms for epoch milliseconds):
+then they are converted exactly to --time-unit. A column that measures a
+velocity or other rate must be in its units per --time-unit. Date-times are
+written one way: all with a time zone (Z, +01:00; offsets may differ), all
+without one (read as UTC), or all dates. Time differences are computed exactly
+(epoch nanoseconds, fractions of a second) and rounded once."""
 
 
 def _kinds_text() -> str:
@@ -82,6 +98,11 @@ def _kinds_text() -> str:
         lines.append(f"  {k.name:<22} {k.summary}")
         lines.append(f"  {'':<22} parameters: {', '.join(k.params)}, noise (per column)")
     return "\n".join(lines)
+
+
+def _units_text() -> str:
+    words = ", ".join(f"{k} ({v})" for k, v in UNIT_WORDS.items())
+    return textwrap.fill("Time units: " + words + ".", width=80, break_on_hyphens=False)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -100,7 +121,8 @@ def build_parser() -> argparse.ArgumentParser:
                      help="smoothed table, .csv or .parquet (default: DATA_smoothed.csv). Columns: the time, then "
                           "for each measured column COL: COL (as read), COL_smoothed (estimate, also where COL was "
                           "missing), COL_lower and COL_upper (interval for a new noisy measurement of COL, i.e. "
-                          "the smoother's uncertainty plus the measurement noise)")
+                          "the smoother's uncertainty plus the measurement noise) and COL_status (observed, "
+                          "imputed = missing in the input, held-out = hidden from the fit, or forecast)")
     out.add_argument("--report", metavar="FILE.png", help="PNG report (default: DATA_report.png)")
     out.add_argument("--no-report", action="store_true", help="do not draw the PNG report")
     out.add_argument("--level", type=float, default=0.95, metavar="P",
@@ -112,6 +134,19 @@ def build_parser() -> argparse.ArgumentParser:
                      help="a word that marks a missing measurement (any case; repeat for several). Given once "
                           "or more, it replaces the default words NaN, NA, N/A, null, none and -; blank cells "
                           "are always missing")
+    inp.add_argument("--time-pattern", metavar="PATTERN",
+                     help="read every time cell as a date-time with this strptime pattern, e.g. "
+                          "'%%d/%%m/%%Y %%H:%%M' or '%%Y%%m%%d' (%%z for an offset such as +0200; without it the "
+                          "times are read as UTC; %%Z is refused). Saved in the model file, so `kalmax apply` "
+                          "reads new data the same way; there, 'iso8601' switches back to ISO 8601")
+    fc = common.add_argument_group("forecast")
+    fc.add_argument("--forecast", metavar="N",
+                    help="append N forecast rows past the last timestamp, with forecast means and intervals in "
+                         "the COL_smoothed, COL_lower and COL_upper columns and 'forecast' in COL_status")
+    fc.add_argument("--forecast-step", metavar="STEP",
+                    help="spacing of the forecast rows: a number in the model's time unit, or a number and a "
+                         "unit such as 30min, 1.5h or 7day (default: the typical step of the data, the lower "
+                         "median of its time steps)")
     misc = common.add_argument_group("other")
     misc.add_argument("--quiet", "-q", action="store_true", help="print errors only (no progress, no summary)")
     misc.add_argument("--debug", action="store_true", help="show the Python traceback of an internal error")
@@ -129,10 +164,7 @@ def build_parser() -> argparse.ArgumentParser:
             "velocity sensor on the first axis:\n"
             "  kalmax fit float.csv --time time --model constant-velocity --dims 2 \\\n"
             "      --measure east --measure north --measure speed_east=velocity0\n\n"
-            "Time: numbers (any unit; the model's rates are per that unit) or ISO 8601 date-times\n"
-            "(then rates are per second). Timestamps must be strictly increasing and written one way:\n"
-            "all with a time zone (Z, +01:00) or all without (read as UTC), or all dates.\n"
-            "Time differences are computed exactly (epoch nanoseconds, fractions of a second).\n\n"
+            + TIME_HELP + "\n" + _units_text() + "\n\n"
             "Missing measurements: blank cells, and cells holding NaN, NA, N/A, null, none or -\n"
             "(any case); --missing WORD replaces these words.\n\n" + _SAFETY_WRAPPED),
         epilog=EXIT_CODES_HELP)
@@ -145,6 +177,14 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--dims", type=int, metavar="D",
                    help="number of spatial axes for random-walk / constant-velocity / constant-acceleration "
                         "(default: number of --measure columns without '=STATE')")
+    g.add_argument("--time-unit", choices=tuple(UNITS), metavar="UNIT",
+                   help="the unit of time the model's rates are per: " + ", ".join(UNITS) + " (year = 365.25 "
+                        "days). Date-times are converted to it (default: s); numbers are taken to be in it "
+                        "(no conversion) unless --numeric-time-unit is given. Saved in the model file")
+    g.add_argument("--numeric-time-unit", choices=tuple(UNITS), metavar="UNIT",
+                   help="what numeric timestamps count in (e.g. ms for epoch milliseconds, ns for epoch "
+                        "nanoseconds); they are converted exactly to --time-unit (default: this unit, i.e. no "
+                        "conversion). Saved in the model file")
     g.add_argument("--start", metavar="MODEL.json",
                    help="start from a saved model file (gives kind, dims, columns and starting values)")
     g.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
@@ -172,7 +212,11 @@ def build_parser() -> argparse.ArgumentParser:
         "apply", parents=[common], formatter_class=fmt,
         help="smooth new data with a saved model file, without refitting",
         description=("Smooth and impute DATA with the model saved by `kalmax fit` (no refitting).\n"
-                     "DATA needs the model's time column and measurement columns.\n\n" + _SAFETY_WRAPPED),
+                     "DATA needs the model's time column and measurement columns. The time unit, the\n"
+                     "unit of numeric timestamps and the --time-pattern come from the model file\n"
+                     "(a version-1 file: seconds for date-times, the numbers' own unit for numbers).\n"
+                     "--forecast N appends N forecast rows; --forecast-step with a unit (e.g. 1h)\n"
+                     "needs a model file that names its time unit.\n\n" + _SAFETY_WRAPPED),
         epilog=EXIT_CODES_HELP)
     apply.add_argument("model_file", metavar="MODEL.json", help="model file written by `kalmax fit`")
     apply.add_argument("data", metavar="DATA", help="input table: .csv or .parquet")
@@ -251,13 +295,54 @@ def _format_errors(errs):
     return ", ".join(f"{k} {v:.4g}" for k, v in errs.items() if k != "all")
 
 
-def _table_for(args, spec, series, smoothing):
+def _table_for(args, spec, series, smoothing, test_mask=None):
     from ._src.tools import apply_workflow
 
-    return apply_workflow.output_table(spec, series, smoothing, level=args.level, with_states=args.with_states)
+    return apply_workflow.output_table(spec, series, smoothing, level=args.level, with_states=args.with_states,
+                                       test_mask=test_mask)
 
 
-def _read(args, time_column, columns, time_format=None):
+def _time_pattern(args, stored=None):
+    """The strptime pattern to read the time column with: --time-pattern ('iso8601': none), else ``stored``."""
+    from ._src.tools.time_units import check_pattern
+
+    if args.time_pattern is None:
+        return stored
+    if args.time_pattern.strip().lower() in ("iso8601", "iso"):
+        return None
+    try:
+        check_pattern(args.time_pattern)
+    except ValueError as e:
+        raise UsageError(f"--time-pattern: {e}") from None
+    return args.time_pattern
+
+
+def _check_forecast(args):
+    """The number of forecast rows (None without --forecast); checks --forecast-step's syntax (UsageError)."""
+    from ._src.tools import horizon
+
+    if args.forecast is None:
+        if args.forecast_step is not None:
+            raise UsageError("--forecast-step needs --forecast N (the number of forecast rows).")
+        return None
+    steps = horizon.parse_steps(args.forecast)
+    horizon.check_step(args.forecast_step)
+    return steps
+
+
+def _with_forecast(args, series, steps):
+    """``series`` with the forecast rows appended (unchanged without --forecast)."""
+    from ._src.tools import horizon
+
+    if steps is None:
+        return series
+    extended = horizon.extend(series, steps, args.forecast_step)
+    _say(args, f"Forecast: {steps} rows after {series.times_raw[-1]}, up to {extended.times_raw[-1]}.")
+    return extended
+
+
+def _read(args, time_column, columns, time_format=None, *, time_unit=None, numeric_time_unit=None,
+          time_pattern=None):
     from ._src.tools import series, tables
 
     if args.missing is not None:
@@ -266,7 +351,8 @@ def _read(args, time_column, columns, time_format=None):
             raise UsageError("--missing needs a word; blank cells are always missing.")
     names, cols = tables.read_table(args.data)
     return series.series_from_table(names, cols, time_column, columns, source=str(args.data),
-                                    time_format=time_format, missing=args.missing)
+                                    time_format=time_format, missing=args.missing, time_unit=time_unit,
+                                    numeric_time_unit=numeric_time_unit, time_pattern=time_pattern)
 
 
 # ----------------------------------------------------------------------------
@@ -303,10 +389,12 @@ def cmd_fit(args) -> int:
         raise UsageError(f"--folds must be at least 2; got {args.folds}.")
     if not (args.learning_rate > 0 and math.isfinite(args.learning_rate)):
         raise UsageError(f"--learning-rate must be > 0; got {args.learning_rate}.")
+    forecast_steps = _check_forecast(args)
     table_path, report_path, model_path = _outputs(args, model_file=True,
                                                    inputs=[("DATA", args.data), ("--start", args.start)])
 
     start = model_file.load_model(args.start) if args.start else None
+    time_unit, numeric_unit = args.time_unit, args.numeric_time_unit
     if start is not None:
         for opt, val, have in (("--model", args.model, start.kind), ("--time", args.time, start.time_column),
                                ("--dims", args.dims, start.dims)):
@@ -316,7 +404,17 @@ def cmd_fit(args) -> int:
             cols, states, _ = parse_measures(args.measure, start.kind, start.dims)
             if tuple(cols) != start.columns or tuple(states) != start.measured:
                 raise UsageError("--measure contradicts the columns of the --start model file; drop one of them.")
-        series = _read(args, start.time_column, start.columns, start.time_format)
+        # The starting values are per the start file's time unit: another unit would change their meaning.
+        # A file whose numbers have no named unit may be given one (a name, no conversion).
+        time_unit = time_unit or start.time_unit
+        if numeric_unit is None and start.numeric_time_unit is not None:
+            numeric_unit = start.numeric_time_unit
+        resolved = time_unit or numeric_unit
+        if start.time_unit is not None and resolved != start.time_unit:
+            raise UsageError(f"--time-unit {resolved} contradicts the --start model file, whose rates are per "
+                             f"{start.time_unit}; drop one of them.")
+        series = _read(args, start.time_column, start.columns, start.time_format, time_unit=time_unit,
+                       numeric_time_unit=numeric_unit, time_pattern=_time_pattern(args, start.time_pattern))
         spec = start
     else:
         missing = [o for o, v in (("--time", args.time), ("--model", args.model), ("--measure", args.measure))
@@ -330,8 +428,18 @@ def cmd_fit(args) -> int:
             check_columns(args.time, cols)
         except ValueError as e:
             raise UsageError(f"--measure: {e}") from None
-        series = _read(args, args.time, cols)
+        series = _read(args, args.time, cols, time_unit=time_unit, numeric_time_unit=numeric_unit,
+                       time_pattern=_time_pattern(args))
         spec = starting_values.default_spec(args.model, dims, args.time, cols, states, series)
+    spec = spec.replace(time_unit=series.unit, time_pattern=series.clock.pattern,
+                        numeric_time_unit=numeric_unit if series.time_format == "number" else None)
+    if series.time_format == "iso8601" and start is None and args.time_unit is None:
+        step = float(np.median(np.diff(series.t)))
+        hint = next((u for u, s in (("day", 86400), ("h", 3600), ("min", 60)) if step >= s), None)
+        if hint:
+            _say(args, f"Note: the rates are per second; the typical step is {step:.4g} s, so --time-unit {hint} "
+                       "may give more readable numbers.")
+    out_series = _with_forecast(args, series, forecast_steps)  # before the fit: a bad step fails fast
     spec = apply_settings(spec, args.set)
     allowed = set(spec.kind_info.params) | {"noise"}
     bad = [f for f in args.fix if f not in allowed]
@@ -372,8 +480,8 @@ def cmd_fit(args) -> int:
         "learning_rate": args.learning_rate, "fixed": list(args.fix), "test_fraction": args.test_fraction,
         "seed": args.seed, "heldout_rmse_before": before, "heldout_rmse_after": after,
     })
-    smoothing = apply_workflow.smooth_series(fitted, series)
-    names, cols = _table_for(args, fitted, series, smoothing)
+    smoothing = apply_workflow.smooth_series(fitted, out_series)
+    names, cols = _table_for(args, fitted, out_series, smoothing, test if test.any() else None)
     summary = ""
     if after is not None:
         summary = (f"held-out RMSE (sd units): start {before['all']:.3g} -> fitted {after['all']:.3g}; "
@@ -382,7 +490,7 @@ def cmd_fit(args) -> int:
         tables.write_table(table_path, names, cols, out)
         model_file.save_model(model_path, fitted, out)
         if report_path is not None:
-            write_report(out.temp_for(report_path), fitted, series, smoothing, level=args.level,
+            write_report(out.temp_for(report_path), fitted, out_series, smoothing, level=args.level,
                          test_mask=test if test.any() else None, history=outcome.history,
                          loss_label=("−log-likelihood per cell" if args.objective == "likelihood"
                                      else "CV squared error (sd units)"),
@@ -390,7 +498,8 @@ def cmd_fit(args) -> int:
     def fmt(v):
         return "[" + ", ".join(f"{x:.4g}" for x in v) + "]" if isinstance(v, (list, tuple)) else f"{v:.4g}"
 
-    _say(args, "Fitted parameters: " + ", ".join(f"{k}={fmt(v)}" for k, v in fitted.params.items())
+    per = f" (rates per {fitted.time_unit})" if fitted.time_unit else ""
+    _say(args, f"Fitted parameters{per}: " + ", ".join(f"{k}={fmt(v)}" for k, v in fitted.params.items())
          + "; noise sd " + ", ".join(f"{c} {math.sqrt(r):.4g}" for c, r in zip(fitted.columns, fitted.noise)))
     _say(args, f"Wrote {table_path}, {model_path}" + (f", {report_path}" if report_path else ""))
     return EXIT_OK
@@ -400,12 +509,22 @@ def cmd_apply(args) -> int:
     from ._src.tools import apply_workflow, model_file, tables
     from ._src.tools.report import write_report
 
+    from ._src.tools import horizon
+
     _check_level(args)
+    forecast_steps = _check_forecast(args)
     table_path, report_path, _ = _outputs(args, model_file=False,
                                           inputs=[("DATA", args.data), ("MODEL.json", args.model_file)])
     spec = model_file.load_model(args.model_file)
-    series = _read(args, spec.time_column, spec.columns, spec.time_format)
+    if horizon.step_needs_unit(args.forecast_step, spec.time_format, spec.time_unit):
+        raise ModelFileError(f"{args.model_file}: the model names no time unit (numeric times fitted without "
+                             f"--time-unit, or a format version 1 file), so --forecast-step {args.forecast_step} "
+                             "cannot be converted to the time column's units; give the step as a plain number in "
+                             "those units, or refit with --time-unit.")
+    series = _read(args, spec.time_column, spec.columns, spec.time_format, time_unit=spec.time_unit,
+                   numeric_time_unit=spec.numeric_time_unit, time_pattern=_time_pattern(args, spec.time_pattern))
     _say(args, f"Read {args.data}: {len(series.t)} rows, {int(series.mask.sum())} observed cells.")
+    series = _with_forecast(args, series, forecast_steps)
     smoothing = apply_workflow.smooth_series(spec, series)
     names, cols = _table_for(args, spec, series, smoothing)
     with AtomicOutputs() as out:

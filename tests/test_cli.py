@@ -21,7 +21,7 @@ import kalmax as kx
 from kalmax._src.tools import atomic_outputs, model_file as kio
 
 import reference
-from table_files import read_csv, write_csv
+from cli_helpers import read_csv, snapshot, write_csv
 
 _SCRIPT = Path(sys.executable).parent / "kalmax"
 # The installed console script is the real entry point; `python -m kalmax` runs the same main().
@@ -34,11 +34,6 @@ def run(*args, cwd, env_extra=None):
     env.update(env_extra or {})
     return subprocess.run(COMMAND + [str(a) for a in args], cwd=cwd, env=env, capture_output=True, text=True,
                           timeout=300)
-
-
-def snapshot(folder):
-    """{name: bytes} of every file in the folder (hidden ones included)."""
-    return {p.name: p.read_bytes() for p in Path(folder).iterdir() if p.is_file()}
 
 
 def assert_failed_cleanly(result, code, folder, before, *words):
@@ -77,11 +72,11 @@ def test_fit_writes_table_model_and_report(cv_csv, tmp_path):
     table, model, report = (tmp_path / "track_smoothed.csv", tmp_path / "track_model.json",
                             tmp_path / "track_report.png")
     header, rows = read_csv(table)
-    assert header == ["t", "pos", "pos_smoothed", "pos_lower", "pos_upper",
-                      "vel", "vel_smoothed", "vel_lower", "vel_upper"]
+    assert header == ["t", "pos", "pos_smoothed", "pos_lower", "pos_upper", "pos_status",
+                      "vel", "vel_smoothed", "vel_lower", "vel_upper", "vel_status"]
     assert len(rows) == 70
     for row in rows:
-        for first in (2, 6):  # pos_smoothed, vel_smoothed: lower < smoothed < upper, missing rows too
+        for first in (2, 7):  # pos_smoothed, vel_smoothed: lower < smoothed < upper, missing rows too
             mid, lo, hi = (float(row[first + k]) for k in range(3))
             assert math.isfinite(mid) and lo < mid < hi
     spec = kx.load_model(model)
@@ -89,7 +84,7 @@ def test_fit_writes_table_model_and_report(cv_csv, tmp_path):
     assert spec.measured == ("position0", "velocity0")
     assert spec.fit["objective"] == "likelihood" and spec.fit["heldout_rmse_after"]["pos"] > 0
     doc = json.loads(model.read_text())
-    assert doc["format"] == "kalmax-model" and doc["format_version"] == 1
+    assert doc["format"] == "kalmax-model" and doc["format_version"] == 2
     png = report.read_bytes()
     assert png.startswith(b"\x89PNG\r\n\x1a\n") and len(png) > 20_000
     assert not [p for p in tmp_path.iterdir() if p.name.endswith(".part")]
@@ -115,7 +110,8 @@ def test_apply_matches_textbook_rts_smoother(tmp_path, rng):
               "--with-states", "--quiet", cwd=tmp_path)
     assert res.returncode == 0, res.stderr
     header, rows = read_csv(tmp_path / "out.csv")
-    assert header == ["when", "level", "level_smoothed", "level_lower", "level_upper", "state_level0"]
+    assert header == ["when", "level", "level_smoothed", "level_lower", "level_upper", "level_status",
+                      "state_level0"]
     got = np.array([[float(c) for c in row[2:5]] for row in rows])
     tt = np.array([float(row[0]) for row in rows])
     md = dict(A=np.ones((1, 1)), C=np.ones((1, 1)), Q=(q * np.diff(tt))[:, None, None], R=np.array([[r]]),
@@ -178,9 +174,9 @@ def _bad_inputs(folder: Path):
                                         columns=("pos", "vel"), measured=("position0", "velocity0"),
                                         params={"q": [0.1]}, noise=(0.1, 0.01)))
     (folder / "good.json").write_text(json.dumps(doc))
+    doc["format_version"] = 3
+    (folder / "v3.json").write_text(json.dumps(doc))
     doc["format_version"] = 2
-    (folder / "v2.json").write_text(json.dumps(doc))
-    doc["format_version"] = 1
     doc["model"]["measurements"][0]["noise_variance"] = -1.0
     (folder / "negative.json").write_text(json.dumps(doc))
     (folder / "nan.json").write_text(json.dumps(doc).replace("-1.0", "NaN"))
@@ -208,8 +204,8 @@ def _bad_inputs(folder: Path):
         ("parquet without pyarrow", S, ["apply", "iso.json", "bad.parquet"], 3,
          ["pyarrow", "not installed"], no_pyarrow),
         ("report path is a folder", P, fit + ["ok.csv", *FIT_ARGS, "--report", "a_folder"], 3, ["is a folder"]),
-        ("model from another version", S, ["apply", "v2.json", "ok.csv"], 4,
-         ["format version 2", "reads format version 1"]),
+        ("model from another version", S, ["apply", "v3.json", "ok.csv"], 4,
+         ["format version 3", "reads format versions 1 and 2"]),
         ("model file missing", P, ["apply", "none.json", "ok.csv"], 4, ["no such file"]),
         ("missing options", S, fit + ["ok.csv", "--measure", "pos"], 2, ["--time", "--model"]),
         ("axis never measured", S, fit + ["ok.csv", "--time", "t", "--model", "constant-velocity", "--dims", "2",
@@ -226,8 +222,8 @@ def _bad_inputs(folder: Path):
         ("empty file", P, fit + ["blank.csv", *FIT_ARGS], 3, ["empty"]),
         ("output folder missing", P, fit + ["ok.csv", *FIT_ARGS, "-o", "no/such/dir/out.csv"], 3,
          ["does not exist"]),
-        ("start from another version", P, fit + ["ok.csv", "--start", "v2.json", "--quiet"], 4,
-         ["format version 2"]),
+        ("start from another version", P, fit + ["ok.csv", "--start", "v3.json", "--quiet"], 4,
+         ["format version 3"]),
         ("invalid model values", P, ["apply", "negative.json", "ok.csv"], 4, ["noise", "> 0"]),
         ("NaN in model file", P, ["apply", "nan.json", "ok.csv"], 4, ["invalid JSON"]),
         ("model not json", P, ["apply", "notjson.json", "ok.csv"], 4, ["invalid JSON"]),

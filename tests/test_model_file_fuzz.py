@@ -20,7 +20,8 @@ UnicodeDecodeError, ValueError, OverflowError, MemoryError, ...) fails.
 
 Files come from three generators, all derandomized:
 
-* ``structural_files``: a valid file written by ``kx.save_model``, parsed,
+* ``structural_files``: a valid file written by ``kx.save_model`` (format
+  version 2, or the same rewritten as version 1 without the unit entries), parsed,
   mutated 1-3 times (delete a key or item, replace a value by a hostile JSON
   value or by one of another type, add keys, change format name/version,
   break the shapes and limits, put NaN/Infinity/overflowing number tokens in
@@ -131,6 +132,20 @@ def seed_texts(workdir):
         path = workdir / f"seed{i}.json"
         kx.save_model(path, spec)
         out.append(path.read_bytes())
+    return out
+
+
+@pytest.fixture(scope="module")
+def mutation_seeds(seed_texts):
+    """The seed files, plus the small ones rewritten as format version 1 (no unit entries): the
+    mutations reach the loader's version-1 path too."""
+    out = _Seeds(seed_texts)
+    for text in seed_texts[:5]:
+        doc = json.loads(text)
+        doc["format_version"] = 1
+        for k in kio.V2_ENTRIES:
+            doc["model"].pop(k, None)
+        out.append(json.dumps(doc, indent=2).encode())
     return out
 
 
@@ -289,7 +304,8 @@ def _shape_break(doc, draw):
         return
     how = draw(st.sampled_from([
         "dims", "param_len", "param_ragged", "param_type", "no_measurements", "many_measurements",
-        "duplicate_column", "column_is_time", "long_name", "bad_state", "time_column", "jitter", "noise"]))
+        "duplicate_column", "column_is_time", "long_name", "bad_state", "time_column", "jitter", "noise",
+        "time_unit", "time_pattern"]))
     meas = m.get("measurements") if isinstance(m.get("measurements"), list) else None
     params = m.get("parameters") if isinstance(m.get("parameters"), dict) else None
     if how == "dims":
@@ -325,6 +341,13 @@ def _shape_break(doc, draw):
         m["time_column"] = draw(st.sampled_from(["", "t" * (kio.MAX_NAME_CHARS + 1), None, 1]))
     elif how == "jitter":
         m["jitter"] = draw(st.sampled_from([-1e-9, 0, 10**400, 1e308, "0", None, [0.0]]))
+    elif how == "time_unit":
+        m[draw(st.sampled_from(["time_unit", "numeric_time_unit"]))] = draw(st.sampled_from(
+            ["s", "ms", "day", "year", "parsec", "", "S", " s", None, 1, 86400.0, ["s"], {"unit": "s"}]))
+    elif how == "time_pattern":
+        m["time_pattern"] = draw(st.sampled_from(
+            ["%d/%m/%Y %H:%M", "%Y%m%d", "%Q", "%", "100%", "%Z", "%z", "plain", "", None, 7, ["%Y"],
+             "%Y" * 200, "%H\n%M", "%Y\u0000"]))
     elif how == "noise" and meas and isinstance(meas[-1], dict):
         meas[-1]["noise_variance"] = draw(st.sampled_from([0, 0.0, -1.0, 5e-324, 10**400, -(10**400),
                                                            1e308, True, "1", None, [1.0]]))
@@ -364,7 +387,7 @@ def structural_files(draw, seeds):
             if isinstance(doc, dict):
                 key = draw(st.sampled_from(["format", "format_version"]))
                 doc[key] = draw(st.sampled_from(
-                    [0, 2, -1, "1", 1.0, 1.5, True, 10**400, None, [1], "kalmax-model", "KALMAX-MODEL",
+                    [0, 1, 2, 3, -1, "1", 1.0, 1.5, True, 10**400, None, [1], "kalmax-model", "KALMAX-MODEL",
                      "kalmax-model ", "kalmax", ""]))
         elif op == "shape":
             _shape_break(doc, draw)
@@ -431,10 +454,11 @@ def random_files(draw):
         return draw(st.text(max_size=2000)).encode("utf-8")
     if how == "json":
         return json.dumps(draw(JSON_VALUES)).encode()
-    doc = {"format": "kalmax-model", "format_version": 1,
+    doc = {"format": "kalmax-model", "format_version": draw(st.sampled_from([1, 2])),
            "model": draw(st.dictionaries(
-               st.sampled_from(["kind", "dims", "states", "time_column", "time_format", "jitter", "parameters",
-                                "measurements"]), JSON_VALUES | hostile_values(), max_size=8))}
+               st.sampled_from(["kind", "dims", "states", "time_column", "time_format", "time_unit",
+                                "numeric_time_unit", "time_pattern", "jitter", "parameters", "measurements"]),
+               JSON_VALUES | hostile_values(), max_size=11))}
     return json.dumps(doc).encode()
 
 
@@ -456,21 +480,21 @@ def test_valid_files_round_trip(workdir, seed_texts):
 
 @settings(max_examples=250 * SCALE, **BOUNDED)
 @given(data=st.data())
-def test_structurally_mutated_files(workdir, seed_texts, data):
+def test_structurally_mutated_files(workdir, mutation_seeds, data):
     """Mutated JSON documents (keys deleted, values replaced by hostile or wrongly typed JSON values,
     keys added, other format names / versions, broken shapes and limits, NaN / Infinity / overflowing
     number tokens) load as a valid spec or fail with a clear ModelFileError.
     250 examples x KALMAX_PROPERTY_SCALE."""
-    check_file(data.draw(structural_files(seed_texts)), workdir, "structural")
+    check_file(data.draw(structural_files(mutation_seeds)), workdir, "structural")
 
 
 @settings(max_examples=200 * SCALE, **BOUNDED)
 @given(data=st.data())
-def test_byte_mutated_files(workdir, seed_texts, data):
+def test_byte_mutated_files(workdir, mutation_seeds, data):
     """Byte-level damage (truncation, flipped / inserted / deleted bytes, invalid UTF-8, byte-order
     marks, other encodings, NUL bytes, duplicate keys) loads as a valid spec or fails with a clear
     ModelFileError. 200 examples x KALMAX_PROPERTY_SCALE."""
-    check_file(data.draw(byte_files(seed_texts)), workdir, "byte")
+    check_file(data.draw(byte_files(mutation_seeds)), workdir, "byte")
 
 
 @settings(max_examples=150 * SCALE, **BOUNDED)
@@ -678,11 +702,35 @@ def _strict_cases():
         doc["model"]["measurements"][0]["column"] = name
         return doc
 
+    def without(*keys, version=2):
+        doc = _valid_doc()
+        doc["format_version"] = version
+        for k in keys:
+            del doc["model"][k]
+        return doc
+
     states = list(_valid_doc()["model"]["states"])
     return {
         "format_version true": (dict(_valid_doc(), format_version=True), "format_version"),
         "format_version 1.0": (dict(_valid_doc(), format_version=1.0), "format_version"),
         "format_version '1'": (dict(_valid_doc(), format_version="1"), "format_version"),
+        "format_version 2.0": (dict(_valid_doc(), format_version=2.0), "format_version"),
+        # Version 2: the time unit entries, checked by type and value.
+        "version 2 without time_unit": (without("time_unit"), "time_unit"),
+        "version 2 without time_format": (without("time_format"), "time_format"),
+        "an unknown time unit": (with_model(time_unit="parsec"), "time_unit"),
+        "a time unit in capitals": (with_model(time_unit="S"), "time_unit"),
+        "a list as the time unit": (with_model(time_unit=["s"]), "time_unit"),
+        "a null time unit for date-times": (with_model(time_unit=None), "time_unit"),
+        "a numeric time unit for date-times": (with_model(numeric_time_unit="ms"), "numeric_time_unit"),
+        "a time pattern with an unknown directive": (with_model(time_pattern="%d/%m/%Q"), "pattern"),
+        "a time pattern with a zone name": (with_model(time_pattern="%Y-%m-%d %Z"), "%Z"),
+        "a time pattern without a directive": (with_model(time_pattern="day"), "pattern"),
+        "a number as the time pattern": (with_model(time_pattern=5), "time_pattern"),
+        "a time pattern for numbers": (with_model(time_format="number", time_pattern="%Y"), "time_pattern"),
+        # Version 1 files have no unit entries: one there would be ignored by a version-1 reader.
+        "version 1 with a time unit": (without("numeric_time_unit", "time_pattern", version=1), "time_unit"),
+        "version 1 with a time pattern": (without("time_unit", "numeric_time_unit", version=1), "time_pattern"),
         "states of another kind": (with_model(states=["level0", "level1"]), "states"),
         "states in another order": (with_model(states=states[::-1]), "states"),
         "states missing one": (with_model(states=states[:-1]), "states"),
@@ -705,11 +753,30 @@ def test_strict_values_are_refused(workdir, name):
 
 def test_matching_states_and_integer_version_load(workdir):
     doc = _valid_doc()
-    assert doc["format_version"] == 1 and type(doc["format_version"]) is int
+    assert doc["format_version"] == kio.FORMAT_VERSION == 2 and type(doc["format_version"]) is int
     spec = kx.load_model(_write(workdir, json.dumps(doc).encode()))
     assert list(spec.state_names()) == doc["model"]["states"]
     del doc["model"]["states"]  # optional: the kind and dims define them
     assert kx.load_model(_write(workdir, json.dumps(doc).encode())) == spec
+
+
+def test_version_1_files_load_with_the_units_of_version_1(workdir):
+    """A version-1 file (no unit entries) still loads: rates per second for date-times, per unit of the
+    numbers for numbers; saving it again writes version 2 with those units spelt out, which loads equal."""
+    for seed, want in ((SEED_SPECS[1], "s"), (SEED_SPECS[0], None)):
+        doc = kio.spec_to_dict(seed)
+        doc["format_version"] = 1
+        for k in kio.V2_ENTRIES:
+            del doc["model"][k]
+        spec = kx.load_model(_write(workdir, json.dumps(doc).encode()))
+        assert spec.time_unit == want and spec.numeric_time_unit is None and spec.time_pattern is None
+        assert spec == seed
+        again = workdir / "v1_resaved.json"
+        kx.save_model(again, spec)
+        resaved = json.loads(again.read_text())
+        assert resaved["format_version"] == 2 and resaved["model"]["time_unit"] == want
+        assert kx.load_model(again) == spec
+    CASES["fixed"] += 2
 
 
 def test_missing_file_and_folder(workdir):

@@ -64,27 +64,63 @@ def heldout_rmse(spec: ModelSpec, series: Series, test_mask) -> Dict[str, float]
     return out
 
 
+# The kinds of cell in the status columns of the result table.
+STATUS_WORDS = {
+    "observed": "measured, and seen by the smoother",
+    "imputed": "missing in the input: the smoothed value fills it in",
+    "held-out": "measured, but hidden from the fit of the parameters (kalmax fit's test cells; the final "
+                "smoothing sees them)",
+    "forecast": "a forecast row past the last timestamp (--forecast)",
+}
+
+
+def padded(test_mask, series: Series):
+    """A (T_record, p) test mask padded with False for the forecast rows of ``series`` (None stays None)."""
+    if test_mask is None:
+        return None
+    test_mask = np.asarray(test_mask, bool)
+    extra = series.y.shape[0] - test_mask.shape[0]
+    return np.concatenate([test_mask, np.zeros((extra, test_mask.shape[1]), bool)]) if extra else test_mask
+
+
+def cell_status(series: Series, test_mask=None) -> np.ndarray:
+    """(T, p) array of the words of :data:`STATUS_WORDS`, one per measurement cell."""
+    mask = series.mask
+    status = np.where(mask, "observed", "imputed").astype(object)
+    test = padded(test_mask, series)
+    if test is not None:
+        status[test & mask] = "held-out"
+    if series.forecast:
+        status[-series.forecast:] = "forecast"
+    return status
+
+
 def output_table(spec: ModelSpec, series: Series, sm: Smoothing, *, level: float = 0.95,
-                 with_states: bool = False):
+                 with_states: bool = False, test_mask=None):
     """(names, columns) of the result table: time, then per measurement column
-    the observed value, ``_smoothed`` mean, ``_lower``/``_upper`` interval bounds."""
+    the observed value, ``_smoothed`` mean, ``_lower``/``_upper`` interval bounds
+    and ``_status`` (observed, imputed, held-out or forecast; see :func:`cell_status`).
+    Forecast rows (``series.forecast``) come last, with blank measurements."""
     z = statistics.NormalDist().inv_cdf(0.5 + level / 2)
     names = [spec.time_column]
     cols = {spec.time_column: series.times_raw}
+    status = cell_status(series, test_mask)
     for j, c in enumerate(spec.columns):
         lo = sm.mean[:, j] - z * sm.sd[:, j]
         hi = sm.mean[:, j] + z * sm.sd[:, j]
         for suffix, values in (("", series.y[:, j]), ("_smoothed", sm.mean[:, j]),
                                ("_lower", lo), ("_upper", hi)):
             names.append(c + suffix)
-            cols[c + suffix] = [float(v) for v in values]
+            cols[c + suffix] = np.asarray(values, dtype=np.float64).tolist()
+        names.append(c + "_status")
+        cols[c + "_status"] = status[:, j].tolist()
     if with_states:
         for k, s in enumerate(spec.state_names()):
             name = f"state_{s}"
             names.append(name)
-            cols[name] = [float(v) for v in sm.states[:, k]]
+            cols[name] = np.asarray(sm.states[:, k], dtype=np.float64).tolist()
     clash = len(set(names)) != len(names)
     if clash:
         raise DataError("the output column names collide (a measurement column is already called like "
-                        "another column plus _smoothed/_lower/_upper); rename the input columns.")
+                        "another column plus _smoothed/_lower/_upper/_status); rename the input columns.")
     return names, cols

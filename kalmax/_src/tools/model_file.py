@@ -4,6 +4,17 @@ JSON is human-readable and runs no code on load (unlike pickle). The file
 names its format and format version; readers refuse other versions rather
 than guess, and cap the file size and the model sizes so that a hostile or
 corrupt file cannot exhaust memory.
+
+Format versions:
+
+1. the first version. Its rates are per second for date-times and per unit
+   of the numbers for numeric timestamps; it has no time-unit entries (a
+   version-1 file that carries one is refused, since a reader of version 1
+   would ignore it and use the wrong unit).
+2. adds, in ``model``, ``time_unit`` (required: a unit name, or null for
+   numbers in their own unnamed unit), ``numeric_time_unit`` and
+   ``time_pattern`` (optional, null when absent). :func:`save_model` writes
+   version 2; version-1 files still load, with the units above.
 """
 
 from __future__ import annotations
@@ -16,9 +27,12 @@ from pathlib import Path
 from .atomic_outputs import AtomicOutputs
 from .errors import ModelFileError
 from .spec import KINDS, ModelSpec
+from .time_units import MAX_PATTERN_CHARS, UNITS, unit_names
 
 FORMAT_NAME = "kalmax-model"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
+READABLE_VERSIONS = (1, 2)
+V2_ENTRIES = ("time_unit", "numeric_time_unit", "time_pattern")  # model entries new in version 2
 MAX_MODEL_FILE_BYTES = 1 << 20  # 1 MiB: a model file holds a few hundred numbers
 MAX_DIMS = 16
 MAX_COLUMNS = 256
@@ -42,6 +56,9 @@ def spec_to_dict(spec: ModelSpec) -> dict:
             "states": list(spec.state_names()),
             "time_column": spec.time_column,
             "time_format": spec.time_format,
+            "time_unit": spec.time_unit,
+            "numeric_time_unit": spec.numeric_time_unit,
+            "time_pattern": spec.time_pattern,
             "jitter": spec.jitter,
             "parameters": params,
             "measurements": [
@@ -51,8 +68,9 @@ def spec_to_dict(spec: ModelSpec) -> dict:
         },
         "fit": dict(spec.fit) if spec.fit is not None else None,
         "notes": (
-            "Continuous-time model: parameters are in the units of the measurement columns and of "
-            "the time column (seconds when time_format is iso8601). Variances, not standard deviations."
+            "Continuous-time model: parameters are in the units of the measurement columns and per "
+            "time_unit (null: per unit of the numbers in the time column); a column that measures a "
+            "velocity or rate is in its units per time_unit too. Variances, not standard deviations."
         ),
     }
 
@@ -97,11 +115,11 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
         raise ModelFileError(f"{path}: " + _clip(
             f"format_version must be the integer {FORMAT_VERSION}; got {shown} (written by "
             f"{doc.get('written_by', 'unknown')!r})."))
-    if version != FORMAT_VERSION:
+    if version not in READABLE_VERSIONS:
         raise ModelFileError(f"{path}: " + _clip(
             f"model file format version {version!r} (written by {doc.get('written_by', 'unknown')}); "
-            f"this kalmax reads format version {FORMAT_VERSION} only. Refit the model with this version, "
-            "or use the kalmax version that wrote the file."
+            f"this kalmax reads format versions {' and '.join(map(str, READABLE_VERSIONS))}. Refit the model "
+            "with this version, or use the kalmax version that wrote the file."
         ))
     m = doc.get("model")
     _require(isinstance(m, dict), "the 'model' entry is missing or not an object.", path)
@@ -137,6 +155,28 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
     _require(fit is None or isinstance(fit, dict), "'fit' must be an object or null.", path)
     jitter = m.get("jitter", 0.0)
     _require(isinstance(jitter, (int, float)) and not isinstance(jitter, bool), "'jitter' must be a number.", path)
+    time_format = m.get("time_format", "number")
+    _require(isinstance(time_format, str) and time_format in ("number", "iso8601"),
+             "'time_format' must be \"number\" or \"iso8601\".", path)
+    if version == 1:
+        extra = [k for k in V2_ENTRIES if k in m]
+        _require(not extra, f"'{extra[0] if extra else ''}' is an entry of format version 2, but the file says "
+                            "format_version 1 (a version-1 reader would ignore it).", path)
+        # Version 1: rates per second for date-times, per unit of the numbers for numbers.
+        units = dict(time_unit="s" if time_format == "iso8601" else None, numeric_time_unit=None, time_pattern=None)
+    else:
+        _require("time_format" in m and "time_unit" in m,
+                 "a format version 2 model needs 'time_format' and 'time_unit' entries.", path)
+        units = {k: m.get(k) for k in V2_ENTRIES}
+        for k in ("time_unit", "numeric_time_unit"):
+            _require(units[k] is None or (isinstance(units[k], str) and units[k] in UNITS),
+                     f"'{k}' must be null or one of {unit_names()}.", path)
+        _require(units["time_pattern"] is None or (isinstance(units["time_pattern"], str)
+                                                   and len(units["time_pattern"]) <= MAX_PATTERN_CHARS),
+                 f"'time_pattern' must be null or a text of at most {MAX_PATTERN_CHARS} characters.", path)
+        _require(units["time_unit"] is not None or time_format == "number",
+                 "'time_unit' must name a unit for date-times (time_format iso8601); null is for numbers only.",
+                 path)
     try:
         return ModelSpec(
             kind=kind, dims=dims, time_column=tcol,
@@ -144,9 +184,10 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
             measured=tuple(e["state"] for e in meas),
             params=params,
             noise=tuple(float(e["noise_variance"]) for e in meas),
-            time_format=m.get("time_format", "number"),
+            time_format=time_format,
             jitter=float(jitter),
             fit=fit,
+            **units,
         )
     except ValueError as e:
         raise ModelFileError(f"{path}: invalid model: {_clip(str(e))}") from None

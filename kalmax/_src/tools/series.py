@@ -10,12 +10,14 @@ import datetime as _dt
 import decimal
 import math
 import re
+from fractions import Fraction
 from typing import Dict, Iterable, NamedTuple, Optional, Sequence
 
 import numpy as np
 
 from .errors import DataError
 from .tables import Instant, Unreadable
+from .time_units import UNITS
 
 # Words read as a missing measurement (compared without case and surrounding
 # spaces). A blank cell is always missing. The command line's --missing
@@ -42,25 +44,63 @@ _STYLE_WORDS = {
 }
 
 
+class Clock(NamedTuple):
+    """How the model's time axis was made from the time column (read by forecasts and the report).
+
+    unit: the time unit of ``Series.t`` (a name of ``time_units.UNITS``), or
+        None for numbers in the column's own, unnamed unit.
+    native_per_unit: exact number of *native* units in one unit of ``t``:
+        seconds for date-times, the column's numbers for numbers.
+    first, last: the exact first and last timestamps in native units
+        (seconds since 1970-01-01 UTC for date-times, the numbers themselves).
+    style: "number", "date", "zoned" or "unzoned" (see ``_STYLE_WORDS``).
+    pattern: the strptime pattern the date-times were read with (None: ISO 8601).
+    offset: the UTC offset that every row shares (date-times with a zone),
+        None when the rows carry different offsets or none at all.
+    """
+
+    unit: Optional[str]
+    native_per_unit: Fraction
+    first: decimal.Decimal
+    last: decimal.Decimal
+    style: str
+    pattern: Optional[str] = None
+    offset: Optional[_dt.timedelta] = None
+
+
 class Series(NamedTuple):
     """Measurements read from a table.
 
     times_raw: the time cells as read (written back unchanged).
-    t: (T,) float64 model times, relative to the first timestamp (seconds
-       for ISO 8601 date-times, file units for numbers). Each t[i] is the
-       exact difference time[i] - time[0], rounded once to float64.
+    t: (T,) float64 model times, relative to the first timestamp, in the
+       time unit of ``clock`` (seconds for date-times unless another unit was
+       asked for; the file's own units for numbers). Each t[i] is the exact
+       difference time[i] - time[0], divided exactly by the unit and rounded
+       once to float64.
     y: (T, p) float64 measurements, NaN where missing.
-    time_format: "number" or "iso8601".
+    time_format: "number" or "iso8601" (date-times, however they were written).
+    clock: how ``t`` was made (None for a series built by hand: numbers, no unit).
+    forecast: the last ``forecast`` rows are forecast rows appended past the
+       record (no measurements; see ``horizon.py``).
     """
 
     times_raw: list
     t: np.ndarray
     y: np.ndarray
     time_format: str
+    clock: Optional[Clock] = None
+    forecast: int = 0
 
     @property
     def mask(self) -> np.ndarray:
         return ~np.isnan(self.y)
+
+    @property
+    def unit(self) -> Optional[str]:
+        """The time unit of ``t`` (None: the numbers' own unit)."""
+        if self.clock is not None:
+            return self.clock.unit
+        return "s" if self.time_format == "iso8601" else None
 
 
 def _epoch_seconds(dt: _dt.datetime) -> decimal.Decimal:
@@ -78,7 +118,7 @@ def _parse_iso(s: str):
     except ValueError:
         pass
     else:
-        return _epoch_seconds(_dt.datetime(day.year, day.month, day.day)), "date"
+        return _epoch_seconds(_dt.datetime(day.year, day.month, day.day)), "date", None
     fraction = decimal.Decimal(0)
     text = s
     m = _ISO_FRACTION.match(s)
@@ -92,36 +132,74 @@ def _parse_iso(s: str):
         dt = _dt.datetime.fromisoformat(text)
     except ValueError:
         return None
-    return _EXACT.add(_epoch_seconds(dt), fraction), ("zoned" if dt.tzinfo is not None else "unzoned")
+    return _EXACT.add(_epoch_seconds(dt), fraction), ("zoned" if dt.tzinfo is not None else "unzoned"), \
+        dt.utcoffset()
 
 
-def _parse_time(cell):
-    """(exact value, format, style) of one time cell; None if unparseable.
+def _parse_pattern(s: str, pattern: str):
+    """(exact seconds since the epoch, style, offset) of a text read with a strptime pattern; None if it does not match."""
+    try:
+        dt = _dt.datetime.strptime(s, pattern)
+    except ValueError:
+        return None
+    return _epoch_seconds(dt), ("zoned" if dt.tzinfo is not None else "unzoned"), dt.utcoffset()
+
+
+def _parse_time(cell, pattern: Optional[str] = None):
+    """(exact value, format, style, UTC offset or None) of one time cell; None if unparseable.
 
     The value is a :class:`decimal.Decimal`: seconds since 1970-01-01 for
     date-times (format "iso8601"), the number itself for numbers ("number").
+    With a strptime ``pattern``, text cells (and integers, as their digits)
+    are read with it and nothing else.
     """
     if isinstance(cell, Instant):
-        return decimal.Decimal(cell.ns).scaleb(-9, context=_EXACT), "iso8601", ("zoned" if cell.zone else "unzoned")
+        value = decimal.Decimal(cell.ns).scaleb(-9, context=_EXACT)
+        return value, "iso8601", ("zoned" if cell.zone else "unzoned"), (_dt.timedelta(0) if cell.zone else None)
     if isinstance(cell, _dt.datetime):
-        return _epoch_seconds(cell), "iso8601", ("zoned" if cell.tzinfo is not None else "unzoned")
+        return _epoch_seconds(cell), "iso8601", ("zoned" if cell.tzinfo is not None else "unzoned"), cell.utcoffset()
     if isinstance(cell, _dt.date):
-        return _epoch_seconds(_dt.datetime(cell.year, cell.month, cell.day)), "iso8601", "date"
+        return _epoch_seconds(_dt.datetime(cell.year, cell.month, cell.day)), "iso8601", "date", None
     if isinstance(cell, bool):
         return None
+    if pattern is not None:
+        if isinstance(cell, int):
+            cell = str(cell)
+        if not isinstance(cell, str):
+            return None
+        parsed = _parse_pattern(cell.strip(), pattern)
+        return None if parsed is None else (parsed[0], "iso8601", parsed[1], parsed[2])
     if isinstance(cell, (int, float, decimal.Decimal)):
-        return decimal.Decimal(cell), "number", "number"
+        return decimal.Decimal(cell), "number", "number", None
     if isinstance(cell, str):
         s = cell.strip()
         try:
-            return decimal.Decimal(s), "number", "number"
+            return decimal.Decimal(s), "number", "number", None
         except (decimal.InvalidOperation, ValueError):
             pass
         parsed = _parse_iso(s)
         if parsed is None:
             return None
-        return parsed[0], "iso8601", parsed[1]
+        return parsed[0], "iso8601", parsed[1], parsed[2]
     return None
+
+
+def exact_time(cell, pattern: Optional[str] = None) -> Optional[decimal.Decimal]:
+    """The exact native value of one time cell (epoch seconds or the number); None if unparseable."""
+    parsed = _parse_time(cell, pattern)
+    return None if parsed is None else parsed[0]
+
+
+def to_model_time(value, first, native_per_unit: Fraction) -> float:
+    """(value − first) / native_per_unit, exact until one final rounding to float64."""
+    d = _EXACT.subtract(value, first)
+    if native_per_unit == 1:
+        return float(d)
+    num, den = d.as_integer_ratio()
+    try:
+        return (num * native_per_unit.denominator) / (den * native_per_unit.numerator)  # int / int: correctly rounded
+    except OverflowError:
+        return math.inf
 
 
 def _unreadable(cell: Unreadable, col, source):
@@ -174,7 +252,10 @@ def missing_words(words: Optional[Iterable[str]]) -> frozenset:
 def series_from_table(names: Sequence[str], cols: Dict[str, list], time_column: str,
                       columns: Sequence[str], *, source: str = "input",
                       time_format: Optional[str] = None,
-                      missing: Optional[Iterable[str]] = None) -> Series:
+                      missing: Optional[Iterable[str]] = None,
+                      time_unit: Optional[str] = None,
+                      numeric_time_unit: Optional[str] = None,
+                      time_pattern: Optional[str] = None) -> Series:
     """Pick and check the time and measurement columns of a table.
 
     ``missing``: the words read as a missing measurement, compared without
@@ -191,6 +272,14 @@ def series_from_table(names: Sequence[str], cols: Dict[str, list], time_column: 
     measurement cell, fewer than two rows, a measurement column with no
     observation at all, and (when ``time_format`` is given) timestamps of the
     other kind than the model was fitted on.
+
+    Time units (``time_units.UNITS``): date-times give ``t`` in ``time_unit``
+    (default seconds). Numbers are taken to be in ``time_unit`` already (no
+    conversion; None: their own unnamed unit), unless ``numeric_time_unit``
+    says what they count in: then they are converted exactly from that unit
+    to ``time_unit`` (which defaults to it). ``time_pattern``: a strptime
+    pattern that reads every text cell as a date-time (instead of numbers
+    and ISO 8601); a time without ``%z`` is read as UTC.
     """
     missing_set = missing_words(missing)
     wanted = [time_column] + list(columns)
@@ -205,16 +294,20 @@ def series_from_table(names: Sequence[str], cols: Dict[str, list], time_column: 
     exact = []
     fmt = style = None
     first_style_row = 0
+    offset0, offsets_differ = None, False
     for i, cell in enumerate(raw):
         if isinstance(cell, Unreadable):
             raise _unreadable(cell, time_column, source)
-        parsed = _parse_time(cell)
+        parsed = _parse_time(cell, time_pattern)
         if parsed is None or (isinstance(cell, str) and not cell.strip()) or cell is None:
+            if time_pattern is not None:
+                raise DataError(f"{source}: time column {time_column!r}, data row {i + 1}: {cell!r} does not match "
+                                f"the time pattern {time_pattern!r}.")
             raise DataError(f"{source}: time column {time_column!r}, data row {i + 1}: {cell!r} is neither a "
                             "number nor an ISO 8601 date-time (e.g. 2024-05-01T12:00:00Z).")
-        value, f, st = parsed
+        value, f, st, offset = parsed
         if fmt is None:
-            fmt, style, first_style_row = f, st, i
+            fmt, style, first_style_row, offset0 = f, st, i, offset
         elif f != fmt:
             raise DataError(f"{source}: time column {time_column!r} mixes numbers and date-times "
                             f"(data row {i + 1}: {cell!r}).")
@@ -223,12 +316,25 @@ def series_from_table(names: Sequence[str], cols: Dict[str, list], time_column: 
                             f"{first_style_row + 1} ({raw[first_style_row]!r}) is {_STYLE_WORDS[style]}, data row "
                             f"{i + 1} ({cell!r}) is {_STYLE_WORDS[st]}. Write every timestamp the same way "
                             "(e.g. all with a time zone, such as 2024-05-01T12:00:00Z).")
+        elif offset != offset0:
+            offsets_differ = True
         if not value.is_finite() or not math.isfinite(float(value)):
             raise DataError(f"{source}: time column {time_column!r}, data row {i + 1}: {cell!r} is not finite.")
         exact.append(value)
     if time_format is not None and fmt != time_format:
         raise DataError(f"{source}: the model was fitted on {time_format} timestamps, but time column "
                         f"{time_column!r} holds {fmt} values.")
+    if fmt == "iso8601":
+        if numeric_time_unit is not None:
+            raise DataError(f"{source}: a unit for numeric timestamps ({numeric_time_unit}) was given, but time "
+                            f"column {time_column!r} holds date-times.")
+        unit = time_unit or "s"
+        native_per_unit = UNITS[unit]
+    elif numeric_time_unit is not None:
+        unit = time_unit or numeric_time_unit
+        native_per_unit = UNITS[unit] / UNITS[numeric_time_unit]
+    else:
+        unit, native_per_unit = time_unit, Fraction(1)
     bad = [i for i in range(1, T) if exact[i] <= exact[i - 1]]  # exact comparisons
     if bad:
         i = bad[0]
@@ -237,7 +343,10 @@ def series_from_table(names: Sequence[str], cols: Dict[str, list], time_column: 
                         f"{what} data row {i} ({raw[i - 1]!r}); {len(bad)} such place(s). Sort the rows by "
                         "time and merge rows that share a timestamp.")
     first = exact[0]
-    t = np.array([float(_EXACT.subtract(v, first)) for v in exact])
+    if native_per_unit == 1:
+        t = np.array([float(_EXACT.subtract(v, first)) for v in exact])
+    else:
+        t = np.array([to_model_time(v, first, native_per_unit) for v in exact])
     if not np.all(np.isfinite(t)):
         raise DataError(f"{source}: time column {time_column!r} spans more than the floating-point range.")
     dt = np.diff(t)
@@ -247,6 +356,9 @@ def series_from_table(names: Sequence[str], cols: Dict[str, list], time_column: 
         raise DataError(f"{source}: data rows {i} and {i + 1} of time column {time_column!r} ({raw[i - 1]!r}, "
                         f"{raw[i]!r}) are too close together to tell apart in float64 at their distance from the "
                         f"first timestamp ({raw[0]!r}); {close.size} such place(s).")
+    clock = Clock(unit=unit, native_per_unit=native_per_unit, first=first, last=exact[-1], style=style,
+                  pattern=time_pattern if fmt == "iso8601" else None,
+                  offset=None if (offsets_differ or style != "zoned") else offset0)
     y = np.empty((T, len(columns)))
     for j, c in enumerate(columns):
         y[:, j] = [_parse_value(cell, c, i + 1, source, missing_set) for i, cell in enumerate(cols[c])]
@@ -258,13 +370,13 @@ def series_from_table(names: Sequence[str], cols: Dict[str, list], time_column: 
     if empty:
         raise DataError(f"{source}: column(s) {', '.join(repr(c) for c in empty)} hold no observation at all; "
                         "drop them from the measured columns.")
-    return Series(times_raw=list(raw), t=t, y=y, time_format=fmt)
+    return Series(times_raw=list(raw), t=t, y=y, time_format=fmt, clock=clock)
 
 
 def first_datetime(series: Series) -> _dt.datetime:
     """The first timestamp of an ``iso8601`` series as a datetime in UTC (microseconds, truncated)."""
-    parsed = _parse_time(series.times_raw[0])
-    micro = int(parsed[0].scaleb(6, context=_EXACT).to_integral_value(rounding=decimal.ROUND_FLOOR))
+    first = series.clock.first if series.clock is not None else _parse_time(series.times_raw[0])[0]
+    micro = int(first.scaleb(6, context=_EXACT).to_integral_value(rounding=decimal.ROUND_FLOOR))
     return _EPOCH + _dt.timedelta(microseconds=micro)
 
 

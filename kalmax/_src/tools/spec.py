@@ -19,6 +19,7 @@ import numpy as np
 from .. import continuous
 from ..continuous import ContinuousModel
 from ..model import StateSpace
+from .time_units import UNITS, check_pattern, unit_names
 
 
 @dataclasses.dataclass(frozen=True)
@@ -90,12 +91,23 @@ class ModelSpec:
             (``q``: diffusion / spectral density, per axis for the chain
             kinds; ``frequency`` in cycles per time unit; ``damping`` ratio).
         noise: measurement noise variance of each column, (p,).
-        time_format: ``"number"`` (time column holds numbers, used as they
-            are) or ``"iso8601"`` (date-times, converted to seconds).
+        time_format: ``"number"`` (time column holds numbers) or
+            ``"iso8601"`` (date-times: ISO 8601 text, Parquet timestamps, or
+            text read with ``time_pattern``).
         jitter: added to the diagonal of every discrete Q (keeps it positive
             definite for very short steps).
         fit: free-form record of how the parameters were obtained (objective,
             steps, errors); informational only.
+        time_unit: the unit of time the rates are per (a name of
+            ``time_units.UNITS``: ``"s"``, ``"min"``, ``"h"``, ``"day"``, ...).
+            Date-times are converted to it (default ``"s"``); numbers are in
+            it already unless ``numeric_time_unit`` says otherwise. None
+            (numbers only): the numbers' own, unnamed unit.
+        numeric_time_unit: what numeric timestamps count in (e.g. ``"ms"``
+            for epoch milliseconds); they are then converted exactly to
+            ``time_unit``. None: no conversion.
+        time_pattern: the strptime pattern that date-times were read with
+            (None: ISO 8601); ``kalmax apply`` reads new data with it too.
     """
 
     kind: str
@@ -108,8 +120,13 @@ class ModelSpec:
     time_format: str = "number"
     jitter: float = 0.0
     fit: Optional[Mapping[str, object]] = None
+    time_unit: Optional[str] = None
+    numeric_time_unit: Optional[str] = None
+    time_pattern: Optional[str] = None
 
     def __post_init__(self):
+        if self.time_format == "iso8601" and self.time_unit is None:
+            object.__setattr__(self, "time_unit", "s")  # date-times: rates per second unless told otherwise
         check_spec(self)
 
     @property
@@ -197,8 +214,22 @@ def check_spec(spec: ModelSpec) -> None:
     for k in kind.params:
         _check_positive(k, spec.params[k], param_shape(kind, k, spec.dims))
     _check_positive("noise", spec.noise, (len(spec.columns),))
-    if spec.time_format not in ("number", "iso8601"):
+    if not isinstance(spec.time_format, str) or spec.time_format not in ("number", "iso8601"):
         raise ValueError(f"time_format must be 'number' or 'iso8601'; got {spec.time_format!r}.")
+    for name in ("time_unit", "numeric_time_unit"):
+        unit = getattr(spec, name)
+        if unit is not None and not (isinstance(unit, str) and unit in UNITS):
+            raise ValueError(f"{name} must be one of {unit_names()} (or null); got {unit!r}.")
+    if spec.numeric_time_unit is not None:
+        if spec.time_format != "number":
+            raise ValueError("numeric_time_unit applies to numeric timestamps only (time_format 'number'), "
+                             f"not to {spec.time_format!r}.")
+        if spec.time_unit is None:
+            raise ValueError("numeric_time_unit needs a time_unit to convert the numbers to.")
+    if spec.time_pattern is not None:
+        if spec.time_format != "iso8601":
+            raise ValueError("time_pattern applies to date-times only (time_format 'iso8601').")
+        check_pattern(spec.time_pattern)
     if not (isinstance(spec.jitter, (int, float)) and np.isfinite(spec.jitter) and spec.jitter >= 0):
         raise ValueError(f"jitter must be a finite number >= 0; got {spec.jitter!r}.")
 
