@@ -3,7 +3,8 @@
 Invented data (simulated here, seeded): irregular timestamps with steps
 uniform in [0.5, 1.5], 10 % of the cells missing;
   random-walk         one column, level diffusion q = 0.2 per unit time, noise sd 0.5;
-  constant-velocity   two columns (east, north), velocity diffusion 0.01, noise sd 0.5.
+  constant-velocity   two columns (east, north), velocity diffusion q = 0.01, noise sd 0.5;
+both sampled exactly from the continuous-time model at the irregular stamps.
 
 Each model is fitted twice by `python -m kalmax fit` in a fresh process with
 an empty compilation cache folder: the first run compiles everything, the
@@ -39,12 +40,25 @@ def write_data(folder: Path, model: str, rows: int) -> Path:
     t = np.cumsum(rng.uniform(0.5, 1.5, rows))
     t -= t[0]
     path = folder / f"{model}.csv"
+    dt = np.diff(t)
     if model == "random-walk":
-        y = np.cumsum(rng.normal(0, np.sqrt(0.2), rows))[:, None] + rng.normal(0, 0.5, (rows, 1))
+        # Exact sampling of the continuous-time model: increments N(0, q Δ).
+        level = np.concatenate([[0.0], np.cumsum(rng.normal(0, 1, rows - 1) * np.sqrt(0.2 * dt))])
+        y = level[:, None] + rng.normal(0, 0.5, (rows, 1))
         header = "t,y"
     else:
-        v = np.cumsum(rng.normal(0, 0.1, (rows, 2)), axis=0)
-        y = np.cumsum(v, axis=0) + rng.normal(0, 0.5, (rows, 2))
+        # Exact sampling per axis: (Δpos, Δvel) ~ N(0, q [[Δ³/3, Δ²/2], [Δ²/2, Δ]]) through its
+        # Cholesky factor, plus the drift vel·Δ of the position.
+        q = 0.01
+        y = np.empty((rows, 2))
+        for k in range(2):
+            z1, z2 = rng.normal(size=(2, rows - 1))
+            l11 = np.sqrt(q * dt**3 / 3)
+            l21 = (q * dt**2 / 2) / l11
+            l22 = np.sqrt(q * dt - l21**2)
+            vel = np.concatenate([[0.0], np.cumsum(l21 * z1 + l22 * z2)])
+            pos = np.concatenate([[0.0], np.cumsum(vel[:-1] * dt + l11 * z1)])
+            y[:, k] = pos + rng.normal(0, 0.5, rows)
         header = "t,east,north"
     y[rng.random(y.shape) < 0.1] = np.nan
     with open(path, "w") as f:
