@@ -55,6 +55,17 @@ from ._src.tools.model_file import load_model as load_model
 from ._src.tools.model_file import save_model as save_model
 from ._src.tools.spec import ModelSpec as ModelSpec
 
+# Composed models: a sum of components (level, trend, seasonal, cycle, oscillator, regression).
+from ._src.components import Component as Component
+from ._src.components import ComposedModel as ComposedModel
+from ._src.components import compose_components as compose_components
+from ._src.components import cycle_component as cycle_component
+from ._src.components import level_component as level_component
+from ._src.components import oscillator_component as oscillator_component
+from ._src.components import regression_component as regression_component
+from ._src.components import seasonal_component as seasonal_component
+from ._src.components import trend_component as trend_component
+
 # Scale: data-parallel helpers over a device mesh (the solver backends are in _src/backends).
 from ._src.sharding import batch_mesh as batch_mesh
 from ._src.sharding import data_parallel as data_parallel

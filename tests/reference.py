@@ -504,6 +504,25 @@ def dense_posterior(model_dict, y, mask=None):
 # ---------------------------------------------------------------------------
 
 
+
+def discretise_by_ode(F, G, d):
+    """Discretisation of dx = F x dt + dβ (E dβ dβᵀ = G dt) over a step d, by
+    routes independent of kalmax's: A = expm(F d) (SciPy's Padé scaling and
+    squaring) and Q from integrating the Lyapunov ODE dP/ds = F P + P Fᵀ + G,
+    P(0) = 0, to s = d (SciPy's DOP853)."""
+    from scipy import integrate
+
+    F = np.asarray(F, float)
+    G = np.asarray(G, float)
+    n = F.shape[0]
+
+    def rhs(_, p):
+        P = p.reshape(n, n)
+        return (F @ P + P @ F.T + G).ravel()
+
+    sol = integrate.solve_ivp(rhs, (0.0, d), np.zeros(n * n), method="DOP853", rtol=1e-11, atol=1e-14)
+    return sla.expm(F * d), sol.y[:, -1].reshape(n, n)
+
 def _random_spd(rng, k, scale=1.0, floor=0.5):
     """Well-conditioned random SPD matrix (eigenvalues roughly in
     [floor, floor + 4] times ``scale``), generally full (not diagonal)."""

@@ -18,7 +18,9 @@ import jax.numpy as jnp
 import numpy as np
 import optax
 import pytest
-from scipy import integrate, linalg
+from scipy import linalg
+
+from reference import discretise_by_ode
 
 import kalmax as kx
 
@@ -33,16 +35,7 @@ def _ca_closed_form(q, d):
     return q * np.array([[d**5 / 20, d**4 / 8, d**3 / 6], [d**4 / 8, d**3 / 3, d**2 / 2], [d**3 / 6, d**2 / 2, d]])
 
 
-def _ode_reference(F, G, d):
-    """A = expm(F Δ) (SciPy) and Q from integrating dP/ds = F P + P Fᵀ + G, P(0) = 0, to s = Δ."""
-    n = F.shape[0]
-
-    def rhs(_, p):
-        P = p.reshape(n, n)
-        return (F @ P + P @ F.T + G).ravel()
-
-    sol = integrate.solve_ivp(rhs, (0.0, d), np.zeros(n * n), method="DOP853", rtol=1e-11, atol=1e-14)
-    return linalg.expm(F * d), sol.y[:, -1].reshape(n, n)
+_ode_reference = discretise_by_ode
 
 
 def test_constant_velocity_matches_closed_form():

@@ -48,20 +48,22 @@ def _pivot_ratio(Lt, Ht):
     return jnp.min(d * d / jnp.where(h > 0, h, 1))
 
 
-def factor_solve(diag, sub, rhs):
+def factor_solve(diag, sub, rhs, pivot_tol=None):
     """Factor H and solve H x = rhs in one forward and one backward sweep.
 
     Args:
         diag: (T, n, n) diagonal blocks of H.
         sub: (T-1, n, n) or (n, n) sub-diagonal blocks H_{t+1,t}.
         rhs: (T, n).
+        pivot_tol: smallest accepted (pivot)²/H_ii; default
+            ``tolerances.pivot_tolerance(dtype, n)`` (the flat-prior value).
 
     Returns:
         (x, BlockFactor): x of shape (T, n); NaN everywhere if the factorisation
         failed (non-positive or collapsed pivot).
     """
     T, n = rhs.shape
-    tol = pivot_tolerance(rhs.dtype, n)
+    tol = pivot_tolerance(rhs.dtype, n) if pivot_tol is None else pivot_tol
     L0 = chol(diag[0])
     z0 = lsolve_vec(L0, rhs[0])
     r0 = _pivot_ratio(L0, diag[0])

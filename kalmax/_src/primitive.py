@@ -19,6 +19,17 @@ operations: no tape through the time recursion, and every input (A, C, Q, R,
 b, d, the prior and the measurements y) gets its gradient from the same
 expression.
 
+Adjoint refinement (float32 arithmetic): the adjoint solve uses the stored
+factor of H, which in float32 carries the same rounding as the forward
+solve's first answer (up to κ(H)·eps32 relative; ~1e-2 on the constant-
+velocity tracking model of tests/test_float32_ordinary.py). The forward
+answer is refined (``accuracy.refine``); the adjoint gets the same treatment
+without a verdict: two corrections u ← u + H̃⁻¹(x̄ − H u), with H u formed from
+the model's whitened blocks like the forward residual (−∇J of the problem
+with zero data and offsets), so H is never formed. Each correction multiplies
+the error by about κ(H)·eps, as in the forward pass. Backends that compute
+in double (the compiled kernel) and float64 problems skip it.
+
 Backends: the solve itself is pluggable so that compiled kernels and
 parallel-in-time variants can sit behind the same VJP (``backends/``: what a
 backend is in ``base.py``, the table in ``registry.py``).
@@ -29,9 +40,10 @@ from __future__ import annotations
 from functools import partial
 import jax
 import jax.numpy as jnp
+import numpy as np
 
-from . import blocktri
-from .backends.base import Backend
+from . import accuracy, blocktri
+from .backends.base import Backend, arithmetic_dtype
 from .backends.registry import get_backend, resolve_method
 from .model import StateSpace
 from .normal_equations import stationarity_pairing
@@ -61,7 +73,7 @@ def _means_bwd(method, res, x_bar):
     if backend.gradients is not None:
         model_bar, y_bar = backend.gradients(model, y, w, x, factor, x_bar)
         return model_bar, y_bar, jnp.zeros_like(w)
-    u = backend.adjoint(factor, x_bar)
+    u = _adjoint(backend, model, w, factor, x_bar)
 
     def pairing(model_, y_):
         return stationarity_pairing(model_, y_, w, x, u)
@@ -72,6 +84,21 @@ def _means_bwd(method, res, x_bar):
 
 
 _means.defvjp(_means_fwd, _means_bwd)
+
+ADJOINT_CORRECTIONS = 2
+
+
+def _adjoint(backend: Backend, model: StateSpace, w, factor, v):
+    """u = H⁻¹ v with the stored factor; refined when the factor is float32 (module docstring)."""
+    u = backend.adjoint(factor, v)
+    if arithmetic_dtype(backend, v.dtype) != np.float32:
+        return u
+    # H u = −(the residual of the problem with no data and no offsets at u).
+    bare = model.replace(b=None, d=None, x0_mean=None)
+    zeros = jnp.zeros(w.shape, v.dtype)
+    for _ in range(ADJOINT_CORRECTIONS):
+        u = u + backend.adjoint(factor, v + accuracy.residual(bare, zeros, w, u))
+    return u
 
 
 def smoothed_means(model: StateSpace, y, w, method: str = "auto"):

@@ -6,10 +6,12 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from . import blocktri
+from . import blocktri, tolerances
+from .backends.base import arithmetic_dtype
 from .checks import canonicalize
 from .model import StateSpace
 from .normal_equations import assemble
+from .primitive import get_backend, resolve_method, smoothed_means
 
 
 def _cov_problems(name: str, S, rtol: float) -> list:
@@ -42,9 +44,9 @@ def _is_traced(tree) -> bool:
 
 
 @jax.jit
-def _factor(model, y, w):
+def _factor(model, y, w, pivot_tol):
     system = assemble(model, y, w)
-    x, factor = blocktri.factor_solve(system.diag, system.sub, system.rhs)
+    x, factor = blocktri.factor_solve(system.diag, system.sub, system.rhs, pivot_tol)
     return system, factor
 
 
@@ -96,10 +98,17 @@ def condition_estimate(model: StateSpace, y, mask=None) -> float:
     r"""Estimated 1-norm condition number κ₁(H) of the normal-equation matrix.
 
     H is the posterior precision of the states (see ``normal_equations``);
-    the smoothed means solve H x = g, so κ₁(H)·eps bounds their relative
-    error to first order. Computed in float64 when ``jax_enable_x64`` is on
-    (else in the input dtype); inf when H is singular to working precision
-    (the states are not identified). O(T n³) once plus a few O(T n²) solves.
+    the smoothed means solve H x = g, so κ₁(H)·eps bounds the relative error
+    of a plain solve to first order. Always computed in float64 (x64 is
+    switched on for this call only), whatever the input dtype, so a float32
+    problem gets the condition number of the problem itself, not of its
+    float32 factorisation. inf when H is singular to float64 working
+    precision with a flat prior (the states are not identified). With a
+    proper prior H is positive definite by construction; if even the
+    float64 factorisation breaks down, the result is the lower bound
+    κ₁(H) ≥ κ₂(H) ≥ 1/min_t,i (pivot²/H_ii) > 1/pivot_tolerance, i.e.
+    ≈ 4.5e14/n (``tolerances.pivot_tolerance``). O(T n³) once plus a few
+    O(T n²) solves.
 
     Example:
         >>> import jax.numpy as jnp, kalmax as kx
@@ -108,18 +117,26 @@ def condition_estimate(model: StateSpace, y, mask=None) -> float:
         True
     """
     model, y, mask, dims, dtype = canonicalize(model, y, mask)
-    work = jnp.float64 if jax.config.jax_enable_x64 else dtype
-    model = jax.tree_util.tree_map(lambda a: jnp.asarray(a, work), model)
-    y = jnp.where(mask, y, 0).astype(work)
-    system, factor = _factor(model, y, mask.astype(work))
-    if not bool(factor.ok):
-        return float("inf")
-    est = _one_norm(system) * _inverse_one_norm(factor, (dims.T, dims.n), work)
-    return est if np.isfinite(est) else float("inf")
+    flat = model.x0_cov is None
+    tol = tolerances.pivot_tolerance(np.float64, dims.n, flat_prior=flat)
+    # Host copies first: under x64 off the arrays are float32 and must be
+    # widened before the float64 context builds anything from them.
+    model = jax.tree_util.tree_map(lambda a: np.asarray(a, np.float64), model)
+    y = np.where(np.asarray(mask), np.asarray(y, np.float64), 0.0)
+    w = np.asarray(mask, np.float64)
+    with jax.enable_x64(True):
+        model = jax.tree_util.tree_map(jnp.asarray, model)
+        system, factor = _factor(model, jnp.asarray(y), jnp.asarray(w), jnp.float64(tol))
+        if not bool(factor.ok):
+            return float("inf") if flat else 1.0 / tol
+        est = _one_norm(system) * _inverse_one_norm(factor, (dims.T, dims.n), jnp.float64)
+    if not np.isfinite(est):
+        return float("inf") if flat else 1.0 / tol
+    return est
 
 
 def validate(model: StateSpace, y, mask=None, *, rtol: float = 1e-6,
-             max_error_bound: float = 0.1) -> None:
+             max_error_bound: float = 0.1, method: str = "auto") -> None:
     """Check a model and data for problems that shapes alone cannot reveal.
 
     Call it outside ``jit`` (it reads values). It raises one ``ValueError``
@@ -131,15 +148,21 @@ def validate(model: StateSpace, y, mask=None, *, rtol: float = 1e-6,
     - Q, R or x0_cov not symmetric (relative tolerance ``rtol``) or not
       positive definite,
     - a flat prior with no observed entry at all (states not identified),
-    - a problem too ill-conditioned for its dtype: when the estimated
-      condition number of the normal equations times the dtype's machine
-      epsilon, κ₁(H)·eps — a first-order bound on the relative error of the
-      smoothed means of a plain solve — exceeds ``max_error_bound``.
+    - what ``smooth`` itself will do: the check runs the solve (``method``,
+      the input dtype) and, when it returns NaN, says why — the states are
+      not identified (H singular even in float64, with a flat prior), or the
+      problem is too ill-conditioned for the arithmetic of that backend —
+      with the estimated condition number and the fixes (float64; for
+      float32 on CPU, ``method="cpu"``, which computes float32 problems in
+      double; rescaling; more prior information);
+    - a problem close to the limit of that arithmetic even where ``smooth``
+      succeeds: the estimated condition number of the normal equations times
+      the machine epsilon of the arithmetic (float64 for ``method="cpu"``,
+      whatever the input dtype), κ₁(H)·eps — a first-order bound on the
+      relative error of a plain solve — above ``max_error_bound``.
       (``smooth`` refines its answer and returns NaN when the estimated error
-      stays above its bar, 1e-6 in float64 and 1e-3 in float32; this check
-      says in advance, and in words, why such a problem may come back NaN.
-      When H is singular to working precision smooth returns NaN itself,
-      which validate leaves alone.)
+      stays above its bar, 1e-6 in float64 and 1e-3 in float32; a finite
+      answer passed that check.)
 
     Args:
         model: :class:`StateSpace`.
@@ -147,7 +170,9 @@ def validate(model: StateSpace, y, mask=None, *, rtol: float = 1e-6,
         mask: (T, p) bool, True = observed; default ``~isnan(y)``.
         rtol: relative tolerance for the symmetry check.
         max_error_bound: largest acceptable κ₁(H)·eps; None skips the
-            conditioning check (it costs one factorisation and a few solves).
+            conditioning checks (they cost one solve, one factorisation and a
+            few solves with it).
+        method: the solver backend whose verdict is checked, as in ``smooth``.
 
     Example:
         >>> model = kx.StateSpace(A=jnp.eye(1), C=jnp.eye(1), Q=jnp.eye(1), R=jnp.eye(1))
@@ -190,17 +215,53 @@ def validate(model: StateSpace, y, mask=None, *, rtol: float = 1e-6,
             "(give model.x0_mean/x0_cov or observe something)."
         )
     if not problems and max_error_bound is not None:
-        # Only for otherwise valid problems: NaN/non-PD inputs make the estimate meaningless.
-        cond = condition_estimate(model, y, mask)
-        eps = float(np.finfo(dtype).eps)
-        # cond = inf (H singular to working precision, states not identified) is
-        # left alone: smooth reports it itself by returning NaN.
-        if np.isfinite(cond) and cond * eps > max_error_bound:
-            problems.append(
-                f"the problem is too ill-conditioned for {np.dtype(dtype).name}: estimated condition number "
-                f"{cond:.2e} times eps {eps:.2e} = {cond * eps:.2e} > max_error_bound={max_error_bound:g}, so "
-                "smooth may return NaN (it does when refinement cannot bring its estimated error under "
-                "its bar); use float64, rescale, or add prior information."
-            )
+        # Only for otherwise valid problems: NaN/non-PD inputs make these meaningless.
+        problems.extend(_conditioning_problems(model, y, mask, dtype, max_error_bound, method))
     if problems:
         raise ValueError("invalid smoothing problem:\n  - " + "\n  - ".join(problems))
+
+
+def _conditioning_problems(model, y, mask, dtype, max_error_bound, method) -> list:
+    """What smooth will do with a valid problem, and why, in words (see validate)."""
+    name = resolve_method(method)
+    arith = arithmetic_dtype(get_backend(name), dtype)
+    eps = float(np.finfo(arith).eps)
+    bar = tolerances.trusted_error(dtype)
+    w = jnp.asarray(mask, dtype)
+    x = np.asarray(smoothed_means(model, jnp.where(jnp.asarray(mask), y, 0).astype(dtype), w, name))
+    cond = condition_estimate(model, y, mask)
+    where = f"method={name!r}, {np.dtype(dtype).name} input"
+    where += f", {arith.name} arithmetic" if arith != np.dtype(dtype) else ""
+    if not np.all(np.isfinite(x)):
+        if not np.isfinite(cond):
+            return [
+                f"smooth returns NaN ({where}): the states are not identified (or too nearly so for "
+                "float64) — the normal-equation matrix is singular to float64 working precision, as when a "
+                "direction of the states is reached by no observation and no prior; give "
+                "model.x0_mean/x0_cov or observe more."
+            ]
+        fixes = []
+        if arith != np.dtype(np.float64):
+            fixes.append("use float64 (jax.config.update('jax_enable_x64', True) and float64 arrays)")
+            if np.dtype(dtype) == np.float32 and jax.default_backend() == "cpu":
+                from .backends.registry import is_available
+                if is_available("cpu"):
+                    fixes.append("or method='cpu' (the compiled kernel computes float32 problems in double)")
+        fixes.append("rescale the problem (units in which Q, R and the prior covariance are within a few "
+                     "orders of magnitude of one another)")
+        fixes.append("or add information (a prior on x_0, a floor on Q)")
+        bound = " at least" if model.x0_cov is not None and cond >= 0.99 / tolerances.pivot_tolerance(
+            np.float64, np.shape(model.A)[-1], flat_prior=False) else ""
+        return [
+            f"smooth returns NaN ({where}): its refined answer cannot reach the accuracy bar of {bar:g} "
+            f"(estimated relative error) in {arith.name} arithmetic; the estimated condition number of the "
+            f"normal equations is{bound} {cond:.2e}, so κ·eps = {cond * eps:.2e}. Fixes: " + "; ".join(fixes) + "."
+        ]
+    if np.isfinite(cond) and cond * eps > max_error_bound:
+        return [
+            f"the problem is too ill-conditioned for {arith.name} arithmetic ({where}): estimated condition "
+            f"number {cond:.2e} times eps {eps:.2e} = {cond * eps:.2e} > max_error_bound={max_error_bound:g}. "
+            "smooth's answer passed its accuracy check here, but a problem this close to the limit may come "
+            "back NaN after small changes; use float64, rescale, or add prior information."
+        ]
+    return []

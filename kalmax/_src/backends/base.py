@@ -26,7 +26,9 @@ from __future__ import annotations
 import dataclasses
 from typing import Callable, NamedTuple, Optional
 
-from .. import accuracy
+import numpy as np
+
+from .. import accuracy, tolerances
 from ..normal_equations import assemble
 
 
@@ -47,6 +49,8 @@ class Backend(NamedTuple):
         log p(y) and its gradient w.r.t. every model field and y from the
         stored factor, in one pass (a compiled kernel). None: the JAX route
         of ``likelihood.py`` (band of H⁻¹, then autodiff of per-step terms).
+    float32_in_double: True when float32 problems are factored and solved
+        in double precision (the compiled kernel); False: in float32.
     """
 
     forward: Callable
@@ -55,6 +59,14 @@ class Backend(NamedTuple):
     band_inverse: Optional[Callable] = None
     gradients: Optional[Callable] = None
     log_likelihood: Optional[Callable] = None
+    float32_in_double: bool = False
+
+
+def arithmetic_dtype(backend: Backend, dtype):
+    """The precision ``backend`` computes a ``dtype`` problem in."""
+    if backend.float32_in_double and np.dtype(dtype) == np.float32:
+        return np.dtype(np.float64)
+    return np.dtype(dtype)
 
 
 class Unavailable(NamedTuple):
@@ -75,8 +87,10 @@ def checked_solve(model, y, w, factor_solve, solve):
 
     Args:
         model, y, w: the canonicalised problem.
-        factor_solve: ``(diag, sub, rhs) -> (x, factor)`` with ``factor.ok``
-            the scalar verdict of the factorisation (x NaN when it failed).
+        factor_solve: ``(diag, sub, rhs, pivot_tol) -> (x, factor)`` with
+            ``factor.ok`` the scalar verdict of the factorisation (x NaN when
+            it failed); ``pivot_tol`` from ``tolerances.pivot_tolerance``,
+            which depends on whether x_0 has a prior.
         solve: ``(factor, v) -> H⁻¹ v`` with that factor.
 
     Returns:
@@ -85,6 +99,7 @@ def checked_solve(model, y, w, factor_solve, solve):
         ``NormalEquations`` (for backends that keep parts of it).
     """
     system = assemble(model, y, w)
-    x, factor = factor_solve(system.diag, system.sub, system.rhs)
+    tol = tolerances.pivot_tolerance(y.dtype, model.A.shape[-1], flat_prior=model.x0_cov is None)
+    x, factor = factor_solve(system.diag, system.sub, system.rhs, tol)
     x, ok = accuracy.refine(model, y, w, x, factor.ok, factor, solve)
     return x, with_ok(factor, ok), system

@@ -116,13 +116,14 @@ def _pivot_ratios(L, h):
     return jnp.min(d * d / jnp.where(h > 0, h, 1))
 
 
-def factor_solve(diag, sub, rhs):
+def factor_solve(diag, sub, rhs, pivot_tol=None):
     """Factor H by cyclic reduction and solve H x = rhs.
 
     Args:
         diag: (T, n, n) diagonal blocks of H (symmetric positive definite H).
         sub: (T-1, n, n) or (n, n) sub-diagonal blocks H_{t+1,t}.
         rhs: (T, n).
+        pivot_tol: as in ``blocktri.factor_solve``.
 
     Returns:
         (x (T, n), ReductionFactor); x is NaN when a pivot collapsed, as in
@@ -160,7 +161,7 @@ def factor_solve(diag, sub, rhs):
         zs.append((N, z))
     root = chol(D[0])
     ratio = jnp.minimum(ratio, _pivot_ratios(root, h[0]))
-    ok = ratio > pivot_tolerance(dtype, n)
+    ok = ratio > (pivot_tolerance(dtype, n) if pivot_tol is None else pivot_tol)
     factor = ReductionFactor(levels=tuple(levels), root=root, ok=ok, sizes=tuple(N for N, _ in zs))
     x = _back_substitute(factor, [z for _, z in zs], g[0])
     return jnp.where(ok, x, jnp.nan), factor

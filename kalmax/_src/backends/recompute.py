@@ -59,13 +59,14 @@ def default_chunk(T: int) -> int:
     return max(1, math.isqrt(max(T - 1, 0)) + 1)
 
 
-def checkpointed_solve(diag, sub, rhs, chunk: int | None = None):
+def checkpointed_solve(diag, sub, rhs, chunk: int | None = None, pivot_tol=None):
     """Solve H x = rhs by block Cholesky without storing the factor.
 
     Args:
         diag: (T, n, n) diagonal blocks; sub: (T-1, n, n) or (n, n) blocks
             H_{t+1,t}; rhs: (T, n).
         chunk: steps per checkpoint (default ≈ √T).
+        pivot_tol: as in ``blocktri.factor_solve``.
 
     Returns:
         (x (T, n), log|H|, ok): x is NaN when a pivot collapsed, as in
@@ -75,7 +76,7 @@ def checkpointed_solve(diag, sub, rhs, chunk: int | None = None):
     dtype = rhs.dtype
     K = default_chunk(T) if chunk is None else int(chunk)
     C = -(-T // K)
-    tol = pivot_tolerance(dtype, n)
+    tol = pivot_tolerance(dtype, n) if pivot_tol is None else pivot_tol
     zero_nn = jnp.zeros((n, n), dtype)
 
     def coupling(t):
@@ -160,19 +161,25 @@ class _Blocks(NamedTuple):
     ok: object
 
 
-def _blocks_factor_solve(diag, sub, rhs):
-    x, ld, ok = checkpointed_solve(diag, sub, rhs)
+def _blocks_factor_solve(diag, sub, rhs, pivot_tol=None):
+    x, ld, ok = checkpointed_solve(diag, sub, rhs, pivot_tol=pivot_tol)
     return x, _Blocks(diag, sub, ld, ok)
 
 
+# Solves with a factor whose verdict is already known (blocks.ok, factor.ok)
+# re-factor without a pivot check of their own (pivot_tol = −1 accepts every
+# pivot) and take the stored verdict instead.
+
+
 def _blocks_solve(blocks: _Blocks, v):
-    return checkpointed_solve(blocks.diag, blocks.sub, v)[0]
+    x = checkpointed_solve(blocks.diag, blocks.sub, v, pivot_tol=-1.0)[0]
+    return jnp.where(blocks.ok, x, jnp.nan)
 
 
 def adjoint(factor: RecomputeFactor, v):
     """H⁻¹ v with H re-assembled and re-factored (the second factorisation)."""
     system = assemble(factor.model, factor.y, factor.w)
-    x, _, _ = checkpointed_solve(system.diag, system.sub, v)
+    x, _, _ = checkpointed_solve(system.diag, system.sub, v, pivot_tol=-1.0)
     return jnp.where(factor.ok, x, jnp.nan)
 
 
@@ -183,8 +190,8 @@ def logdet(factor: RecomputeFactor):
 def band_inverse(factor: RecomputeFactor):
     """The band of H⁻¹ via a full (stored) factorisation: O(T n²) memory."""
     system = assemble(factor.model, factor.y, factor.w)
-    _, full = blocktri.factor_solve(system.diag, system.sub, system.rhs)
-    return blocktri.selected_inverse(full)
+    _, full = blocktri.factor_solve(system.diag, system.sub, system.rhs, pivot_tol=-1.0)
+    return blocktri.selected_inverse(full._replace(ok=factor.ok))
 
 
 RECOMPUTE = Backend(forward=forward, adjoint=adjoint, logdet=logdet, band_inverse=band_inverse)

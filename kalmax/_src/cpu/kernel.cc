@@ -3,13 +3,18 @@
 // Three targets, each with one handler templated over the floating-point type
 // and dispatched on the buffers' dtype at run time (float32, float64):
 //
-//   kalmax_cpu_forward    (A, Q, b, C, R, d, m0, P0, y, w) -> (x, L, M, subT, ok)
-//   kalmax_cpu_solve      (L, M, subT, ok, v) -> H⁻¹ v
-//   kalmax_cpu_gradients  (L, M, subT, ok, x, x̄, A, Q, b, C, R, d, m0, P0, y, w)
+//   kalmax_cpu_forward    (A, Q, b, C, R, d, m0, P0, y, w) -> (x, L, M, subT, ok, lo, x_lo)
+//   kalmax_cpu_solve      (L, M, subT, ok, lo, v) -> H⁻¹ v
+//   kalmax_cpu_gradients  (L, M, subT, ok, lo, x, x_lo, x̄, A, Q, b, C, R, d, m0, P0, y, w)
 //                         -> (Ā, Q̄, b̄, C̄, R̄, d̄, m̄0, P̄0, ȳ)
-//   kalmax_cpu_band       (L, M, subT, ok) -> (Σ_tt, Σ_{t+1,t})      band of H⁻¹
-//   kalmax_cpu_loglik     (L, M, subT, ok, x, A, Q, b, C, R, d, m0, P0, y, w)
+//   kalmax_cpu_band       (L, M, subT, ok, lo) -> (Σ_tt, Σ_{t+1,t})      band of H⁻¹
+//   kalmax_cpu_loglik     (L, M, subT, ok, lo, x, x_lo, A, Q, b, C, R, d, m0, P0, y, w)
 //                         -> (log p(y), its gradients w.r.t. A ... y)
+// where lo = (L_lo, M_lo, subT_lo), the low parts of a float32 factor, and
+// the forward also returns x_lo, the low part of a float32 x, which the
+// gradient and log-likelihood handlers take after x: their formulas use the
+// residuals x_{t+1} − A x_t, which float32 rounding of x would swamp when Q
+// is small.
 //
 // The factor (Li, M, subT, ok): Li (T, n, n) the inverses L_t⁻¹ of the
 // diagonal blocks of the block Cholesky factor; when A or Q
@@ -23,6 +28,11 @@
 // accepted (this is how jax.vmap reaches us with vmap_method="expand_dims"):
 // the batch shape is read from the first output, and every input's leading
 // dimension is either that size or 1 (broadcast, never copied).
+//
+// float32 calls compute in double (widen.h): the operands are converted on
+// entry, every result is rounded to float32 once at the end, and the factor
+// keeps double precision as two float32 arrays, hi and lo, passed after ok
+// (L_lo, M_lo, subT_lo; zero-size (0,) arrays for a float64 call).
 //
 // Errors in shapes or dtypes come back through the FFI error channel.
 // Numerical failure (a covariance or a pivot that is not positive) is not an
@@ -40,6 +50,7 @@
 
 #include "likelihood.h"
 #include "smoother.h"
+#include "widen.h"
 #include "xla/ffi/api/ffi.h"
 
 namespace ffi = xla::ffi;
@@ -223,12 +234,19 @@ class PatternCaches {
   explicit PatternCaches(const ModelOperands& mo)
       : usable_(mo.kC == Kind::kInvariant && mo.kR == Kind::kInvariant) {}
 
-  PatternCache<Real>* get(const Trajectory<Real>& P) {
+  PatternCache<Real>* get(const Trajectory<Real>& P) { return get(P, P.C, P.R); }
+
+  // keyC, keyR: where C and R came from. A widened (float → double) trajectory
+  // reuses one buffer for every trajectory, so its own pointers do not tell
+  // whether C and R changed; the float source pointers do.
+  PatternCache<Real>* get(const Trajectory<Real>& P, const void* keyC, const void* keyR) {
     if (!usable_) return nullptr;
-    if (!cache_ || P.C != C_ || P.R != R_) {
+    if (!cache_ || keyC != keyC_ || keyR != keyR_ || P.C != C_ || P.R != R_) {
       cache_.reset(new PatternCache<Real>(P.C, P.R, P.n, P.p));
       C_ = P.C;
       R_ = P.R;
+      keyC_ = keyC;
+      keyR_ = keyR;
     }
     return cache_.get();
   }
@@ -238,25 +256,12 @@ class PatternCaches {
   std::unique_ptr<PatternCache<Real>> cache_;
   const Real* C_ = nullptr;
   const Real* R_ = nullptr;
+  const void* keyC_ = nullptr;
+  const void* keyR_ = nullptr;
 };
 
-// Output buffers are fresh memory that the first write faults in, one 4 KiB
-// page at a time: at T = 10⁵ the factor alone is ~20,000 faults, a sizeable
-// share of a call. Where the system leaves transparent huge pages to
-// madvise, asking for them on the large outputs removes most of that cost.
-// Purely advisory: failure (or no THP support) changes nothing.
-void advise_huge_pages(void* data, std::size_t bytes) {
-#ifdef MADV_HUGEPAGE
-  constexpr std::uintptr_t kHuge = std::uintptr_t(2) << 20;
-  if (bytes < 4 * kHuge) return;
-  const std::uintptr_t begin = (reinterpret_cast<std::uintptr_t>(data) + kHuge - 1) & ~(kHuge - 1);
-  const std::uintptr_t end = (reinterpret_cast<std::uintptr_t>(data) + bytes) & ~(kHuge - 1);
-  if (end > begin) madvise(reinterpret_cast<void*>(begin), end - begin, MADV_HUGEPAGE);
-#else
-  (void)data;
-  (void)bytes;
-#endif
-}
+// advise_huge_pages(void*, bytes) is in widen.h; this one takes an FFI result.
+using kalmax_cpu::advise_huge_pages;
 
 template <class Buf>
 void advise_huge_pages(Buf& buf) {
@@ -352,6 +357,8 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
                        ffi::AnyBuffer y, ffi::AnyBuffer w, ffi::Result<ffi::AnyBuffer> x,
                        ffi::Result<ffi::AnyBuffer> L, ffi::Result<ffi::AnyBuffer> M,
                        ffi::Result<ffi::AnyBuffer> subT, ffi::Result<ffi::Buffer<ffi::S32>> ok,
+                       ffi::Result<ffi::AnyBuffer> L_lo, ffi::Result<ffi::AnyBuffer> M_lo,
+                       ffi::Result<ffi::AnyBuffer> subT_lo, ffi::Result<ffi::AnyBuffer> x_lo,
                        double pivot_tolerance, double trusted_error, int32_t max_refine_steps,
                        double stall_ratio) {
   const SolveSettings settings{pivot_tolerance, trusted_error, max_refine_steps, stall_ratio};
@@ -375,30 +382,68 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
       static_cast<int64_t>(subT->element_count()) != bs.count * n * n ||
       static_cast<int64_t>(ok->element_count()) != bs.count)
     return ffi::Error::InvalidArgument("kalmax_cpu: factor outputs have unexpected sizes");
+  // The lo parts of the factor: as big as the factor for float32, empty for float64.
+  const bool wide = y.element_type() == ffi::DataType::F32;
+  const int64_t lo_scale = wide ? 1 : 0;
+  if (L_lo->element_type() != y.element_type() || M_lo->element_type() != y.element_type() ||
+      subT_lo->element_type() != y.element_type() ||
+      static_cast<int64_t>(L_lo->element_count()) != lo_scale * bs.count * T * n * n ||
+      static_cast<int64_t>(M_lo->element_count()) != lo_scale * bs.count * m_blocks * n * n ||
+      static_cast<int64_t>(subT_lo->element_count()) != lo_scale * bs.count * n * n ||
+      x_lo->element_type() != y.element_type() ||
+      static_cast<int64_t>(x_lo->element_count()) != lo_scale * bs.count * T * n)
+    return ffi::Error::InvalidArgument("kalmax_cpu: lo parts of the factor have unexpected sizes");
 
   advise_huge_pages(x);
   advise_huge_pages(L);
   advise_huge_pages(M);
+  advise_huge_pages(L_lo);
+  advise_huge_pages(M_lo);
   return with_real_type(y.element_type(), [&](auto real) {
     using Real = decltype(real);
     return with_state_size(n, [&](auto nk) {
       constexpr int NK = decltype(nk)::value;
       const int p = mo.p;
-      const std::size_t n2 = std::size_t(n) * n;
+      const std::size_t n2 = std::size_t(n) * n, Tn = std::size_t(T) * n, Tn2 = std::size_t(T) * n2;
+      const std::size_t Mn2 = std::size_t(m_blocks) * n2;
       Real* xo = static_cast<Real*>(x->untyped_data());
       Real* Lo = static_cast<Real*>(L->untyped_data());
       Real* Mo = static_cast<Real*>(M->untyped_data());
       Real* So = static_cast<Real*>(subT->untyped_data());
+      Real* Llo = static_cast<Real*>(L_lo->untyped_data());
+      Real* Mlo = static_cast<Real*>(M_lo->untyped_data());
+      Real* Slo = static_cast<Real*>(subT_lo->untyped_data());
+      Real* xlo = static_cast<Real*>(x_lo->untyped_data());
       int32_t* oko = ok->typed_data();
       for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
-        std::vector<Real> ws(workspace_reals(n, p));
+        std::vector<double> ws(workspace_reals(n, p));  // double for both dtypes
         std::vector<int> idx(p + 1);
-        PatternCaches<Real> caches(mo);
+        PatternCaches<double> caches(mo);
+        WideTrajectory wide_P;
+        Scratch xw, Lw, Mw, Sw;
         for (int64_t bi = begin; bi < end; ++bi) {
           const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
-          oko[bi] = forward_one<Real, NK>(P, xo + bi * std::size_t(T) * n, Lo + bi * std::size_t(T) * n2,
-                                          Mo + bi * std::size_t(m_blocks) * n2, So + bi * n2,
-                                          ws.data(), idx.data(), caches.get(P), settings);
+          Real* x_b = xo + bi * Tn;
+          Real* L_b = Lo + bi * Tn2;
+          Real* M_b = Mo + bi * Mn2;
+          Real* S_b = So + bi * n2;
+          if constexpr (std::is_same_v<Real, double>) {
+            oko[bi] = forward_one<double, NK>(P, x_b, L_b, M_b, S_b, ws.data(), idx.data(), caches.get(P),
+                                              settings);
+          } else {
+            const Trajectory<double> W = wide_P.make(P);
+            double* xd_ = xw.get(Tn);
+            double* Ld_ = Lw.get(Tn2);
+            double* Md_ = Mw.get(Mn2);
+            double* Sd_ = Sw.get(n2);
+            std::fill(Sd_, Sd_ + n2, 0.0);
+            oko[bi] = forward_one<double, NK>(W, xd_, Ld_, Md_, Sd_, ws.data(), idx.data(),
+                                              caches.get(W, P.C, P.R), settings);
+            split(xd_, x_b, xlo + bi * Tn, Tn);
+            split(Ld_, L_b, Llo + bi * Tn2, Tn2);
+            split(Md_, M_b, Mlo + bi * Mn2, Mn2);
+            split(Sd_, S_b, Slo + bi * n2, n2);
+          }
         }
       });
       return ffi::Error::Success();
@@ -406,17 +451,35 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
   });
 }
 
-// The factor operands (L, M, subT, ok) described for a batch.
+// The factor operands (L, M, subT, ok, and the lo parts of a float32 factor)
+// described for a batch.
 struct FactorOperands {
-  Operand L, M, subT, ok;
+  Operand L, M, subT, ok, L_lo, M_lo, subT_lo;
   bool compact = false;
+  int T = 0, n = 0;
 
+  // The double factor of trajectory b: the stored arrays themselves for a
+  // float64 factor; hi + lo joined into wf's buffers for a float32 one.
   template <class Real>
-  FactorView<Real> view(const BatchShape& bs, int64_t b) const {
-    FactorView<Real> F;
-    F.Li = static_cast<const Real*>(L.data) + L.offset(bs, b);
-    F.M = static_cast<const Real*>(M.data) + M.offset(bs, b);
-    F.subT = compact ? static_cast<const Real*>(subT.data) + subT.offset(bs, b) : nullptr;
+  FactorView<double> view(const BatchShape& bs, int64_t b, WideFactor& wf) const {
+    FactorView<double> F;
+    if constexpr (std::is_same_v<Real, double>) {
+      F.Li = static_cast<const double*>(L.data) + L.offset(bs, b);
+      F.M = static_cast<const double*>(M.data) + M.offset(bs, b);
+      F.subT = compact ? static_cast<const double*>(subT.data) + subT.offset(bs, b) : nullptr;
+    } else {
+      const std::size_t n2 = std::size_t(n) * n, Tn2 = std::size_t(T) * n2;
+      const std::size_t Mn2 = compact ? 0 : std::size_t(T > 0 ? T - 1 : 0) * n2;
+      auto part = [&](const Operand& op) { return static_cast<const float*>(op.data) + op.offset(bs, b); };
+      join(part(L), part(L_lo), wf.Li.get(Tn2), Tn2);
+      join(part(M), part(M_lo), wf.M.get(Mn2), Mn2);
+      F.Li = wf.Li.data();
+      F.M = wf.M.data();
+      if (compact) {
+        join(part(subT), part(subT_lo), wf.subT.get(n2), n2);
+        F.subT = wf.subT.data();
+      }
+    }
     return F;
   }
 
@@ -426,11 +489,27 @@ struct FactorOperands {
 };
 
 ffi::Error describe_factor(const ffi::AnyBuffer& L, const ffi::AnyBuffer& M, const ffi::AnyBuffer& subT,
-                           const ffi::Buffer<ffi::S32>& ok, const BatchShape& bs, int T, int n,
-                           ffi::DataType dt, FactorOperands* fo) {
+                           const ffi::Buffer<ffi::S32>& ok, const ffi::AnyBuffer& L_lo,
+                           const ffi::AnyBuffer& M_lo, const ffi::AnyBuffer& subT_lo, const BatchShape& bs,
+                           int T, int n, ffi::DataType dt, FactorOperands* fo) {
+  fo->T = T;
+  fo->n = n;
   if (ffi::Error e = describe(L, "L", bs, &fo->L); e.failure()) return e;
   if (ffi::Error e = describe(M, "M", bs, &fo->M); e.failure()) return e;
   if (ffi::Error e = describe(subT, "subT", bs, &fo->subT); e.failure()) return e;
+  if (ffi::Error e = describe(L_lo, "L_lo", bs, &fo->L_lo); e.failure()) return e;
+  if (ffi::Error e = describe(M_lo, "M_lo", bs, &fo->M_lo); e.failure()) return e;
+  if (ffi::Error e = describe(subT_lo, "subT_lo", bs, &fo->subT_lo); e.failure()) return e;
+  if (L_lo.element_type() != dt || M_lo.element_type() != dt || subT_lo.element_type() != dt)
+    return ffi::Error::InvalidArgument("kalmax_cpu: factor operands must share one dtype");
+  const std::vector<int64_t> empty{0};
+  const bool lo_ok = dt == ffi::DataType::F32
+                         ? (fo->L_lo.core == fo->L.core && fo->M_lo.core == fo->M.core &&
+                            fo->subT_lo.core == fo->subT.core)
+                         : (fo->L_lo.core == empty && fo->M_lo.core == empty && fo->subT_lo.core == empty);
+  if (!lo_ok)
+    return ffi::Error::InvalidArgument(
+        "kalmax_cpu: the lo parts of the factor must match the factor (float32) or have shape (0,) (float64)");
   if (ffi::Error e = describe(ok.untyped_data(), ok.dimensions(), "ok", bs, &fo->ok); e.failure())
     return e;
   const int64_t N = n, T1 = T > 0 ? T - 1 : 0;
@@ -444,15 +523,45 @@ ffi::Error describe_factor(const ffi::AnyBuffer& L, const ffi::AnyBuffer& M, con
   return ffi::Error::Success();
 }
 
+// The lo part of a float32 x (the forward's answer before rounding):
+// shape of x for float32, (0,) for float64.
+ffi::Error describe_x_lo(const ffi::AnyBuffer& x_lo, const Operand& oX, const BatchShape& bs, ffi::DataType dt,
+                         Operand* op) {
+  if (ffi::Error e = describe(x_lo, "x_lo", bs, op); e.failure()) return e;
+  const bool fits = x_lo.element_type() == dt &&
+                    (dt == ffi::DataType::F32 ? op->core == oX.core : op->core == std::vector<int64_t>{0});
+  if (!fits)
+    return ffi::Error::InvalidArgument("kalmax_cpu: x_lo must match x (float32) or have shape (0,) (float64)");
+  return ffi::Error::Success();
+}
+
+// x of trajectory b at double precision: x itself (float64), x + x_lo (float32).
+template <class Real>
+const double* x_double(const Operand& oX, const Operand& oXlo, const BatchShape& bs, int64_t b, Scratch& buf,
+                       std::size_t Tn) {
+  if constexpr (std::is_same_v<Real, double>) {
+    (void)oXlo;
+    (void)buf;
+    (void)Tn;
+    return at<double>(oX, bs, b);
+  } else {
+    double* out = buf.get(Tn);
+    join(at<float>(oX, bs, b), at<float>(oXlo, bs, b), out, Tn);
+    return out;
+  }
+}
+
 ffi::Error SolveImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT,
-                     ffi::Buffer<ffi::S32> ok, ffi::AnyBuffer v, ffi::Result<ffi::AnyBuffer> x) {
+                     ffi::Buffer<ffi::S32> ok, ffi::AnyBuffer L_lo, ffi::AnyBuffer M_lo,
+                     ffi::AnyBuffer subT_lo, ffi::AnyBuffer v, ffi::Result<ffi::AnyBuffer> x) {
   BatchShape bs;
   if (ffi::Error e = batch_from_output(x->dimensions(), 2, &bs); e.failure()) return e;
   const auto xd = x->dimensions();
   const int T = static_cast<int>(xd[xd.size() - 2]);
   const int n = static_cast<int>(xd[xd.size() - 1]);
   FactorOperands fo;
-  if (ffi::Error e = describe_factor(L, M, subT, ok, bs, T, n, x->element_type(), &fo); e.failure())
+  if (ffi::Error e = describe_factor(L, M, subT, ok, L_lo, M_lo, subT_lo, bs, T, n, x->element_type(), &fo);
+      e.failure())
     return e;
   Operand oV;
   if (ffi::Error e = describe(v, "v", bs, &oV); e.failure()) return e;
@@ -464,11 +573,18 @@ ffi::Error SolveImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT,
     return with_state_size(n, [&](auto nk) {
       constexpr int NK = decltype(nk)::value;
       Real* xo = static_cast<Real*>(x->untyped_data());
+      const std::size_t Tn = std::size_t(T) * n;
       for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
-        std::vector<Real> tmp(2 * n + 2);
-        for (int64_t bi = begin; bi < end; ++bi)
-          solve_one<Real, NK>(fo.view<Real>(bs, bi), fo.ok_at(bs, bi), at<Real>(oV, bs, bi),
-                              xo + bi * std::size_t(T) * n, T, n, tmp.data(), tmp.data() + n + 1);
+        std::vector<double> tmp(2 * n + 2);
+        Scratch vbuf, xbuf;
+        WideFactor wf;
+        for (int64_t bi = begin; bi < end; ++bi) {
+          double* xd_ = double_out(xo + bi * Tn, xbuf, Tn);
+          solve_one<double, NK>(fo.view<Real>(bs, bi, wf), fo.ok_at(bs, bi),
+                                as_double(at<Real>(oV, bs, bi), vbuf, Tn), xd_, T, n, tmp.data(),
+                                tmp.data() + n + 1);
+          finish(xd_, xo + bi * Tn, Tn);
+        }
       });
       return ffi::Error::Success();
     });
@@ -476,7 +592,9 @@ ffi::Error SolveImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT,
 }
 
 ffi::Error GradientsImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT,
-                         ffi::Buffer<ffi::S32> ok, ffi::AnyBuffer x, ffi::AnyBuffer xbar, ffi::AnyBuffer A, ffi::AnyBuffer Q,
+                         ffi::Buffer<ffi::S32> ok, ffi::AnyBuffer L_lo, ffi::AnyBuffer M_lo,
+                         ffi::AnyBuffer subT_lo, ffi::AnyBuffer x, ffi::AnyBuffer x_lo, ffi::AnyBuffer xbar,
+                         ffi::AnyBuffer A, ffi::AnyBuffer Q,
                          ffi::AnyBuffer b, ffi::AnyBuffer C, ffi::AnyBuffer R, ffi::AnyBuffer d,
                          ffi::AnyBuffer m0, ffi::AnyBuffer P0, ffi::AnyBuffer y, ffi::AnyBuffer w,
                          ffi::Result<ffi::AnyBuffer> gA, ffi::Result<ffi::AnyBuffer> gQ,
@@ -486,15 +604,17 @@ ffi::Error GradientsImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT
                          ffi::Result<ffi::AnyBuffer> gy) {
   BatchShape bs;
   if (ffi::Error e = batch_from_output(gy->dimensions(), 2, &bs); e.failure()) return e;
-  Operand oX, oXb;
+  Operand oX, oXb, oXlo;
   if (ffi::Error e = describe(x, "x", bs, &oX); e.failure()) return e;
   if (ffi::Error e = describe(xbar, "x_bar", bs, &oXb); e.failure()) return e;
   if (oX.core.size() != 2 || oXb.core != oX.core)
     return ffi::Error::InvalidArgument("kalmax_cpu: x and x_bar must have shape (T, n)");
+  if (ffi::Error e = describe_x_lo(x_lo, oX, bs, y.element_type(), &oXlo); e.failure()) return e;
   const int T = static_cast<int>(oX.core[0]);
   const int n = static_cast<int>(oX.core[1]);
   FactorOperands fo;
-  if (ffi::Error e = describe_factor(L, M, subT, ok, bs, T, n, y.element_type(), &fo); e.failure())
+  if (ffi::Error e = describe_factor(L, M, subT, ok, L_lo, M_lo, subT_lo, bs, T, n, y.element_type(), &fo);
+      e.failure())
     return e;
   const ffi::AnyBuffer in[] = {A, Q, b, C, R, d, m0, P0, y, w};
   ModelOperands mo;
@@ -524,30 +644,42 @@ ffi::Error GradientsImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT
       const std::size_t items[] = {std::size_t(n) * n, std::size_t(n) * n, std::size_t(n),
                                    std::size_t(p) * n, std::size_t(p) * p, std::size_t(p),
                                    std::size_t(n), std::size_t(n) * n};
+      const std::size_t Tn = std::size_t(T) * n;
       for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
-        std::vector<Real> ws(workspace_reals(n, p));
+        std::vector<double> ws(workspace_reals(n, p));
         // Uninitialised (std::vector would zero-fill it, faulting every page in
         // before the huge-page advice could apply); fully written before use.
-        const std::size_t u_size = std::size_t(T) * n + 1;
-        std::unique_ptr<Real[]> u(new Real[u_size]);
-        advise_huge_pages(u.get(), u_size * sizeof(Real));
+        const std::size_t u_size = Tn + 1;
+        std::unique_ptr<double[]> u(new double[u_size]);
+        advise_huge_pages(u.get(), u_size * sizeof(double));
         std::vector<double> acc(accumulator_size(n, p));
         std::vector<int> idx(p + 1);
-        PatternCaches<Real> caches(mo);
+        PatternCaches<double> caches(mo);
+        WideTrajectory wide_P;
+        WideFactor wf;
+        Scratch xbuf, xbbuf, obuf[9];
         for (int64_t bi = begin; bi < end; ++bi) {
           const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
-          Gradients<Real> G;
-          GradSink<Real>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
+          const Trajectory<double> W = as_double(P, wide_P);
+          Gradients<double> G;
+          GradSink<double>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
+          Real* dst[9];
+          for (int f = 0; f < 9; ++f)
+            dst[f] = static_cast<Real*>((*outs[f])->untyped_data()) + bi * ins[f]->core_size;
           for (int f = 0; f < 8; ++f) {
             if (kinds[f] == Kind::kAbsent) continue;
-            sinks[f]->out = static_cast<Real*>((*outs[f])->untyped_data()) + bi * ins[f]->core_size;
+            sinks[f]->out = double_out(dst[f], obuf[f], ins[f]->core_size);
             sinks[f]->tv = kinds[f] == Kind::kVarying;
             sinks[f]->item = items[f];
           }
-          G.y = static_cast<Real*>(gy->untyped_data()) + bi * mo.y.core_size;
-          gradients_one<Real, NK>(P, fo.view<Real>(bs, bi), fo.ok_at(bs, bi),
-                                  at<Real>(oX, bs, bi), at<Real>(oXb, bs, bi), G, ws.data(), u.get(),
-                                  acc.data(), idx.data(), caches.get(P));
+          G.y = double_out(dst[8], obuf[8], mo.y.core_size);
+          gradients_one<double, NK>(W, fo.view<Real>(bs, bi, wf), fo.ok_at(bs, bi),
+                                    x_double<Real>(oX, oXlo, bs, bi, xbuf, Tn),
+                                    as_double(at<Real>(oXb, bs, bi), xbbuf, Tn), G, ws.data(), u.get(),
+                                    acc.data(), idx.data(), caches.get(W, P.C, P.R));
+          for (int f = 0; f < 8; ++f)
+            if (kinds[f] != Kind::kAbsent) finish(sinks[f]->out, dst[f], ins[f]->core_size);
+          finish(G.y, dst[8], mo.y.core_size);
         }
       });
       return ffi::Error::Success();
@@ -557,6 +689,7 @@ ffi::Error GradientsImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT
 
 
 ffi::Error BandImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi::Buffer<ffi::S32> ok,
+                    ffi::AnyBuffer L_lo, ffi::AnyBuffer M_lo, ffi::AnyBuffer subT_lo,
                     ffi::Result<ffi::AnyBuffer> diag, ffi::Result<ffi::AnyBuffer> sub) {
   BatchShape bs;
   if (ffi::Error e = batch_from_output(diag->dimensions(), 3, &bs); e.failure()) return e;
@@ -564,7 +697,9 @@ ffi::Error BandImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi
   const int T = static_cast<int>(dd[dd.size() - 3]);
   const int n = static_cast<int>(dd[dd.size() - 1]);
   FactorOperands fo;
-  if (ffi::Error e = describe_factor(L, M, subT, ok, bs, T, n, diag->element_type(), &fo); e.failure())
+  if (ffi::Error e =
+          describe_factor(L, M, subT, ok, L_lo, M_lo, subT_lo, bs, T, n, diag->element_type(), &fo);
+      e.failure())
     return e;
   if (static_cast<int64_t>(sub->element_count()) != bs.count * int64_t(T > 0 ? T - 1 : 0) * n * n ||
       sub->element_type() != diag->element_type())
@@ -578,10 +713,17 @@ ffi::Error BandImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi
       const std::size_t n2 = std::size_t(n) * n;
       Real* Do = static_cast<Real*>(diag->untyped_data());
       Real* So = static_cast<Real*>(sub->untyped_data());
+      const std::size_t Dn = std::size_t(T) * n2, Sn = std::size_t(T > 0 ? T - 1 : 0) * n2;
       for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
-        for (int64_t bi = begin; bi < end; ++bi)
-          band_one<Real, NK>(fo.view<Real>(bs, bi), fo.ok_at(bs, bi), T, n, Do + bi * std::size_t(T) * n2,
-                             So + bi * std::size_t(T > 0 ? T - 1 : 0) * n2);
+        WideFactor wf;
+        Scratch dbuf, sbuf;
+        for (int64_t bi = begin; bi < end; ++bi) {
+          double* dd_ = double_out(Do + bi * Dn, dbuf, Dn);
+          double* sd_ = double_out(So + bi * Sn, sbuf, Sn);
+          band_one<double, NK>(fo.view<Real>(bs, bi, wf), fo.ok_at(bs, bi), T, n, dd_, sd_);
+          finish(dd_, Do + bi * Dn, Dn);
+          finish(sd_, So + bi * Sn, Sn);
+        }
       });
       return ffi::Error::Success();
     });
@@ -589,7 +731,8 @@ ffi::Error BandImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi
 }
 
 ffi::Error LoglikImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi::Buffer<ffi::S32> ok,
-                      ffi::AnyBuffer x, ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b,
+                      ffi::AnyBuffer L_lo, ffi::AnyBuffer M_lo, ffi::AnyBuffer subT_lo, ffi::AnyBuffer x,
+                      ffi::AnyBuffer x_lo, ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b,
                       ffi::AnyBuffer C, ffi::AnyBuffer R, ffi::AnyBuffer d, ffi::AnyBuffer m0,
                       ffi::AnyBuffer P0, ffi::AnyBuffer y, ffi::AnyBuffer w,
                       ffi::Result<ffi::AnyBuffer> value, ffi::Result<ffi::AnyBuffer> gA,
@@ -599,13 +742,15 @@ ffi::Error LoglikImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, f
                       ffi::Result<ffi::AnyBuffer> gP0, ffi::Result<ffi::AnyBuffer> gy) {
   BatchShape bs;
   if (ffi::Error e = batch_from_output(gy->dimensions(), 2, &bs); e.failure()) return e;
-  Operand oX;
+  Operand oX, oXlo;
   if (ffi::Error e = describe(x, "x", bs, &oX); e.failure()) return e;
   if (oX.core.size() != 2) return ffi::Error::InvalidArgument("kalmax_cpu: x must have shape (T, n)");
+  if (ffi::Error e = describe_x_lo(x_lo, oX, bs, y.element_type(), &oXlo); e.failure()) return e;
   const int T = static_cast<int>(oX.core[0]);
   const int n = static_cast<int>(oX.core[1]);
   FactorOperands fo;
-  if (ffi::Error e = describe_factor(L, M, subT, ok, bs, T, n, y.element_type(), &fo); e.failure())
+  if (ffi::Error e = describe_factor(L, M, subT, ok, L_lo, M_lo, subT_lo, bs, T, n, y.element_type(), &fo);
+      e.failure())
     return e;
   const ffi::AnyBuffer in[] = {A, Q, b, C, R, d, m0, P0, y, w};
   ModelOperands mo;
@@ -634,23 +779,37 @@ ffi::Error LoglikImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, f
                                    std::size_t(p) * n, std::size_t(p) * p, std::size_t(p),
                                    std::size_t(n), std::size_t(n) * n};
       Real* vo = static_cast<Real*>(value->untyped_data());
+      const std::size_t Tn = std::size_t(T) * n;
       for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
         std::vector<double> acc(accumulator_size(n, p));
         std::vector<int> idx(p + 1);
-        PatternCaches<Real> caches(mo);
+        PatternCaches<double> caches(mo);
+        WideTrajectory wide_P;
+        WideFactor wf;
+        Scratch xbuf, obuf[9];
         for (int64_t bi = begin; bi < end; ++bi) {
           const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
-          Gradients<Real> G;
-          GradSink<Real>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
+          const Trajectory<double> W = as_double(P, wide_P);
+          Gradients<double> G;
+          GradSink<double>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
+          Real* dst[9];
+          for (int f = 0; f < 9; ++f)
+            dst[f] = static_cast<Real*>((*outs[f])->untyped_data()) + bi * ins[f]->core_size;
           for (int f = 0; f < 8; ++f) {
             if (kinds[f] == Kind::kAbsent) continue;
-            sinks[f]->out = static_cast<Real*>((*outs[f])->untyped_data()) + bi * ins[f]->core_size;
+            sinks[f]->out = double_out(dst[f], obuf[f], ins[f]->core_size);
             sinks[f]->tv = kinds[f] == Kind::kVarying;
             sinks[f]->item = items[f];
           }
-          G.y = static_cast<Real*>(gy->untyped_data()) + bi * mo.y.core_size;
-          loglik_one<Real, NK>(P, fo.view<Real>(bs, bi), fo.ok_at(bs, bi), at<Real>(oX, bs, bi), vo + bi, G,
-                               acc.data(), idx.data(), caches.get(P));
+          G.y = double_out(dst[8], obuf[8], mo.y.core_size);
+          double value_d = 0;
+          loglik_one<double, NK>(W, fo.view<Real>(bs, bi, wf), fo.ok_at(bs, bi),
+                                 x_double<Real>(oX, oXlo, bs, bi, xbuf, Tn), &value_d, G, acc.data(), idx.data(),
+                                 caches.get(W, P.C, P.R));
+          vo[bi] = static_cast<Real>(value_d);
+          for (int f = 0; f < 8; ++f)
+            if (kinds[f] != Kind::kAbsent) finish(sinks[f]->out, dst[f], ins[f]->core_size);
+          finish(G.y, dst[8], mo.y.core_size);
         }
       });
       return ffi::Error::Success();
@@ -680,6 +839,10 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuForward, kc::ForwardImpl,
                                   .Ret<ffi::AnyBuffer>()  // M
                                   .Ret<ffi::AnyBuffer>()  // subT
                                   .Ret<ffi::Buffer<ffi::S32>>()  // ok
+                                  .Ret<ffi::AnyBuffer>()  // L_lo   (float32: the factor's low parts;
+                                  .Ret<ffi::AnyBuffer>()  // M_lo    float64: shape (0,))
+                                  .Ret<ffi::AnyBuffer>()  // subT_lo
+                                  .Ret<ffi::AnyBuffer>()  // x_lo   (float32: x − fl32(x) of the double answer)
                                   // Settings from kalmax/_src/tolerances.py (never copied here).
                                   .Attr<double>("pivot_tolerance")
                                   .Attr<double>("trusted_error")
@@ -692,6 +855,9 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuSolve, kc::SolveImpl,
                                   .Arg<ffi::AnyBuffer>()          // M
                                   .Arg<ffi::AnyBuffer>()          // subT
                                   .Arg<ffi::Buffer<ffi::S32>>()   // ok
+                                  .Arg<ffi::AnyBuffer>()          // L_lo
+                                  .Arg<ffi::AnyBuffer>()          // M_lo
+                                  .Arg<ffi::AnyBuffer>()          // subT_lo
                                   .Arg<ffi::AnyBuffer>()          // v
                                   .Ret<ffi::AnyBuffer>());        // H⁻¹ v
 
@@ -701,7 +867,11 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuGradients, kc::GradientsImpl,
                                   .Arg<ffi::AnyBuffer>()         // M
                                   .Arg<ffi::AnyBuffer>()         // subT
                                   .Arg<ffi::Buffer<ffi::S32>>()  // ok
+                                  .Arg<ffi::AnyBuffer>()         // L_lo
+                                  .Arg<ffi::AnyBuffer>()         // M_lo
+                                  .Arg<ffi::AnyBuffer>()         // subT_lo
                                   .Arg<ffi::AnyBuffer>()         // x
+                                  .Arg<ffi::AnyBuffer>()         // x_lo
                                   .Arg<ffi::AnyBuffer>()         // x_bar
                                   .Arg<ffi::AnyBuffer>()         // A
                                   .Arg<ffi::AnyBuffer>()         // Q
@@ -729,6 +899,9 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuBand, kc::BandImpl,
                                   .Arg<ffi::AnyBuffer>()         // M
                                   .Arg<ffi::AnyBuffer>()         // subT
                                   .Arg<ffi::Buffer<ffi::S32>>()  // ok
+                                  .Arg<ffi::AnyBuffer>()         // L_lo
+                                  .Arg<ffi::AnyBuffer>()         // M_lo
+                                  .Arg<ffi::AnyBuffer>()         // subT_lo
                                   .Ret<ffi::AnyBuffer>()         // Σ_tt
                                   .Ret<ffi::AnyBuffer>());       // Σ_{t+1,t}
 
@@ -738,7 +911,11 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuLoglik, kc::LoglikImpl,
                                   .Arg<ffi::AnyBuffer>()         // M
                                   .Arg<ffi::AnyBuffer>()         // subT
                                   .Arg<ffi::Buffer<ffi::S32>>()  // ok
+                                  .Arg<ffi::AnyBuffer>()         // L_lo
+                                  .Arg<ffi::AnyBuffer>()         // M_lo
+                                  .Arg<ffi::AnyBuffer>()         // subT_lo
                                   .Arg<ffi::AnyBuffer>()         // x
+                                  .Arg<ffi::AnyBuffer>()         // x_lo
                                   .Arg<ffi::AnyBuffer>()         // A
                                   .Arg<ffi::AnyBuffer>()         // Q
                                   .Arg<ffi::AnyBuffer>()         // b

@@ -1,0 +1,76 @@
+"""Cost of a float32 solve: forward and value+grad at T = 10⁵, n = p = 10 (compiled kernel).
+
+Usage: ``python benchmarks/float32_cost.py [--T 100000] [--repeats 7] [--x64]``
+
+The workload is the invented coupled-oscillator system of ``run.py`` cast to
+float32. Prints the medians (seconds) of repeated calls after a warm-up, for
+``method="cpu"`` (and, with ``--scan``, the pure-JAX ``"scan"`` path). JAX's
+x64 switch is off unless ``--x64`` is given (float32 users usually leave it
+off; the kernel's arithmetic does not depend on it).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import time
+
+import numpy as np
+
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--T", type=int, default=100_000)
+    ap.add_argument("--n", type=int, default=10)
+    ap.add_argument("--repeats", type=int, default=7)
+    ap.add_argument("--x64", action="store_true")
+    ap.add_argument("--scan", action="store_true")
+    ap.add_argument("--float64", action="store_true", help="the same in float64 (needs --x64), for comparison")
+    args = ap.parse_args(argv)
+
+    import jax
+
+    jax.config.update("jax_enable_x64", bool(args.x64))
+    import jax.numpy as jnp
+
+    import kalmax as kx
+    from run import make_problem, time_it
+
+    md, y, mask = make_problem(args.n, args.n, args.T, 0)
+    dt = jnp.float64 if args.float64 else jnp.float32
+    f32 = {k: jnp.asarray(v, dt) for k, v in md.items()}
+    y32 = jnp.asarray(y, dt)
+    w = jnp.asarray(mask, dt)
+    params = tuple(f32[k] for k in ("A", "C", "Q", "R"))
+    out = {"T": args.T, "n": args.n, "p": args.n, "x64": bool(args.x64), "dtype": str(np.dtype(dt))}
+    for method in ["cpu"] + (["scan"] if args.scan else []):
+
+        def states(params):
+            A, C, Q, R = params
+            m = kx.StateSpace(A=A, C=C, Q=Q, R=R, b=f32["b"], d=f32["d"], x0_mean=f32["m0"], x0_cov=f32["P0"])
+            return kx.smooth(m, y32, method=method).states
+
+        def loss(params):
+            x = states(params)
+            pred = x @ params[1].T + f32["d"]
+            err = jnp.where(w > 0, jnp.nan_to_num(y32) - pred, 0.0)
+            return jnp.sum(err**2) / jnp.sum(w)
+
+        fwd = jax.jit(states).lower(params).compile()
+        vg = jax.jit(jax.value_and_grad(loss)).lower(params).compile()
+        x = fwd(params)
+        ok = bool(np.all(np.isfinite(np.asarray(x))))
+        tf, times_f, _ = time_it(lambda: jax.block_until_ready(fwd(params)), args.repeats, 60)
+        tv, times_v, _ = time_it(lambda: jax.block_until_ready(vg(params)), args.repeats, 60)
+        out[method] = {"forward_median_s": tf, "value_and_grad_median_s": tv, "finite": ok,
+                       "forward_all": times_f, "value_and_grad_all": times_v}
+    out["load_average"] = os.getloadavg()
+    print(json.dumps(out, indent=1))
+
+
+if __name__ == "__main__":
+    main()
