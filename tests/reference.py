@@ -523,6 +523,7 @@ def discretise_by_ode(F, G, d):
     sol = integrate.solve_ivp(rhs, (0.0, d), np.zeros(n * n), method="DOP853", rtol=1e-11, atol=1e-14)
     return sla.expm(F * d), sol.y[:, -1].reshape(n, n)
 
+
 def _random_spd(rng, k, scale=1.0, floor=0.5):
     """Well-conditioned random SPD matrix (eigenvalues roughly in
     [floor, floor + 4] times ``scale``), generally full (not diagonal)."""

@@ -22,10 +22,12 @@ FIELD_NAMES = ("A", "Q", "b", "C", "R", "d")
 
 
 def backends():
-    """Names of the registered solver backends ("scan", and "cpu" when the
-    compiled kernel loaded), so that tests cover each one explicitly."""
+    """Names of the registered solvers of the normal equations ("scan", and
+    "cpu" when the compiled kernel loaded), so that tests cover each one
+    explicitly. The covariance-form filter (``refined=False``) has no
+    refinement to drive; tests/test_covariance_form.py covers it."""
     from kalmax._src.backends import registry
-    return list(registry.available())
+    return [name for name in registry.available() if registry.get_backend(name).refined]
 
 
 def eps(dtype) -> float:

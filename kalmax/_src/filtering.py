@@ -108,6 +108,7 @@ import jax
 import jax.numpy as jnp
 from jax import lax
 
+from .backends.covariance_form import masked_measurements, predict_update, transition_inputs
 from .checks import canonicalize
 from .linalg import chol, cross, gram, lsolve, lsolve_vec, matvec, mT
 from .model import StateSpace
@@ -195,27 +196,7 @@ def _covariance_step(m_prev, P_prev, A, b, Q, Ct, Rt, ey):
 
     Ct = w∘C_t (p, n), Rt = R̃_t (p, p), ey = w∘(y_t − d_t) (p,): missing entries already masked.
     """
-    n = m_prev.shape[-1]
-    m_pred = A @ m_prev + b
-    P_pred = _sym(A @ P_prev @ mT(A) + Q)
-    Ls = chol(_sym(Ct @ P_pred @ mT(Ct) + Rt))
-    Kt = lsolve(Ls, lsolve(Ls, Ct @ P_pred), transpose=True)  # Kᵀ = S⁻¹ C̃ P⁻, (p, n)
-    m = m_pred + mT(Kt) @ (ey - Ct @ m_pred)
-    IKC = jnp.eye(n, dtype=P_pred.dtype) - mT(Kt) @ Ct
-    P = _sym(IKC @ P_pred @ mT(IKC) + mT(Kt) @ Rt @ Kt)
-    return m, P
-
-
-def _transition_inputs(model: StateSpace, T: int, dtype):
-    """(A, b, Q) per step t = 0..T-1 for the prediction into step t; step 0 has an identity "prediction"."""
-    n = model.A.shape[-1]
-    eye = jnp.eye(n, dtype=dtype)
-    A = jnp.concatenate([eye[None], jnp.broadcast_to(model.A, (T - 1, n, n))], axis=0)
-    Q = jnp.concatenate([jnp.zeros((1, n, n), dtype), jnp.broadcast_to(_sym(model.Q), (T - 1, n, n))], axis=0)
-    b = jnp.zeros((T, n), dtype)
-    if model.b is not None:
-        b = b.at[1:].set(jnp.broadcast_to(model.b, (T - 1, n)))
-    return A, b, Q
+    return predict_update(m_prev, P_prev, A, b, Q, Ct, Rt, ey)[:2]
 
 
 @jax.jit  # compiled once per shape: an eager lax.scan would be re-traced on every call
@@ -227,10 +208,8 @@ def filtered_moments(model: StateSpace, y, w):
     T, p = y.shape
     n = model.A.shape[-1]
     dtype = y.dtype
-    Ct = w[:, :, None] * jnp.broadcast_to(model.C, (T, p, n))
-    Rt = _sym(masked_measurement_cov(model.R, w))
-    ey = jnp.where(w > 0, y - (0 if model.d is None else model.d), 0)  # missing entries never read
-    A, b, Q = _transition_inputs(model, T, dtype)
+    Ct, Rt, ey = masked_measurements(model, y, w)
+    A, b, Q = transition_inputs(model, T, dtype)
 
     if model.x0_cov is not None:
         # A proper prior: the covariance form from step 0.

@@ -224,6 +224,8 @@ def validate(model: StateSpace, y, mask=None, *, rtol: float = 1e-6,
 def _conditioning_problems(model, y, mask, dtype, max_error_bound, method) -> list:
     """What smooth will do with a valid problem, and why, in words (see validate)."""
     name = resolve_method(method)
+    if not get_backend(name).refined:
+        return _filter_problems(model, y, mask, dtype, name)
     arith = arithmetic_dtype(get_backend(name), dtype)
     eps = float(np.finfo(arith).eps)
     bar = tolerances.trusted_error(dtype)
@@ -250,6 +252,10 @@ def _conditioning_problems(model, y, mask, dtype, max_error_bound, method) -> li
         fixes.append("rescale the problem (units in which Q, R and the prior covariance are within a few "
                      "orders of magnitude of one another)")
         fixes.append("or add information (a prior on x_0, a floor on Q)")
+        if model.x0_cov is not None:
+            fixes.append("or method='covariance' (the covariance-form Kalman filter and RTS smoother, which "
+                         "never forms Q⁻¹: for per-step process noise far below the measurement noise, as "
+                         "with high-rate sampling)")
         bound = " at least" if model.x0_cov is not None and cond >= 0.99 / tolerances.pivot_tolerance(
             np.float64, np.shape(model.A)[-1], flat_prior=False) else ""
         return [
@@ -265,3 +271,16 @@ def _conditioning_problems(model, y, mask, dtype, max_error_bound, method) -> li
             "back NaN after small changes; use float64, rescale, or add prior information."
         ]
     return []
+
+
+def _filter_problems(model, y, mask, dtype, name) -> list:
+    """validate for the covariance-form filter: it is NaN only when its own factors fail."""
+    w = jnp.asarray(mask, dtype)
+    x = np.asarray(smoothed_means(model, jnp.where(jnp.asarray(mask), y, 0).astype(dtype), w, name))
+    if np.all(np.isfinite(x)):
+        return []
+    if model.x0_cov is None:
+        return [f"smooth returns NaN (method={name!r}): the covariance-form filter needs a prior on x_0 "
+                "(model.x0_mean/x0_cov); with a flat prior use the normal equations (method='auto')."]
+    return [f"smooth returns NaN (method={name!r}, {np.dtype(dtype).name}): an innovation or predicted "
+            "covariance is not positive definite in this precision; use float64 or rescale the problem."]

@@ -51,6 +51,10 @@ class Backend(NamedTuple):
         of ``likelihood.py`` (band of H⁻¹, then autodiff of per-step terms).
     float32_in_double: True when float32 problems are factored and solved
         in double precision (the compiled kernel); False: in float32.
+    refined: True when the answer is certified by refinement with the
+        normal equations' residual ("accurate or NaN", ``accuracy.py``);
+        False for the covariance-form filter (``covariance_form.py``), which
+        never forms H and is NaN only when one of its own factors fails.
     """
 
     forward: Callable
@@ -60,6 +64,7 @@ class Backend(NamedTuple):
     gradients: Optional[Callable] = None
     log_likelihood: Optional[Callable] = None
     float32_in_double: bool = False
+    refined: bool = True
 
 
 def arithmetic_dtype(backend: Backend, dtype):
