@@ -27,7 +27,7 @@ Whether it hangs depends on how the runtime happens to overlap the calls, so
 another process loading the CPU makes it far more likely.
 
 The cure at the root is not to issue batched LAPACK calls for small blocks at
-all. On CPU, for k ≤ :data:`UNROLL_MAX`, the factorisation and the
+all. On CPU, for k ≤ :data:`WRITTEN_OUT_MAX`, the factorisation and the
 substitutions are written as a loop of k column (row) steps, each one
 elementwise arithmetic over the whole batch: plain XLA operations that never
 call LAPACK and never block a thread, and that ``jit`` and ``vmap`` (which
@@ -59,9 +59,10 @@ import jax
 import jax.numpy as jnp
 from jax import lax
 
-# Blocks up to this size are factorised and solved by the unrolled
-# elementwise code; the trace grows like k², so very large k stays on LAPACK.
-UNROLL_MAX = 32
+# Blocks up to this size are factorised and solved by the elementwise code
+# below: a loop over the k columns (rows), or straight-line code for one small
+# block (STRAIGHT_MAX). Larger blocks (rare) stay on LAPACK, in chunks.
+WRITTEN_OUT_MAX = 32
 
 # jaxlib's batched LAPACK kernels run a batch inline (no thread-pool
 # scheduling) while batch × (work per matrix) stays below 2·10⁵ (read off the
@@ -73,7 +74,7 @@ def _written_out(k: int) -> bool:
     # Only the CPU runtime has the thread-pool hang; on GPU/TPU the vendor
     # solvers are kept (they compile faster than the loops here). The platform
     # is the default backend at trace time.
-    return k <= UNROLL_MAX and jax.default_backend() == "cpu"
+    return k <= WRITTEN_OUT_MAX and jax.default_backend() == "cpu"
 
 
 def chol(S):
@@ -103,7 +104,7 @@ def _row(X, i):
 def _chol_columns(S):
     if S.ndim == 2 and S.shape[-1] <= STRAIGHT_MAX:
         return _chol_straight(S)
-    return _chol_unrolled(S)
+    return _chol_loop(S)
 
 
 @_chol_columns.defjvp
@@ -154,7 +155,7 @@ def _lsolve_straight(L, B, transpose):
     return jnp.stack(X)
 
 
-def _chol_unrolled(S):
+def _chol_loop(S):
     # Outer-product (right-looking) form: step j takes column j of the
     # trailing Schur complement as column j of L and subtracts its outer
     # product. Each step is a few elementwise operations over the whole batch
@@ -206,7 +207,7 @@ def lsolve(L, B, *, transpose: bool = False):
 def _lsolve_columns(L, B, transpose):
     if B.ndim == 2 and L.shape[-1] <= STRAIGHT_MAX:
         return _lsolve_straight(L, B, transpose)
-    return _lsolve_unrolled(L, B, transpose)
+    return _lsolve_loop(L, B, transpose)
 
 
 @_lsolve_columns.defjvp
@@ -219,7 +220,7 @@ def _lsolve_columns_jvp(transpose, primals, tangents):
     return X, _lsolve_columns(L, dB - dLX, transpose)
 
 
-def _lsolve_unrolled(L, B, transpose):
+def _lsolve_loop(L, B, transpose):
     # Column-oriented substitution: once row i of X is known, its share is
     # removed from every row still to be solved (rows below for L X = B,
     # rows above for Lᵀ X = B), as one elementwise update over the batch.

@@ -1,7 +1,7 @@
 r"""The compiled CPU backend of the smoothing primitive (``method="cpu"``).
 
 A C++ library (sources in ``kalmax/_src/cpu``, built by ``pip install``)
-provides three XLA FFI targets:
+provides five XLA FFI targets:
 
 * ``kalmax_cpu_forward``: assembles the block-tridiagonal normal equations
   H x = g from the model, the measurements and the mask, factorises H = L Lᵀ
@@ -18,6 +18,10 @@ provides three XLA FFI targets:
   x0_mean, x0_cov, y), θ̄ = −∂_θ[uᵀ∇ₓJ(x; θ)] at x = x*, fused with the back
   substitution so that u is used as soon as it is known. The formulas are in
   ``cpu/smoother.h``; the JAX path (``stationarity_pairing``) is the oracle.
+* ``kalmax_cpu_band``: the band of H⁻¹ (Σ_tt, Σ_{t+1,t}) by selected
+  inversion over the stored factor (``cpu/likelihood.h``).
+* ``kalmax_cpu_loglik``: log p(y) and its gradient w.r.t. every input, in one
+  pass over the stored factor (``cpu/likelihood.h``).
 
 The numerical settings of the forward pass (pivot tolerance, trusted error,
 refinement steps, stall ratio) come from ``tolerances.py`` and travel as FFI
@@ -109,6 +113,8 @@ from ..normal_equations import stationarity_pairing
 from .base import Backend, checked_solve
 
 LIBRARY_STEM = "_cpu_kernel"
+# Where the build puts the library: kalmax/_src (setup.py, ``kalmax._src._cpu_kernel``).
+LIBRARY_DIR = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
 # FFI target name -> exported C symbol.
 _TARGETS = {
@@ -123,10 +129,9 @@ _VMAP = "expand_dims"  # the kernel loops over leading batch axes itself
 
 
 def library_path() -> Optional[str]:
-    """Path of the compiled kernel library (built into ``kalmax/_src``), or None."""
-    here = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    """Path of the compiled kernel library (in :data:`LIBRARY_DIR`), or None."""
     for suffix in importlib.machinery.EXTENSION_SUFFIXES:
-        path = os.path.join(here, LIBRARY_STEM + suffix)
+        path = os.path.join(LIBRARY_DIR, LIBRARY_STEM + suffix)
         if os.path.exists(path):
             return path
     return None
@@ -139,7 +144,7 @@ def _load() -> Optional[str]:
     path = library_path()
     if path is None:
         return (
-            f"no compiled library {LIBRARY_STEM}*.so in {os.path.dirname(os.path.dirname(os.path.abspath(__file__)))}; "
+            f"no compiled library {LIBRARY_STEM}*.so in {LIBRARY_DIR}; "
             "build it with `pip install --no-build-isolation -e .` (or `make venv`)"
         )
     try:

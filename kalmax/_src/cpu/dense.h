@@ -102,6 +102,23 @@ inline bool cholesky(Real* L, Real* S, int n_, Real* scratch) {
   return ok;
 }
 
+// L = the lower Cholesky factor of (S + Sᵀ)/2 (L may alias S); false when
+// that is not positive definite. scratch: n entries.
+template <class Real, int NK>
+inline bool sym_cholesky(Real* L, const Real* S, int n_, Real* scratch) {
+  const int n = fixed<NK>(n_);
+  sym_lower<Real, NK>(L, S, n);
+  return cholesky<Real, NK>(L, L, n, scratch);
+}
+
+// log|S| = 2 Σ_i log L_ii from the Cholesky factor L of S.
+template <class Real>
+inline Real cholesky_logdet(const Real* L, int n) {
+  Real ld = 0;
+  for (int i = 0; i < n; ++i) ld += Real(2) * std::log(L[i * n + i]);
+  return ld;
+}
+
 // x = L⁻¹ b (forward substitution); x may alias b.
 template <class Real, int NK>
 inline void lsolve_vec(const Real* L, const Real* b, Real* x, int n_) {
@@ -123,6 +140,29 @@ inline void ltsolve_vec_inplace(const Real* L, Real* x, int n_) {
     x[i] = xi;
     for (int k = 0; k < i; ++k) x[k] -= L[i * n + k] * xi;
   }
+}
+
+// S⁻¹ as an explicit matrix from the Cholesky factor L of S, one column at a
+// time (L Lᵀ s_j = e_j), so that later products with it are independent dot
+// products instead of chains of substitutions. col: scratch of n entries.
+template <class Real, int NK>
+inline void inverse_from_cholesky(Real* inv, const Real* L, int n_, Real* col) {
+  const int n = fixed<NK>(n_);
+  for (int j = 0; j < n; ++j) {
+    for (int i = 0; i < n; ++i) col[i] = Real(i == j);
+    lsolve_vec<Real, NK>(L, col, col, n);
+    ltsolve_vec_inplace<Real, NK>(L, col, n);
+    for (int i = 0; i < n; ++i) inv[i * n + j] = col[i];
+  }
+}
+
+// L = chol((S + Sᵀ)/2) and inv = S⁻¹; false when S is not positive definite.
+// scratch: n entries (the factorisation's, then the columns').
+template <class Real, int NK>
+inline bool sym_cholesky_inverse(Real* inv, Real* L, const Real* S, int n, Real* scratch) {
+  if (!sym_cholesky<Real, NK>(L, S, n, scratch)) return false;
+  inverse_from_cholesky<Real, NK>(inv, L, n, scratch);
+  return true;
 }
 
 // X = L⁻¹ B for B of shape (k, m); X may alias B. L is k-by-k with runtime k,

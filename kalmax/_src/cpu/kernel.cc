@@ -1,22 +1,22 @@
 // XLA FFI handlers (CPU) for the smoothing primitive of kalmax.
 //
-// Three targets, each with one handler templated over the floating-point type
+// Five targets, each with one handler templated over the floating-point type
 // and dispatched on the buffers' dtype at run time (float32, float64):
 //
-//   kalmax_cpu_forward    (A, Q, b, C, R, d, m0, P0, y, w) -> (x, L, M, subT, ok, lo, x_lo)
-//   kalmax_cpu_solve      (L, M, subT, ok, lo, v) -> H⁻¹ v
-//   kalmax_cpu_gradients  (L, M, subT, ok, lo, x, x_lo, x̄, A, Q, b, C, R, d, m0, P0, y, w)
+//   kalmax_cpu_forward    (A, Q, b, C, R, d, m0, P0, y, w) -> (x, Linv, M, subT, ok, lo, x_lo)
+//   kalmax_cpu_solve      (Linv, M, subT, ok, lo, v) -> H⁻¹ v
+//   kalmax_cpu_gradients  (Linv, M, subT, ok, lo, x, x_lo, x̄, A, Q, b, C, R, d, m0, P0, y, w)
 //                         -> (Ā, Q̄, b̄, C̄, R̄, d̄, m̄0, P̄0, ȳ)
-//   kalmax_cpu_band       (L, M, subT, ok, lo) -> (Σ_tt, Σ_{t+1,t})      band of H⁻¹
-//   kalmax_cpu_loglik     (L, M, subT, ok, lo, x, x_lo, A, Q, b, C, R, d, m0, P0, y, w)
+//   kalmax_cpu_band       (Linv, M, subT, ok, lo) -> (Σ_tt, Σ_{t+1,t})      band of H⁻¹
+//   kalmax_cpu_loglik     (Linv, M, subT, ok, lo, x, x_lo, A, Q, b, C, R, d, m0, P0, y, w)
 //                         -> (log p(y), its gradients w.r.t. A ... y)
-// where lo = (L_lo, M_lo, subT_lo), the low parts of a float32 factor, and
+// where lo = (Linv_lo, M_lo, subT_lo), the low parts of a float32 factor, and
 // the forward also returns x_lo, the low part of a float32 x, which the
 // gradient and log-likelihood handlers take after x: their formulas use the
 // residuals x_{t+1} − A x_t, which float32 rounding of x would swamp when Q
 // is small.
 //
-// The factor (Li, M, subT, ok): Li (T, n, n) the inverses L_t⁻¹ of the
+// The factor (Linv, M, subT, ok): Linv (T, n, n) the inverses L_t⁻¹ of the
 // diagonal blocks of the block Cholesky factor; when A or Q
 // varies in time, M (T-1, n, n) holds the sub-diagonal blocks; when both are
 // time-invariant M has shape (0, n, n) and subT (n, n) holds the one block
@@ -32,7 +32,7 @@
 // float32 calls compute in double (widen.h): the operands are converted on
 // entry, every result is rounded to float32 once at the end, and the factor
 // keeps double precision as two float32 arrays, hi and lo, passed after ok
-// (L_lo, M_lo, subT_lo; zero-size (0,) arrays for a float64 call).
+// (Linv_lo, M_lo, subT_lo; zero-size (0,) arrays for a float64 call).
 //
 // Errors in shapes or dtypes come back through the FFI error channel.
 // Numerical failure (a covariance or a pivot that is not positive) is not an
@@ -40,12 +40,15 @@
 
 #include <sys/mman.h>
 
+#include <algorithm>
+#include <array>
 #include <cstdint>
 #include <cstdlib>
 #include <memory>
 #include <string>
 #include <thread>
 #include <type_traits>
+#include <utility>
 #include <vector>
 
 #include "likelihood.h"
@@ -55,8 +58,19 @@
 
 namespace ffi = xla::ffi;
 
+// Returns the error of `expr` (an ffi::Error) from the enclosing function
+// when it is a failure.
+#define KALMAX_RETURN_IF_ERROR(expr)                       \
+  do {                                                     \
+    ::xla::ffi::Error kalmax_error_ = (expr);              \
+    if (kalmax_error_.failure()) return kalmax_error_;     \
+  } while (false)
+
 namespace kalmax_cpu {
 namespace {
+
+// The error of a call with bad operands: "kalmax_cpu: <what>".
+ffi::Error invalid(const std::string& what) { return ffi::Error::InvalidArgument("kalmax_cpu: " + what); }
 
 constexpr int kMaxBatchRank = 16;
 
@@ -93,7 +107,7 @@ std::string shape_str(const std::vector<int64_t>& dims) {
 ffi::Error batch_from_output(ffi::AnyBuffer::Dimensions dims, int core_rank, BatchShape* bs) {
   if (static_cast<int>(dims.size()) < core_rank ||
       static_cast<int>(dims.size()) - core_rank > kMaxBatchRank)
-    return ffi::Error::InvalidArgument("kalmax_cpu: unexpected output rank");
+    return invalid("unexpected output rank");
   bs->rank = static_cast<int>(dims.size()) - core_rank;
   bs->count = 1;
   for (int j = 0; j < bs->rank; ++j) {
@@ -106,9 +120,7 @@ ffi::Error batch_from_output(ffi::AnyBuffer::Dimensions dims, int core_rank, Bat
 ffi::Error describe(const void* data, ffi::AnyBuffer::Dimensions dims, const char* name,
                     const BatchShape& bs, Operand* op) {
   const int rank = static_cast<int>(dims.size());
-  if (rank < bs.rank)
-    return ffi::Error::InvalidArgument(std::string("kalmax_cpu: ") + name +
-                                       " lacks the batch dimensions");
+  if (rank < bs.rank) return invalid(std::string(name) + " lacks the batch dimensions");
   op->data = data;
   op->core.assign(dims.begin() + bs.rank, dims.end());
   op->core_size = 1;
@@ -116,10 +128,8 @@ ffi::Error describe(const void* data, ffi::AnyBuffer::Dimensions dims, const cha
   int64_t stride = op->core_size;
   for (int j = bs.rank - 1; j >= 0; --j) {
     if (dims[j] != bs.dims[j] && dims[j] != 1)
-      return ffi::Error::InvalidArgument(std::string("kalmax_cpu: batch dimension ") +
-                                         std::to_string(j) + " of " + name + " is " +
-                                         std::to_string(dims[j]) + ", expected " +
-                                         std::to_string(bs.dims[j]) + " or 1");
+      return invalid("batch dimension " + std::to_string(j) + " of " + name + " is " + std::to_string(dims[j]) +
+                     ", expected " + std::to_string(bs.dims[j]) + " or 1");
     op->strides[j] = dims[j] == 1 ? 0 : stride;
     stride *= dims[j];
   }
@@ -146,8 +156,7 @@ ffi::Error classify(const Operand& op, const char* name, const std::vector<int64
   } else {
     std::string expected = shape_str(inv);
     if (!var.empty()) expected += " or " + shape_str(var);
-    return ffi::Error::InvalidArgument(std::string("kalmax_cpu: ") + name + " has shape " +
-                                       shape_str(op.core) + ", expected " + expected);
+    return invalid(std::string(name) + " has shape " + shape_str(op.core) + ", expected " + expected);
   }
   return ffi::Error::Success();
 }
@@ -165,27 +174,22 @@ ffi::Error describe_model(const ffi::AnyBuffer* in, const BatchShape& bs, int T,
   Operand* ops[] = {&mo->A, &mo->Q, &mo->b, &mo->C, &mo->R, &mo->d, &mo->m0, &mo->P0, &mo->y, &mo->w};
   const ffi::DataType dt = in[8].element_type();
   for (int i = 0; i < 10; ++i) {
-    if (in[i].element_type() != dt)
-      return ffi::Error::InvalidArgument(std::string("kalmax_cpu: ") + names[i] +
-                                         " has a different dtype from y");
-    if (ffi::Error e = describe(in[i], names[i], bs, ops[i]); e.failure()) return e;
+    if (in[i].element_type() != dt) return invalid(std::string(names[i]) + " has a different dtype from y");
+    KALMAX_RETURN_IF_ERROR(describe(in[i], names[i], bs, ops[i]));
   }
   if (mo->y.core.size() != 2 || mo->y.core[0] != T)
-    return ffi::Error::InvalidArgument("kalmax_cpu: y must have shape (T, p) with T = " +
-                                       std::to_string(T));
+    return invalid("y must have shape (T, p) with T = " + std::to_string(T));
   const int64_t p = mo->y.core[1];
-  if (mo->w.core != mo->y.core)
-    return ffi::Error::InvalidArgument("kalmax_cpu: w must have the shape of y");
+  if (mo->w.core != mo->y.core) return invalid("w must have the shape of y");
   const int64_t N = n, P = p, T1 = T - 1;
-  ffi::Error e = ffi::Error::Success();
-  if ((e = classify(mo->A, "A", {N, N}, {T1, N, N}, false, &mo->kA)).failure()) return e;
-  if ((e = classify(mo->Q, "Q", {N, N}, {T1, N, N}, false, &mo->kQ)).failure()) return e;
-  if ((e = classify(mo->b, "b", {N}, {T1, N}, true, &mo->kb)).failure()) return e;
-  if ((e = classify(mo->C, "C", {P, N}, {T, P, N}, false, &mo->kC)).failure()) return e;
-  if ((e = classify(mo->R, "R", {P, P}, {T, P, P}, false, &mo->kR)).failure()) return e;
-  if ((e = classify(mo->d, "d", {P}, {T, P}, true, &mo->kd)).failure()) return e;
-  if ((e = classify(mo->m0, "x0_mean", {N}, {}, true, &mo->km0)).failure()) return e;
-  if ((e = classify(mo->P0, "x0_cov", {N, N}, {}, true, &mo->kP0)).failure()) return e;
+  KALMAX_RETURN_IF_ERROR(classify(mo->A, "A", {N, N}, {T1, N, N}, false, &mo->kA));
+  KALMAX_RETURN_IF_ERROR(classify(mo->Q, "Q", {N, N}, {T1, N, N}, false, &mo->kQ));
+  KALMAX_RETURN_IF_ERROR(classify(mo->b, "b", {N}, {T1, N}, true, &mo->kb));
+  KALMAX_RETURN_IF_ERROR(classify(mo->C, "C", {P, N}, {T, P, N}, false, &mo->kC));
+  KALMAX_RETURN_IF_ERROR(classify(mo->R, "R", {P, P}, {T, P, P}, false, &mo->kR));
+  KALMAX_RETURN_IF_ERROR(classify(mo->d, "d", {P}, {T, P}, true, &mo->kd));
+  KALMAX_RETURN_IF_ERROR(classify(mo->m0, "x0_mean", {N}, {}, true, &mo->km0));
+  KALMAX_RETURN_IF_ERROR(classify(mo->P0, "x0_cov", {N, N}, {}, true, &mo->kP0));
   mo->T = T;
   mo->n = n;
   mo->p = static_cast<int>(p);
@@ -300,7 +304,7 @@ ffi::Error with_real_type(ffi::DataType dt, F&& f) {
     case ffi::DataType::F64:
       return f(double{});
     default:
-      return ffi::Error::InvalidArgument("kalmax_cpu: only float32 and float64 are supported");
+      return invalid("only float32 and float64 are supported");
   }
 }
 
@@ -355,49 +359,49 @@ void for_batches(int64_t count, int64_t steps, Body&& body) {
 ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi::AnyBuffer C,
                        ffi::AnyBuffer R, ffi::AnyBuffer d, ffi::AnyBuffer m0, ffi::AnyBuffer P0,
                        ffi::AnyBuffer y, ffi::AnyBuffer w, ffi::Result<ffi::AnyBuffer> x,
-                       ffi::Result<ffi::AnyBuffer> L, ffi::Result<ffi::AnyBuffer> M,
+                       ffi::Result<ffi::AnyBuffer> Linv, ffi::Result<ffi::AnyBuffer> M,
                        ffi::Result<ffi::AnyBuffer> subT, ffi::Result<ffi::Buffer<ffi::S32>> ok,
-                       ffi::Result<ffi::AnyBuffer> L_lo, ffi::Result<ffi::AnyBuffer> M_lo,
+                       ffi::Result<ffi::AnyBuffer> Linv_lo, ffi::Result<ffi::AnyBuffer> M_lo,
                        ffi::Result<ffi::AnyBuffer> subT_lo, ffi::Result<ffi::AnyBuffer> x_lo,
                        double pivot_tolerance, double trusted_error, int32_t max_refine_steps,
                        double stall_ratio) {
   const SolveSettings settings{pivot_tolerance, trusted_error, max_refine_steps, stall_ratio};
   if (!(pivot_tolerance >= 0) || !(trusted_error >= 0) || max_refine_steps < 1 || !(stall_ratio > 0))
-    return ffi::Error::InvalidArgument("kalmax_cpu: invalid solve settings");
+    return invalid("invalid solve settings");
   BatchShape bs;
-  if (ffi::Error e = batch_from_output(x->dimensions(), 2, &bs); e.failure()) return e;
+  KALMAX_RETURN_IF_ERROR(batch_from_output(x->dimensions(), 2, &bs));
   const auto xd = x->dimensions();
   const int T = static_cast<int>(xd[xd.size() - 2]);
   const int n = static_cast<int>(xd[xd.size() - 1]);
   const ffi::AnyBuffer in[] = {A, Q, b, C, R, d, m0, P0, y, w};
   ModelOperands mo;
-  if (ffi::Error e = describe_model(in, bs, T, n, &mo); e.failure()) return e;
-  if (x->element_type() != y.element_type() || L->element_type() != y.element_type() ||
+  KALMAX_RETURN_IF_ERROR(describe_model(in, bs, T, n, &mo));
+  if (x->element_type() != y.element_type() || Linv->element_type() != y.element_type() ||
       M->element_type() != y.element_type() || subT->element_type() != y.element_type())
-    return ffi::Error::InvalidArgument("kalmax_cpu: outputs must have the dtype of y");
+    return invalid("outputs must have the dtype of y");
   const bool compact = mo.kA == Kind::kInvariant && mo.kQ == Kind::kInvariant;
   const int64_t m_blocks = compact ? 0 : (T > 0 ? T - 1 : 0);
-  if (static_cast<int64_t>(L->element_count()) != bs.count * T * n * n ||
+  if (static_cast<int64_t>(Linv->element_count()) != bs.count * T * n * n ||
       static_cast<int64_t>(M->element_count()) != bs.count * m_blocks * n * n ||
       static_cast<int64_t>(subT->element_count()) != bs.count * n * n ||
       static_cast<int64_t>(ok->element_count()) != bs.count)
-    return ffi::Error::InvalidArgument("kalmax_cpu: factor outputs have unexpected sizes");
+    return invalid("factor outputs have unexpected sizes");
   // The lo parts of the factor: as big as the factor for float32, empty for float64.
   const bool wide = y.element_type() == ffi::DataType::F32;
   const int64_t lo_scale = wide ? 1 : 0;
-  if (L_lo->element_type() != y.element_type() || M_lo->element_type() != y.element_type() ||
+  if (Linv_lo->element_type() != y.element_type() || M_lo->element_type() != y.element_type() ||
       subT_lo->element_type() != y.element_type() ||
-      static_cast<int64_t>(L_lo->element_count()) != lo_scale * bs.count * T * n * n ||
+      static_cast<int64_t>(Linv_lo->element_count()) != lo_scale * bs.count * T * n * n ||
       static_cast<int64_t>(M_lo->element_count()) != lo_scale * bs.count * m_blocks * n * n ||
       static_cast<int64_t>(subT_lo->element_count()) != lo_scale * bs.count * n * n ||
       x_lo->element_type() != y.element_type() ||
       static_cast<int64_t>(x_lo->element_count()) != lo_scale * bs.count * T * n)
-    return ffi::Error::InvalidArgument("kalmax_cpu: lo parts of the factor have unexpected sizes");
+    return invalid("lo parts of the factor have unexpected sizes");
 
   advise_huge_pages(x);
-  advise_huge_pages(L);
+  advise_huge_pages(Linv);
   advise_huge_pages(M);
-  advise_huge_pages(L_lo);
+  advise_huge_pages(Linv_lo);
   advise_huge_pages(M_lo);
   return with_real_type(y.element_type(), [&](auto real) {
     using Real = decltype(real);
@@ -407,10 +411,10 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
       const std::size_t n2 = std::size_t(n) * n, Tn = std::size_t(T) * n, Tn2 = std::size_t(T) * n2;
       const std::size_t Mn2 = std::size_t(m_blocks) * n2;
       Real* xo = static_cast<Real*>(x->untyped_data());
-      Real* Lo = static_cast<Real*>(L->untyped_data());
+      Real* Linvo = static_cast<Real*>(Linv->untyped_data());
       Real* Mo = static_cast<Real*>(M->untyped_data());
       Real* So = static_cast<Real*>(subT->untyped_data());
-      Real* Llo = static_cast<Real*>(L_lo->untyped_data());
+      Real* Linvlo = static_cast<Real*>(Linv_lo->untyped_data());
       Real* Mlo = static_cast<Real*>(M_lo->untyped_data());
       Real* Slo = static_cast<Real*>(subT_lo->untyped_data());
       Real* xlo = static_cast<Real*>(x_lo->untyped_data());
@@ -420,27 +424,27 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
         std::vector<int> idx(p + 1);
         PatternCaches<double> caches(mo);
         WideTrajectory wide_P;
-        Scratch xw, Lw, Mw, Sw;
+        Scratch xw, Linvw, Mw, Sw;
         for (int64_t bi = begin; bi < end; ++bi) {
           const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
           Real* x_b = xo + bi * Tn;
-          Real* L_b = Lo + bi * Tn2;
+          Real* Linv_b = Linvo + bi * Tn2;
           Real* M_b = Mo + bi * Mn2;
           Real* S_b = So + bi * n2;
           if constexpr (std::is_same_v<Real, double>) {
-            oko[bi] = forward_one<double, NK>(P, x_b, L_b, M_b, S_b, ws.data(), idx.data(), caches.get(P),
+            oko[bi] = forward_one<double, NK>(P, x_b, Linv_b, M_b, S_b, ws.data(), idx.data(), caches.get(P),
                                               settings);
           } else {
             const Trajectory<double> W = wide_P.make(P);
             double* xd_ = xw.get(Tn);
-            double* Ld_ = Lw.get(Tn2);
+            double* Linvd_ = Linvw.get(Tn2);
             double* Md_ = Mw.get(Mn2);
             double* Sd_ = Sw.get(n2);
             std::fill(Sd_, Sd_ + n2, 0.0);
-            oko[bi] = forward_one<double, NK>(W, xd_, Ld_, Md_, Sd_, ws.data(), idx.data(),
+            oko[bi] = forward_one<double, NK>(W, xd_, Linvd_, Md_, Sd_, ws.data(), idx.data(),
                                               caches.get(W, P.C, P.R), settings);
             split(xd_, x_b, xlo + bi * Tn, Tn);
-            split(Ld_, L_b, Llo + bi * Tn2, Tn2);
+            split(Linvd_, Linv_b, Linvlo + bi * Tn2, Tn2);
             split(Md_, M_b, Mlo + bi * Mn2, Mn2);
             split(Sd_, S_b, Slo + bi * n2, n2);
           }
@@ -451,10 +455,21 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
   });
 }
 
-// The factor operands (L, M, subT, ok, and the lo parts of a float32 factor)
-// described for a batch.
+// The factor operands as a handler receives them: Linv (the inverse diagonal
+// blocks L_t⁻¹), M, subT, ok, and the lo parts of a float32 factor.
+struct FactorBuffers {
+  const ffi::AnyBuffer& Linv;
+  const ffi::AnyBuffer& M;
+  const ffi::AnyBuffer& subT;
+  const ffi::Buffer<ffi::S32>& ok;
+  const ffi::AnyBuffer& Linv_lo;
+  const ffi::AnyBuffer& M_lo;
+  const ffi::AnyBuffer& subT_lo;
+};
+
+// The factor operands described for a batch.
 struct FactorOperands {
-  Operand L, M, subT, ok, L_lo, M_lo, subT_lo;
+  Operand Linv, M, subT, ok, Linv_lo, M_lo, subT_lo;
   bool compact = false;
   int T = 0, n = 0;
 
@@ -464,14 +479,14 @@ struct FactorOperands {
   FactorView<double> view(const BatchShape& bs, int64_t b, WideFactor& wf) const {
     FactorView<double> F;
     if constexpr (std::is_same_v<Real, double>) {
-      F.Li = static_cast<const double*>(L.data) + L.offset(bs, b);
+      F.Li = static_cast<const double*>(Linv.data) + Linv.offset(bs, b);
       F.M = static_cast<const double*>(M.data) + M.offset(bs, b);
       F.subT = compact ? static_cast<const double*>(subT.data) + subT.offset(bs, b) : nullptr;
     } else {
       const std::size_t n2 = std::size_t(n) * n, Tn2 = std::size_t(T) * n2;
       const std::size_t Mn2 = compact ? 0 : std::size_t(T > 0 ? T - 1 : 0) * n2;
       auto part = [&](const Operand& op) { return static_cast<const float*>(op.data) + op.offset(bs, b); };
-      join(part(L), part(L_lo), wf.Li.get(Tn2), Tn2);
+      join(part(Linv), part(Linv_lo), wf.Li.get(Tn2), Tn2);
       join(part(M), part(M_lo), wf.M.get(Mn2), Mn2);
       F.Li = wf.Li.data();
       F.M = wf.M.data();
@@ -488,38 +503,34 @@ struct FactorOperands {
   }
 };
 
-ffi::Error describe_factor(const ffi::AnyBuffer& L, const ffi::AnyBuffer& M, const ffi::AnyBuffer& subT,
-                           const ffi::Buffer<ffi::S32>& ok, const ffi::AnyBuffer& L_lo,
-                           const ffi::AnyBuffer& M_lo, const ffi::AnyBuffer& subT_lo, const BatchShape& bs,
-                           int T, int n, ffi::DataType dt, FactorOperands* fo) {
+ffi::Error describe_factor(const FactorBuffers& in, const BatchShape& bs, int T, int n, ffi::DataType dt,
+                           FactorOperands* fo) {
   fo->T = T;
   fo->n = n;
-  if (ffi::Error e = describe(L, "L", bs, &fo->L); e.failure()) return e;
-  if (ffi::Error e = describe(M, "M", bs, &fo->M); e.failure()) return e;
-  if (ffi::Error e = describe(subT, "subT", bs, &fo->subT); e.failure()) return e;
-  if (ffi::Error e = describe(L_lo, "L_lo", bs, &fo->L_lo); e.failure()) return e;
-  if (ffi::Error e = describe(M_lo, "M_lo", bs, &fo->M_lo); e.failure()) return e;
-  if (ffi::Error e = describe(subT_lo, "subT_lo", bs, &fo->subT_lo); e.failure()) return e;
-  if (L_lo.element_type() != dt || M_lo.element_type() != dt || subT_lo.element_type() != dt)
-    return ffi::Error::InvalidArgument("kalmax_cpu: factor operands must share one dtype");
+  KALMAX_RETURN_IF_ERROR(describe(in.Linv, "Linv", bs, &fo->Linv));
+  KALMAX_RETURN_IF_ERROR(describe(in.M, "M", bs, &fo->M));
+  KALMAX_RETURN_IF_ERROR(describe(in.subT, "subT", bs, &fo->subT));
+  KALMAX_RETURN_IF_ERROR(describe(in.Linv_lo, "Linv_lo", bs, &fo->Linv_lo));
+  KALMAX_RETURN_IF_ERROR(describe(in.M_lo, "M_lo", bs, &fo->M_lo));
+  KALMAX_RETURN_IF_ERROR(describe(in.subT_lo, "subT_lo", bs, &fo->subT_lo));
+  if (in.Linv_lo.element_type() != dt || in.M_lo.element_type() != dt || in.subT_lo.element_type() != dt)
+    return invalid("factor operands must share one dtype");
   const std::vector<int64_t> empty{0};
   const bool lo_ok = dt == ffi::DataType::F32
-                         ? (fo->L_lo.core == fo->L.core && fo->M_lo.core == fo->M.core &&
+                         ? (fo->Linv_lo.core == fo->Linv.core && fo->M_lo.core == fo->M.core &&
                             fo->subT_lo.core == fo->subT.core)
-                         : (fo->L_lo.core == empty && fo->M_lo.core == empty && fo->subT_lo.core == empty);
+                         : (fo->Linv_lo.core == empty && fo->M_lo.core == empty && fo->subT_lo.core == empty);
   if (!lo_ok)
-    return ffi::Error::InvalidArgument(
-        "kalmax_cpu: the lo parts of the factor must match the factor (float32) or have shape (0,) (float64)");
-  if (ffi::Error e = describe(ok.untyped_data(), ok.dimensions(), "ok", bs, &fo->ok); e.failure())
-    return e;
+    return invalid("the lo parts of the factor must match the factor (float32) or have shape (0,) (float64)");
+  KALMAX_RETURN_IF_ERROR(describe(in.ok.untyped_data(), in.ok.dimensions(), "ok", bs, &fo->ok));
   const int64_t N = n, T1 = T > 0 ? T - 1 : 0;
   fo->compact = fo->M.core.size() == 3 && fo->M.core[0] == 0;
-  if (fo->L.core != std::vector<int64_t>{T, N, N} ||
+  if (fo->Linv.core != std::vector<int64_t>{T, N, N} ||
       (!fo->compact && fo->M.core != std::vector<int64_t>{T1, N, N}) ||
       fo->subT.core != std::vector<int64_t>{N, N} || !fo->ok.core.empty())
-    return ffi::Error::InvalidArgument("kalmax_cpu: factor operands have inconsistent shapes");
-  if (L.element_type() != dt || M.element_type() != dt || subT.element_type() != dt)
-    return ffi::Error::InvalidArgument("kalmax_cpu: factor operands must share one dtype");
+    return invalid("factor operands have inconsistent shapes");
+  if (in.Linv.element_type() != dt || in.M.element_type() != dt || in.subT.element_type() != dt)
+    return invalid("factor operands must share one dtype");
   return ffi::Error::Success();
 }
 
@@ -527,11 +538,10 @@ ffi::Error describe_factor(const ffi::AnyBuffer& L, const ffi::AnyBuffer& M, con
 // shape of x for float32, (0,) for float64.
 ffi::Error describe_x_lo(const ffi::AnyBuffer& x_lo, const Operand& oX, const BatchShape& bs, ffi::DataType dt,
                          Operand* op) {
-  if (ffi::Error e = describe(x_lo, "x_lo", bs, op); e.failure()) return e;
+  KALMAX_RETURN_IF_ERROR(describe(x_lo, "x_lo", bs, op));
   const bool fits = x_lo.element_type() == dt &&
                     (dt == ffi::DataType::F32 ? op->core == oX.core : op->core == std::vector<int64_t>{0});
-  if (!fits)
-    return ffi::Error::InvalidArgument("kalmax_cpu: x_lo must match x (float32) or have shape (0,) (float64)");
+  if (!fits) return invalid("x_lo must match x (float32) or have shape (0,) (float64)");
   return ffi::Error::Success();
 }
 
@@ -551,22 +561,21 @@ const double* x_double(const Operand& oX, const Operand& oXlo, const BatchShape&
   }
 }
 
-ffi::Error SolveImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT,
-                     ffi::Buffer<ffi::S32> ok, ffi::AnyBuffer L_lo, ffi::AnyBuffer M_lo,
+ffi::Error SolveImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer subT,
+                     ffi::Buffer<ffi::S32> ok, ffi::AnyBuffer Linv_lo, ffi::AnyBuffer M_lo,
                      ffi::AnyBuffer subT_lo, ffi::AnyBuffer v, ffi::Result<ffi::AnyBuffer> x) {
   BatchShape bs;
-  if (ffi::Error e = batch_from_output(x->dimensions(), 2, &bs); e.failure()) return e;
+  KALMAX_RETURN_IF_ERROR(batch_from_output(x->dimensions(), 2, &bs));
   const auto xd = x->dimensions();
   const int T = static_cast<int>(xd[xd.size() - 2]);
   const int n = static_cast<int>(xd[xd.size() - 1]);
   FactorOperands fo;
-  if (ffi::Error e = describe_factor(L, M, subT, ok, L_lo, M_lo, subT_lo, bs, T, n, x->element_type(), &fo);
-      e.failure())
-    return e;
+  KALMAX_RETURN_IF_ERROR(
+      describe_factor({Linv, M, subT, ok, Linv_lo, M_lo, subT_lo}, bs, T, n, x->element_type(), &fo));
   Operand oV;
-  if (ffi::Error e = describe(v, "v", bs, &oV); e.failure()) return e;
+  KALMAX_RETURN_IF_ERROR(describe(v, "v", bs, &oV));
   if (oV.core != std::vector<int64_t>{T, n} || v.element_type() != x->element_type())
-    return ffi::Error::InvalidArgument("kalmax_cpu: v must have the shape and dtype of the result");
+    return invalid("v must have the shape and dtype of the result");
   advise_huge_pages(x);
   return with_real_type(x->element_type(), [&](auto real) {
     using Real = decltype(real);
@@ -591,8 +600,121 @@ ffi::Error SolveImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT,
   });
 }
 
-ffi::Error GradientsImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT,
-                         ffi::Buffer<ffi::S32> ok, ffi::AnyBuffer L_lo, ffi::AnyBuffer M_lo,
+// ---------------------------------------------------------------------------
+// What the gradient and log-likelihood handlers share.
+
+// Their inputs: x (with the lo part of a float32 x), the stored factor and
+// the model, described for the batch of the gradient outputs.
+struct GradientOperands {
+  BatchShape bs;
+  Operand x, x_lo, xbar;
+  FactorOperands fo;
+  ModelOperands mo;
+  int T = 0, n = 0;
+};
+
+// out_dims: the dimensions of ȳ, which fix the batch. xbar: the gradient
+// handler's cotangent, checked alongside x; nullptr for the log-likelihood.
+ffi::Error describe_gradient_operands(ffi::AnyBuffer::Dimensions out_dims, const ffi::AnyBuffer& x,
+                                      const ffi::AnyBuffer& x_lo, const ffi::AnyBuffer* xbar,
+                                      const FactorBuffers& factor, const ffi::AnyBuffer (&model)[10],
+                                      GradientOperands* go) {
+  KALMAX_RETURN_IF_ERROR(batch_from_output(out_dims, 2, &go->bs));
+  KALMAX_RETURN_IF_ERROR(describe(x, "x", go->bs, &go->x));
+  if (xbar != nullptr) {
+    KALMAX_RETURN_IF_ERROR(describe(*xbar, "x_bar", go->bs, &go->xbar));
+    if (go->x.core.size() != 2 || go->xbar.core != go->x.core) return invalid("x and x_bar must have shape (T, n)");
+  } else if (go->x.core.size() != 2) {
+    return invalid("x must have shape (T, n)");
+  }
+  const ffi::DataType dt = model[8].element_type();  // y's
+  KALMAX_RETURN_IF_ERROR(describe_x_lo(x_lo, go->x, go->bs, dt, &go->x_lo));
+  go->T = static_cast<int>(go->x.core[0]);
+  go->n = static_cast<int>(go->x.core[1]);
+  KALMAX_RETURN_IF_ERROR(describe_factor(factor, go->bs, go->T, go->n, dt, &go->fo));
+  KALMAX_RETURN_IF_ERROR(describe_model(model, go->bs, go->T, go->n, &go->mo));
+  if (go->fo.compact != (go->mo.kA == Kind::kInvariant && go->mo.kQ == Kind::kInvariant) && go->T > 1)
+    return invalid("factor form does not match the model");
+  return ffi::Error::Success();
+}
+
+// Their outputs: the gradients w.r.t. A, Q, b, C, R, d, x0_mean, x0_cov, y,
+// in this order.
+constexpr int kModelGradients = 9;
+using GradientResults = ffi::Result<ffi::AnyBuffer>* const (&)[kModelGradients];
+
+// The model operand that each gradient output has the shape of.
+std::array<const Operand*, kModelGradients> gradient_shapes(const ModelOperands& mo) {
+  return {&mo.A, &mo.Q, &mo.b, &mo.C, &mo.R, &mo.d, &mo.m0, &mo.P0, &mo.y};
+}
+
+// Each gradient output must have its input's core shape with full batch
+// dims, and y's dtype; then huge pages are advised for all of them.
+ffi::Error prepare_gradient_outputs(GradientResults outs, const ModelOperands& mo, const BatchShape& bs,
+                                    ffi::DataType dt) {
+  const auto ins = gradient_shapes(mo);
+  for (int i = 0; i < kModelGradients; ++i) {
+    if ((*outs[i])->element_type() != dt ||
+        static_cast<int64_t>((*outs[i])->element_count()) != bs.count * ins[i]->core_size)
+      return invalid("gradient output " + std::to_string(i) + " has an unexpected size or dtype");
+  }
+  for (auto* out : outs) advise_huge_pages(*out);
+  return ffi::Error::Success();
+}
+
+// The gradient outputs of one trajectory at a time, as the double passes
+// write them: the output buffers themselves (float64) or scratch that
+// store() rounds into them (float32). One per thread (it owns the scratch).
+template <class Real>
+class GradientOutputs {
+ public:
+  GradientOutputs(GradientResults outs, const ModelOperands& mo, int n)
+      : kinds_{mo.kA, mo.kQ, mo.kb, mo.kC, mo.kR, mo.kd, mo.km0, mo.kP0} {
+    const std::size_t p = mo.p, nn = n;
+    const std::size_t items[] = {nn * nn, nn * nn, nn, p * nn, p * p, p, nn, nn * nn};
+    std::copy(items, items + kFields, items_);
+    const auto ins = gradient_shapes(mo);
+    for (int f = 0; f < kModelGradients; ++f) {
+      base_[f] = static_cast<Real*>((*outs[f])->untyped_data());
+      sizes_[f] = ins[f]->core_size;
+    }
+  }
+
+  // G aimed at trajectory b's outputs (absent fields stay absent).
+  Gradients<double> bind(int64_t b) {
+    Gradients<double> G;
+    GradSink<double>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
+    for (int f = 0; f < kModelGradients; ++f) dst_[f] = base_[f] + b * sizes_[f];
+    for (int f = 0; f < kFields; ++f) {
+      if (kinds_[f] == Kind::kAbsent) continue;
+      sinks[f]->out = double_out(dst_[f], buf_[f], sizes_[f]);
+      sinks[f]->tv = kinds_[f] == Kind::kVarying;
+      sinks[f]->item = items_[f];
+    }
+    G.y = double_out(dst_[kFields], buf_[kFields], sizes_[kFields]);
+    return G;
+  }
+
+  // Rounds what the pass wrote through G into the outputs (nothing to do for float64).
+  void store(const Gradients<double>& G) {
+    const GradSink<double>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
+    for (int f = 0; f < kFields; ++f)
+      if (kinds_[f] != Kind::kAbsent) finish(sinks[f]->out, dst_[f], sizes_[f]);
+    finish(G.y, dst_[kFields], sizes_[kFields]);
+  }
+
+ private:
+  static constexpr int kFields = kModelGradients - 1;  // the model's; ȳ last
+  Kind kinds_[kFields];
+  std::size_t items_[kFields];
+  Real* base_[kModelGradients];
+  int64_t sizes_[kModelGradients];
+  Real* dst_[kModelGradients];
+  Scratch buf_[kModelGradients];
+};
+
+ffi::Error GradientsImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer subT,
+                         ffi::Buffer<ffi::S32> ok, ffi::AnyBuffer Linv_lo, ffi::AnyBuffer M_lo,
                          ffi::AnyBuffer subT_lo, ffi::AnyBuffer x, ffi::AnyBuffer x_lo, ffi::AnyBuffer xbar,
                          ffi::AnyBuffer A, ffi::AnyBuffer Q,
                          ffi::AnyBuffer b, ffi::AnyBuffer C, ffi::AnyBuffer R, ffi::AnyBuffer d,
@@ -602,48 +724,21 @@ ffi::Error GradientsImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT
                          ffi::Result<ffi::AnyBuffer> gR, ffi::Result<ffi::AnyBuffer> gd,
                          ffi::Result<ffi::AnyBuffer> gm0, ffi::Result<ffi::AnyBuffer> gP0,
                          ffi::Result<ffi::AnyBuffer> gy) {
-  BatchShape bs;
-  if (ffi::Error e = batch_from_output(gy->dimensions(), 2, &bs); e.failure()) return e;
-  Operand oX, oXb, oXlo;
-  if (ffi::Error e = describe(x, "x", bs, &oX); e.failure()) return e;
-  if (ffi::Error e = describe(xbar, "x_bar", bs, &oXb); e.failure()) return e;
-  if (oX.core.size() != 2 || oXb.core != oX.core)
-    return ffi::Error::InvalidArgument("kalmax_cpu: x and x_bar must have shape (T, n)");
-  if (ffi::Error e = describe_x_lo(x_lo, oX, bs, y.element_type(), &oXlo); e.failure()) return e;
-  const int T = static_cast<int>(oX.core[0]);
-  const int n = static_cast<int>(oX.core[1]);
-  FactorOperands fo;
-  if (ffi::Error e = describe_factor(L, M, subT, ok, L_lo, M_lo, subT_lo, bs, T, n, y.element_type(), &fo);
-      e.failure())
-    return e;
-  const ffi::AnyBuffer in[] = {A, Q, b, C, R, d, m0, P0, y, w};
-  ModelOperands mo;
-  if (ffi::Error e = describe_model(in, bs, T, n, &mo); e.failure()) return e;
-  if (fo.compact != (mo.kA == Kind::kInvariant && mo.kQ == Kind::kInvariant) && T > 1)
-    return ffi::Error::InvalidArgument("kalmax_cpu: factor form does not match the model");
+  const ffi::AnyBuffer model[] = {A, Q, b, C, R, d, m0, P0, y, w};
+  GradientOperands go;
+  KALMAX_RETURN_IF_ERROR(describe_gradient_operands(gy->dimensions(), x, x_lo, &xbar,
+                                                    {Linv, M, subT, ok, Linv_lo, M_lo, subT_lo}, model, &go));
   if (x.element_type() != y.element_type() || xbar.element_type() != y.element_type())
-    return ffi::Error::InvalidArgument("kalmax_cpu: operands must share one dtype");
-
-  // Each gradient output must have its input's core shape with full batch dims.
-  ffi::Result<ffi::AnyBuffer>* outs[] = {&gA, &gQ, &gb, &gC, &gR, &gd, &gm0, &gP0, &gy};
-  const Operand* ins[] = {&mo.A, &mo.Q, &mo.b, &mo.C, &mo.R, &mo.d, &mo.m0, &mo.P0, &mo.y};
-  for (int i = 0; i < 9; ++i) {
-    if ((*outs[i])->element_type() != y.element_type() ||
-        static_cast<int64_t>((*outs[i])->element_count()) != bs.count * ins[i]->core_size)
-      return ffi::Error::InvalidArgument("kalmax_cpu: gradient output " + std::to_string(i) +
-                                         " has an unexpected size or dtype");
-  }
-
-  for (auto* out : outs) advise_huge_pages(*out);
+    return invalid("operands must share one dtype");
+  ffi::Result<ffi::AnyBuffer>* const outs[] = {&gA, &gQ, &gb, &gC, &gR, &gd, &gm0, &gP0, &gy};
+  KALMAX_RETURN_IF_ERROR(prepare_gradient_outputs(outs, go.mo, go.bs, y.element_type()));
+  const BatchShape& bs = go.bs;
+  const int T = go.T, n = go.n;
   return with_real_type(y.element_type(), [&](auto real) {
     using Real = decltype(real);
     return with_state_size(n, [&](auto nk) {
       constexpr int NK = decltype(nk)::value;
-      const int p = mo.p;
-      const Kind kinds[] = {mo.kA, mo.kQ, mo.kb, mo.kC, mo.kR, mo.kd, mo.km0, mo.kP0};
-      const std::size_t items[] = {std::size_t(n) * n, std::size_t(n) * n, std::size_t(n),
-                                   std::size_t(p) * n, std::size_t(p) * p, std::size_t(p),
-                                   std::size_t(n), std::size_t(n) * n};
+      const int p = go.mo.p;
       const std::size_t Tn = std::size_t(T) * n;
       for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
         std::vector<double> ws(workspace_reals(n, p));
@@ -654,32 +749,20 @@ ffi::Error GradientsImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT
         advise_huge_pages(u.get(), u_size * sizeof(double));
         std::vector<double> acc(accumulator_size(n, p));
         std::vector<int> idx(p + 1);
-        PatternCaches<double> caches(mo);
+        PatternCaches<double> caches(go.mo);
         WideTrajectory wide_P;
         WideFactor wf;
-        Scratch xbuf, xbbuf, obuf[9];
+        Scratch xbuf, xbbuf;
+        GradientOutputs<Real> grads(outs, go.mo, n);
         for (int64_t bi = begin; bi < end; ++bi) {
-          const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
+          const Trajectory<Real> P = trajectory<Real>(go.mo, bs, bi);
           const Trajectory<double> W = as_double(P, wide_P);
-          Gradients<double> G;
-          GradSink<double>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
-          Real* dst[9];
-          for (int f = 0; f < 9; ++f)
-            dst[f] = static_cast<Real*>((*outs[f])->untyped_data()) + bi * ins[f]->core_size;
-          for (int f = 0; f < 8; ++f) {
-            if (kinds[f] == Kind::kAbsent) continue;
-            sinks[f]->out = double_out(dst[f], obuf[f], ins[f]->core_size);
-            sinks[f]->tv = kinds[f] == Kind::kVarying;
-            sinks[f]->item = items[f];
-          }
-          G.y = double_out(dst[8], obuf[8], mo.y.core_size);
-          gradients_one<double, NK>(W, fo.view<Real>(bs, bi, wf), fo.ok_at(bs, bi),
-                                    x_double<Real>(oX, oXlo, bs, bi, xbuf, Tn),
-                                    as_double(at<Real>(oXb, bs, bi), xbbuf, Tn), G, ws.data(), u.get(),
+          Gradients<double> G = grads.bind(bi);
+          gradients_one<double, NK>(W, go.fo.view<Real>(bs, bi, wf), go.fo.ok_at(bs, bi),
+                                    x_double<Real>(go.x, go.x_lo, bs, bi, xbuf, Tn),
+                                    as_double(at<Real>(go.xbar, bs, bi), xbbuf, Tn), G, ws.data(), u.get(),
                                     acc.data(), idx.data(), caches.get(W, P.C, P.R));
-          for (int f = 0; f < 8; ++f)
-            if (kinds[f] != Kind::kAbsent) finish(sinks[f]->out, dst[f], ins[f]->core_size);
-          finish(G.y, dst[8], mo.y.core_size);
+          grads.store(G);
         }
       });
       return ffi::Error::Success();
@@ -687,23 +770,20 @@ ffi::Error GradientsImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT
   });
 }
 
-
-ffi::Error BandImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi::Buffer<ffi::S32> ok,
-                    ffi::AnyBuffer L_lo, ffi::AnyBuffer M_lo, ffi::AnyBuffer subT_lo,
+ffi::Error BandImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi::Buffer<ffi::S32> ok,
+                    ffi::AnyBuffer Linv_lo, ffi::AnyBuffer M_lo, ffi::AnyBuffer subT_lo,
                     ffi::Result<ffi::AnyBuffer> diag, ffi::Result<ffi::AnyBuffer> sub) {
   BatchShape bs;
-  if (ffi::Error e = batch_from_output(diag->dimensions(), 3, &bs); e.failure()) return e;
+  KALMAX_RETURN_IF_ERROR(batch_from_output(diag->dimensions(), 3, &bs));
   const auto dd = diag->dimensions();
   const int T = static_cast<int>(dd[dd.size() - 3]);
   const int n = static_cast<int>(dd[dd.size() - 1]);
   FactorOperands fo;
-  if (ffi::Error e =
-          describe_factor(L, M, subT, ok, L_lo, M_lo, subT_lo, bs, T, n, diag->element_type(), &fo);
-      e.failure())
-    return e;
+  KALMAX_RETURN_IF_ERROR(
+      describe_factor({Linv, M, subT, ok, Linv_lo, M_lo, subT_lo}, bs, T, n, diag->element_type(), &fo));
   if (static_cast<int64_t>(sub->element_count()) != bs.count * int64_t(T > 0 ? T - 1 : 0) * n * n ||
       sub->element_type() != diag->element_type())
-    return ffi::Error::InvalidArgument("kalmax_cpu: band outputs have unexpected sizes");
+    return invalid("band outputs have unexpected sizes");
   advise_huge_pages(diag);
   advise_huge_pages(sub);
   return with_real_type(diag->element_type(), [&](auto real) {
@@ -730,8 +810,8 @@ ffi::Error BandImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi
   });
 }
 
-ffi::Error LoglikImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi::Buffer<ffi::S32> ok,
-                      ffi::AnyBuffer L_lo, ffi::AnyBuffer M_lo, ffi::AnyBuffer subT_lo, ffi::AnyBuffer x,
+ffi::Error LoglikImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi::Buffer<ffi::S32> ok,
+                      ffi::AnyBuffer Linv_lo, ffi::AnyBuffer M_lo, ffi::AnyBuffer subT_lo, ffi::AnyBuffer x,
                       ffi::AnyBuffer x_lo, ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b,
                       ffi::AnyBuffer C, ffi::AnyBuffer R, ffi::AnyBuffer d, ffi::AnyBuffer m0,
                       ffi::AnyBuffer P0, ffi::AnyBuffer y, ffi::AnyBuffer w,
@@ -740,81 +820,90 @@ ffi::Error LoglikImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, f
                       ffi::Result<ffi::AnyBuffer> gC, ffi::Result<ffi::AnyBuffer> gR,
                       ffi::Result<ffi::AnyBuffer> gd, ffi::Result<ffi::AnyBuffer> gm0,
                       ffi::Result<ffi::AnyBuffer> gP0, ffi::Result<ffi::AnyBuffer> gy) {
-  BatchShape bs;
-  if (ffi::Error e = batch_from_output(gy->dimensions(), 2, &bs); e.failure()) return e;
-  Operand oX, oXlo;
-  if (ffi::Error e = describe(x, "x", bs, &oX); e.failure()) return e;
-  if (oX.core.size() != 2) return ffi::Error::InvalidArgument("kalmax_cpu: x must have shape (T, n)");
-  if (ffi::Error e = describe_x_lo(x_lo, oX, bs, y.element_type(), &oXlo); e.failure()) return e;
-  const int T = static_cast<int>(oX.core[0]);
-  const int n = static_cast<int>(oX.core[1]);
-  FactorOperands fo;
-  if (ffi::Error e = describe_factor(L, M, subT, ok, L_lo, M_lo, subT_lo, bs, T, n, y.element_type(), &fo);
-      e.failure())
-    return e;
-  const ffi::AnyBuffer in[] = {A, Q, b, C, R, d, m0, P0, y, w};
-  ModelOperands mo;
-  if (ffi::Error e = describe_model(in, bs, T, n, &mo); e.failure()) return e;
-  if (fo.compact != (mo.kA == Kind::kInvariant && mo.kQ == Kind::kInvariant) && T > 1)
-    return ffi::Error::InvalidArgument("kalmax_cpu: factor form does not match the model");
+  const ffi::AnyBuffer model[] = {A, Q, b, C, R, d, m0, P0, y, w};
+  GradientOperands go;
+  KALMAX_RETURN_IF_ERROR(describe_gradient_operands(gy->dimensions(), x, x_lo, nullptr,
+                                                    {Linv, M, subT, ok, Linv_lo, M_lo, subT_lo}, model, &go));
   if (x.element_type() != y.element_type() || value->element_type() != y.element_type() ||
-      static_cast<int64_t>(value->element_count()) != bs.count)
-    return ffi::Error::InvalidArgument("kalmax_cpu: value must be one scalar of y's dtype per trajectory");
-  ffi::Result<ffi::AnyBuffer>* outs[] = {&gA, &gQ, &gb, &gC, &gR, &gd, &gm0, &gP0, &gy};
-  const Operand* ins[] = {&mo.A, &mo.Q, &mo.b, &mo.C, &mo.R, &mo.d, &mo.m0, &mo.P0, &mo.y};
-  for (int i = 0; i < 9; ++i) {
-    if ((*outs[i])->element_type() != y.element_type() ||
-        static_cast<int64_t>((*outs[i])->element_count()) != bs.count * ins[i]->core_size)
-      return ffi::Error::InvalidArgument("kalmax_cpu: gradient output " + std::to_string(i) +
-                                         " has an unexpected size or dtype");
-  }
-  for (auto* out : outs) advise_huge_pages(*out);
+      static_cast<int64_t>(value->element_count()) != go.bs.count)
+    return invalid("value must be one scalar of y's dtype per trajectory");
+  ffi::Result<ffi::AnyBuffer>* const outs[] = {&gA, &gQ, &gb, &gC, &gR, &gd, &gm0, &gP0, &gy};
+  KALMAX_RETURN_IF_ERROR(prepare_gradient_outputs(outs, go.mo, go.bs, y.element_type()));
+  const BatchShape& bs = go.bs;
+  const int T = go.T, n = go.n;
   return with_real_type(y.element_type(), [&](auto real) {
     using Real = decltype(real);
     return with_state_size(n, [&](auto nk) {
       constexpr int NK = decltype(nk)::value;
-      const int p = mo.p;
-      const Kind kinds[] = {mo.kA, mo.kQ, mo.kb, mo.kC, mo.kR, mo.kd, mo.km0, mo.kP0};
-      const std::size_t items[] = {std::size_t(n) * n, std::size_t(n) * n, std::size_t(n),
-                                   std::size_t(p) * n, std::size_t(p) * p, std::size_t(p),
-                                   std::size_t(n), std::size_t(n) * n};
+      const int p = go.mo.p;
       Real* vo = static_cast<Real*>(value->untyped_data());
       const std::size_t Tn = std::size_t(T) * n;
       for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
         std::vector<double> acc(accumulator_size(n, p));
         std::vector<int> idx(p + 1);
-        PatternCaches<double> caches(mo);
+        PatternCaches<double> caches(go.mo);
         WideTrajectory wide_P;
         WideFactor wf;
-        Scratch xbuf, obuf[9];
+        Scratch xbuf;
+        GradientOutputs<Real> grads(outs, go.mo, n);
         for (int64_t bi = begin; bi < end; ++bi) {
-          const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
+          const Trajectory<Real> P = trajectory<Real>(go.mo, bs, bi);
           const Trajectory<double> W = as_double(P, wide_P);
-          Gradients<double> G;
-          GradSink<double>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
-          Real* dst[9];
-          for (int f = 0; f < 9; ++f)
-            dst[f] = static_cast<Real*>((*outs[f])->untyped_data()) + bi * ins[f]->core_size;
-          for (int f = 0; f < 8; ++f) {
-            if (kinds[f] == Kind::kAbsent) continue;
-            sinks[f]->out = double_out(dst[f], obuf[f], ins[f]->core_size);
-            sinks[f]->tv = kinds[f] == Kind::kVarying;
-            sinks[f]->item = items[f];
-          }
-          G.y = double_out(dst[8], obuf[8], mo.y.core_size);
+          Gradients<double> G = grads.bind(bi);
           double value_d = 0;
-          loglik_one<double, NK>(W, fo.view<Real>(bs, bi, wf), fo.ok_at(bs, bi),
-                                 x_double<Real>(oX, oXlo, bs, bi, xbuf, Tn), &value_d, G, acc.data(), idx.data(),
-                                 caches.get(W, P.C, P.R));
+          loglik_one<double, NK>(W, go.fo.view<Real>(bs, bi, wf), go.fo.ok_at(bs, bi),
+                                 x_double<Real>(go.x, go.x_lo, bs, bi, xbuf, Tn), &value_d, G, acc.data(),
+                                 idx.data(), caches.get(W, P.C, P.R));
           vo[bi] = static_cast<Real>(value_d);
-          for (int f = 0; f < 8; ++f)
-            if (kinds[f] != Kind::kAbsent) finish(sinks[f]->out, dst[f], ins[f]->core_size);
-          finish(G.y, dst[8], mo.y.core_size);
+          grads.store(G);
         }
       });
       return ffi::Error::Success();
     });
   });
+}
+
+// The operand groups that several handlers share, each bound in the order of
+// the handlers' parameters in one place.
+
+// One more AnyBuffer result (ret) or operand (!ret) on a binding.
+template <bool ret, class B>
+auto bind_buffer(B&& binding) {
+  if constexpr (ret)
+    return std::forward<B>(binding).template Ret<ffi::AnyBuffer>();
+  else
+    return std::forward<B>(binding).template Arg<ffi::AnyBuffer>();
+}
+
+// `count` (≥ 1) of them. Every step returns the new binding as a prvalue:
+// bindings cannot be moved from outside.
+template <bool ret, int count, class B>
+auto bind_buffers(B&& binding) {
+  static_assert(count >= 1, "bind at least one buffer");
+  if constexpr (count == 1)
+    return bind_buffer<ret>(std::forward<B>(binding));
+  else
+    return bind_buffers<ret, count - 1>(bind_buffer<ret>(std::forward<B>(binding)));
+}
+
+// The stored factor (FactorBuffers: Linv, M, subT, ok, Linv_lo, M_lo,
+// subT_lo), as the solve, gradient, band and log-likelihood take it.
+template <class B>
+auto bind_factor(B&& binding) {
+  return bind_buffers<false, 3>(
+      bind_buffers<false, 3>(std::forward<B>(binding)).template Arg<ffi::Buffer<ffi::S32>>());
+}
+
+// The model and the data (ModelOperands: A, Q, b, C, R, d, x0_mean, x0_cov, y, w).
+template <class B>
+auto bind_model(B&& binding) {
+  return bind_buffers<false, 10>(std::forward<B>(binding));
+}
+
+// The gradients w.r.t. the model and y (GradientResults: Ā, Q̄, b̄, C̄, R̄, d̄, m̄0, P̄0, ȳ).
+template <class B>
+auto bind_model_gradients(B&& binding) {
+  return bind_buffers<true, kModelGradients>(std::forward<B>(binding));
 }
 
 }  // namespace
@@ -823,26 +912,16 @@ ffi::Error LoglikImpl(ffi::AnyBuffer L, ffi::AnyBuffer M, ffi::AnyBuffer subT, f
 namespace kc = kalmax_cpu;
 
 XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuForward, kc::ForwardImpl,
-                              ffi::Ffi::Bind()
-                                  .Arg<ffi::AnyBuffer>()  // A
-                                  .Arg<ffi::AnyBuffer>()  // Q
-                                  .Arg<ffi::AnyBuffer>()  // b
-                                  .Arg<ffi::AnyBuffer>()  // C
-                                  .Arg<ffi::AnyBuffer>()  // R
-                                  .Arg<ffi::AnyBuffer>()  // d
-                                  .Arg<ffi::AnyBuffer>()  // x0_mean
-                                  .Arg<ffi::AnyBuffer>()  // x0_cov
-                                  .Arg<ffi::AnyBuffer>()  // y
-                                  .Arg<ffi::AnyBuffer>()  // w
-                                  .Ret<ffi::AnyBuffer>()  // x
-                                  .Ret<ffi::AnyBuffer>()  // L
-                                  .Ret<ffi::AnyBuffer>()  // M
-                                  .Ret<ffi::AnyBuffer>()  // subT
+                              kc::bind_model(ffi::Ffi::Bind())
+                                  .Ret<ffi::AnyBuffer>()         // x
+                                  .Ret<ffi::AnyBuffer>()         // Linv
+                                  .Ret<ffi::AnyBuffer>()         // M
+                                  .Ret<ffi::AnyBuffer>()         // subT
                                   .Ret<ffi::Buffer<ffi::S32>>()  // ok
-                                  .Ret<ffi::AnyBuffer>()  // L_lo   (float32: the factor's low parts;
-                                  .Ret<ffi::AnyBuffer>()  // M_lo    float64: shape (0,))
-                                  .Ret<ffi::AnyBuffer>()  // subT_lo
-                                  .Ret<ffi::AnyBuffer>()  // x_lo   (float32: x − fl32(x) of the double answer)
+                                  .Ret<ffi::AnyBuffer>()         // Linv_lo (float32: the factor's low parts;
+                                  .Ret<ffi::AnyBuffer>()         // M_lo     float64: shape (0,))
+                                  .Ret<ffi::AnyBuffer>()         // subT_lo
+                                  .Ret<ffi::AnyBuffer>()         // x_lo    (float32: x − fl32(x) of the double answer)
                                   // Settings from kalmax/_src/tolerances.py (never copied here).
                                   .Attr<double>("pivot_tolerance")
                                   .Attr<double>("trusted_error")
@@ -850,89 +929,25 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuForward, kc::ForwardImpl,
                                   .Attr<double>("stall_ratio"));
 
 XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuSolve, kc::SolveImpl,
-                              ffi::Ffi::Bind()
-                                  .Arg<ffi::AnyBuffer>()          // L
-                                  .Arg<ffi::AnyBuffer>()          // M
-                                  .Arg<ffi::AnyBuffer>()          // subT
-                                  .Arg<ffi::Buffer<ffi::S32>>()   // ok
-                                  .Arg<ffi::AnyBuffer>()          // L_lo
-                                  .Arg<ffi::AnyBuffer>()          // M_lo
-                                  .Arg<ffi::AnyBuffer>()          // subT_lo
-                                  .Arg<ffi::AnyBuffer>()          // v
-                                  .Ret<ffi::AnyBuffer>());        // H⁻¹ v
+                              kc::bind_factor(ffi::Ffi::Bind())
+                                  .Arg<ffi::AnyBuffer>()    // v
+                                  .Ret<ffi::AnyBuffer>());  // H⁻¹ v
 
+// (factor, x, x_lo, x_bar, model) -> model gradients
 XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuGradients, kc::GradientsImpl,
-                              ffi::Ffi::Bind()
-                                  .Arg<ffi::AnyBuffer>()         // L
-                                  .Arg<ffi::AnyBuffer>()         // M
-                                  .Arg<ffi::AnyBuffer>()         // subT
-                                  .Arg<ffi::Buffer<ffi::S32>>()  // ok
-                                  .Arg<ffi::AnyBuffer>()         // L_lo
-                                  .Arg<ffi::AnyBuffer>()         // M_lo
-                                  .Arg<ffi::AnyBuffer>()         // subT_lo
-                                  .Arg<ffi::AnyBuffer>()         // x
-                                  .Arg<ffi::AnyBuffer>()         // x_lo
-                                  .Arg<ffi::AnyBuffer>()         // x_bar
-                                  .Arg<ffi::AnyBuffer>()         // A
-                                  .Arg<ffi::AnyBuffer>()         // Q
-                                  .Arg<ffi::AnyBuffer>()         // b
-                                  .Arg<ffi::AnyBuffer>()         // C
-                                  .Arg<ffi::AnyBuffer>()         // R
-                                  .Arg<ffi::AnyBuffer>()         // d
-                                  .Arg<ffi::AnyBuffer>()         // x0_mean
-                                  .Arg<ffi::AnyBuffer>()         // x0_cov
-                                  .Arg<ffi::AnyBuffer>()         // y
-                                  .Arg<ffi::AnyBuffer>()         // w
-                                  .Ret<ffi::AnyBuffer>()         // Ā
-                                  .Ret<ffi::AnyBuffer>()         // Q̄
-                                  .Ret<ffi::AnyBuffer>()         // b̄
-                                  .Ret<ffi::AnyBuffer>()         // C̄
-                                  .Ret<ffi::AnyBuffer>()         // R̄
-                                  .Ret<ffi::AnyBuffer>()         // d̄
-                                  .Ret<ffi::AnyBuffer>()         // m̄0
-                                  .Ret<ffi::AnyBuffer>()         // P̄0
-                                  .Ret<ffi::AnyBuffer>());       // ȳ
+                              kc::bind_model_gradients(kc::bind_model(kc::bind_factor(ffi::Ffi::Bind())
+                                                                          .Arg<ffi::AnyBuffer>()      // x
+                                                                          .Arg<ffi::AnyBuffer>()      // x_lo
+                                                                          .Arg<ffi::AnyBuffer>())));  // x_bar
 
 XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuBand, kc::BandImpl,
-                              ffi::Ffi::Bind()
-                                  .Arg<ffi::AnyBuffer>()         // L
-                                  .Arg<ffi::AnyBuffer>()         // M
-                                  .Arg<ffi::AnyBuffer>()         // subT
-                                  .Arg<ffi::Buffer<ffi::S32>>()  // ok
-                                  .Arg<ffi::AnyBuffer>()         // L_lo
-                                  .Arg<ffi::AnyBuffer>()         // M_lo
-                                  .Arg<ffi::AnyBuffer>()         // subT_lo
-                                  .Ret<ffi::AnyBuffer>()         // Σ_tt
-                                  .Ret<ffi::AnyBuffer>());       // Σ_{t+1,t}
+                              kc::bind_factor(ffi::Ffi::Bind())
+                                  .Ret<ffi::AnyBuffer>()    // Σ_tt
+                                  .Ret<ffi::AnyBuffer>());  // Σ_{t+1,t}
 
+// (factor, x, x_lo, model) -> (log p(y), model gradients)
 XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuLoglik, kc::LoglikImpl,
-                              ffi::Ffi::Bind()
-                                  .Arg<ffi::AnyBuffer>()         // L
-                                  .Arg<ffi::AnyBuffer>()         // M
-                                  .Arg<ffi::AnyBuffer>()         // subT
-                                  .Arg<ffi::Buffer<ffi::S32>>()  // ok
-                                  .Arg<ffi::AnyBuffer>()         // L_lo
-                                  .Arg<ffi::AnyBuffer>()         // M_lo
-                                  .Arg<ffi::AnyBuffer>()         // subT_lo
-                                  .Arg<ffi::AnyBuffer>()         // x
-                                  .Arg<ffi::AnyBuffer>()         // x_lo
-                                  .Arg<ffi::AnyBuffer>()         // A
-                                  .Arg<ffi::AnyBuffer>()         // Q
-                                  .Arg<ffi::AnyBuffer>()         // b
-                                  .Arg<ffi::AnyBuffer>()         // C
-                                  .Arg<ffi::AnyBuffer>()         // R
-                                  .Arg<ffi::AnyBuffer>()         // d
-                                  .Arg<ffi::AnyBuffer>()         // x0_mean
-                                  .Arg<ffi::AnyBuffer>()         // x0_cov
-                                  .Arg<ffi::AnyBuffer>()         // y
-                                  .Arg<ffi::AnyBuffer>()         // w
-                                  .Ret<ffi::AnyBuffer>()         // log p(y)
-                                  .Ret<ffi::AnyBuffer>()         // Ā
-                                  .Ret<ffi::AnyBuffer>()         // Q̄
-                                  .Ret<ffi::AnyBuffer>()         // b̄
-                                  .Ret<ffi::AnyBuffer>()         // C̄
-                                  .Ret<ffi::AnyBuffer>()         // R̄
-                                  .Ret<ffi::AnyBuffer>()         // d̄
-                                  .Ret<ffi::AnyBuffer>()         // m̄0
-                                  .Ret<ffi::AnyBuffer>()         // P̄0
-                                  .Ret<ffi::AnyBuffer>());       // ȳ
+                              kc::bind_model_gradients(kc::bind_model(kc::bind_factor(ffi::Ffi::Bind())
+                                                                          .Arg<ffi::AnyBuffer>()   // x
+                                                                          .Arg<ffi::AnyBuffer>())  // x_lo
+                                                           .Ret<ffi::AnyBuffer>()));               // log p(y)

@@ -49,21 +49,12 @@ inline void matmul(Real* C, const Real* A, bool ta, const Real* B, bool tb, int 
     }
 }
 
-// Inverse of a symmetric positive-definite matrix, and its log-determinant.
+// Inverse of a symmetric positive-definite matrix, and its log-determinant
+// (L: its Cholesky factor; scratch: n entries).
 template <class Real, int NK>
-inline bool spd_inverse(Real* out, Real* logdet, const Real* S, int n_, Real* L, Real* scratch) {
-  const int n = fixed<NK>(n_);
-  sym_lower<Real, NK>(L, S, n);
-  if (!cholesky<Real, NK>(L, L, n, scratch)) return false;
-  Real ld = 0;
-  for (int i = 0; i < n; ++i) ld += Real(2) * std::log(L[i * n + i]);
-  *logdet = ld;
-  for (int j = 0; j < n; ++j) {  // column j of S⁻¹
-    for (int i = 0; i < n; ++i) scratch[i] = Real(i == j);
-    lsolve_vec<Real, NK>(L, scratch, scratch, n);
-    ltsolve_vec_inplace<Real, NK>(L, scratch, n);
-    for (int i = 0; i < n; ++i) out[i * n + j] = scratch[i];
-  }
+inline bool spd_inverse(Real* out, Real* logdet, const Real* S, int n, Real* L, Real* scratch) {
+  if (!sym_cholesky_inverse<Real, NK>(out, L, S, n, scratch)) return false;
+  *logdet = cholesky_logdet(L, fixed<NK>(n));
   return true;
 }
 
@@ -126,27 +117,10 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
   const int T = P.T, n = fixed<NK>(P.n), p = P.p;
   const std::size_t n2 = std::size_t(n) * n;
 
-  GradSink<Real>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
-  const int steps[] = {T - 1, T - 1, T - 1, T, T, T, 1, 1};
-  auto blocks = [&](int f) { return sinks[f]->tv ? std::size_t(steps[f] > 0 ? steps[f] : 0) : 1; };
-  double* next_acc = acc;
-  for (int f = 0; f < 8; ++f) {
-    GradSink<Real>& s = *sinks[f];
-    if (!s.present()) continue;
-    fill(s.out, blocks(f) * s.item, Real(0));
-    if (!s.tv) {
-      s.acc = next_acc;
-      next_acc += s.item;
-      std::fill(s.acc, s.acc + s.item, 0.0);
-    }
-  }
-  fill(G.y, std::size_t(T) * p, Real(0));
-  const Real nan = quiet_nan<Real>();
+  const GradSinks<Real> sinks(G, T, n, p, acc);
   auto fail_all = [&]() {
-    for (int f = 0; f < 8; ++f)
-      if (sinks[f]->present()) fill(sinks[f]->out, blocks(f) * sinks[f]->item, nan);
-    fill(G.y, std::size_t(T) * p, nan);
-    *value = nan;
+    sinks.fail();
+    *value = quiet_nan<Real>();
   };
   if (!ok) {
     fail_all();
@@ -183,13 +157,6 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
     fail_all();
     return;
   }
-  auto dst = [](GradSink<Real>& s, int t, auto&& fn) {
-    if (!s.present()) return;
-    if (s.tv)
-      fn(s.out + std::size_t(t) * s.item);
-    else
-      fn(s.acc);
-  };
   bool failed = false;
 
   band_sweep<Real, NK>(F, T, n, [&](int t, const Real* S, const Real* X, const Real* S_next) {
@@ -222,7 +189,7 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
           for (std::size_t i = 0; i < n2; ++i) G.A.acc[i] += E1[i];
         } else {
           matmul<Real, NK>(T2, Qinv, false, E1, false, n);
-          dst(G.A, t, [&](auto* g) { for (std::size_t i = 0; i < n2; ++i) g[i] += T2[i]; });
+          G.A.add_at(t, [&](auto* g) { for (std::size_t i = 0; i < n2; ++i) g[i] += T2[i]; });
         }
       }
       if (G.Q.present()) {
@@ -243,54 +210,39 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
         if (raw && !G.b.tv) {
           for (int i = 0; i < n; ++i) G.b.acc[i] += r[i];
         } else {
-          dst(G.b, t, [&](auto* g) { for (int i = 0; i < n; ++i) g[i] += e[i]; });
+          G.b.add_at(t, [&](auto* g) { for (int i = 0; i < n; ++i) g[i] += e[i]; });
         }
       }
     }
 
     // Measurement t.
-    const Real* yt = P.y + std::size_t(t) * p;
-    const Real* dt = P.d != nullptr ? P.dt(t) : nullptr;
-    const Real* Ct = P.Ct(t);
-    const PatternBlocks<Real>* pb =
-        cache != nullptr ? cache->template lookup<NK>(P.w + std::size_t(t) * p) : nullptr;
-    int k = 0;
-    const int* K = idx;
+    Measurement<Real, NK> m;
+    if (!measurement_at<Real, NK>(P, t, cache, idx, Lr, cs, &m)) {
+      failed = true;
+      return;
+    }
+    const int k = m.k;
+    const int* K = m.K;
     const Real* Sk = Rinv;  // R_KK⁻¹
     const Real* Fm = Fk;    // R_KK⁻¹ C_K
     Real ldR = 0;
-    if (pb != nullptr) {
-      if (!pb->ok) {
-        failed = true;
-        return;
-      }
-      k = pb->k;
-      K = pb->idx;
-      Sk = pb->Rinv;
-      Fm = pb->F;
-      ldR = pb->logdet;
-    } else {
-      k = observed(P.w + std::size_t(t) * p, p, idx);
-      if (k > 0) {
-        const Real* Rt = P.Rt(t);
-        for (int a = 0; a < k; ++a)
-          for (int c = 0; c < k; ++c) Lr[a * k + c] = Rt[idx[a] * p + idx[c]];
-        if (!spd_inverse<Real, 0>(Rinv, &ldR, Lr, k, Lr, cs)) {
-          failed = true;
-          return;
+    if (m.memo != nullptr) {
+      Sk = m.memo->Rinv;
+      Fm = m.memo->F;
+      ldR = m.memo->logdet;
+    } else if (k > 0) {  // Lr holds the factor of R_KK
+      ldR = cholesky_logdet(Lr, k);
+      inverse_from_cholesky<Real, 0>(Rinv, Lr, k, cs);
+      for (int a = 0; a < k; ++a)
+        for (int j = 0; j < n; ++j) {
+          Real s = 0;
+          for (int c = 0; c < k; ++c) s += Rinv[a * k + c] * m.C_row(c)[j];
+          Fk[a * n + j] = s;
         }
-        for (int a = 0; a < k; ++a)
-          for (int j = 0; j < n; ++j) {
-            Real s = 0;
-            for (int c = 0; c < k; ++c) s += Rinv[a * k + c] * Ct[std::size_t(idx[c]) * n + j];
-            Fk[a * n + j] = s;
-          }
-      }
     }
     if (k > 0) {
       n_obs += k;
-      for (int a = 0; a < k; ++a)
-        e[a] = yt[K[a]] - (dt ? dt[K[a]] : Real(0)) - dot<Real, NK>(Ct + std::size_t(K[a]) * n, xt, n);
+      for (int a = 0; a < k; ++a) e[a] = m.residual(a, xt);
       for (int a = 0; a < k; ++a) {
         Real s = 0;
         for (int c = 0; c < k; ++c) s += Sk[a * k + c] * e[c];
@@ -307,20 +259,20 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
         }
       Real* gy = G.y + std::size_t(t) * p;
       for (int a = 0; a < k; ++a) gy[K[a]] = -sigma[a];
-      dst(G.C, t, [&](auto* g) {
+      G.C.add_at(t, [&](auto* g) {
         for (int a = 0; a < k; ++a) {
           auto* row = g + std::size_t(K[a]) * n;
           for (int j = 0; j < n; ++j) row[j] += sigma[a] * xt[j] - FS[a * n + j];
         }
       });
-      dst(G.R, t, [&](auto* g) {
+      G.R.add_at(t, [&](auto* g) {
         for (int a = 0; a < k; ++a)
           for (int c = 0; c < k; ++c) {
             const Real fsf = dot<Real, NK>(FS + std::size_t(a) * n, Fm + std::size_t(c) * n, n);
             g[std::size_t(K[a]) * p + K[c]] += Real(0.5) * (sigma[a] * sigma[c] + fsf - Sk[a * k + c]);
           }
       });
-      dst(G.d, t, [&](auto* g) {
+      G.d.add_at(t, [&](auto* g) {
         for (int a = 0; a < k; ++a) g[K[a]] += sigma[a];
       });
     }
@@ -335,13 +287,13 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
       for (int i = 0; i < n; ++i) r[i] = xt[i] - (P.m0 != nullptr ? P.m0[i] : Real(0));
       for (int i = 0; i < n; ++i) e[i] = dot<Real, NK>(T1 + std::size_t(i) * n, r, n);
       val -= 0.5 * double(dot<Real, NK>(r, e, n)) + 0.5 * double(ldP);
-      dst(G.m0, 0, [&](auto* g) { for (int i = 0; i < n; ++i) g[i] += e[i]; });
+      G.m0.add_at(0, [&](auto* g) { for (int i = 0; i < n; ++i) g[i] += e[i]; });
       if (G.P0.present()) {
         for (int i = 0; i < n; ++i)
           for (int j = 0; j < n; ++j) E2[i * n + j] = r[i] * r[j] + S[i * n + j] - P.P0[i * n + j];
         matmul<Real, NK>(AS, T1, false, E2, false, n);
         matmul<Real, NK>(T2, AS, false, T1, false, n);
-        dst(G.P0, 0, [&](auto* g) {
+        G.P0.add_at(0, [&](auto* g) {
           for (int i = 0; i < n; ++i)
             for (int j = 0; j < n; ++j) g[i * n + j] += Real(0.25) * (T2[i * n + j] + T2[j * n + i]);
         });
@@ -362,51 +314,19 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
   val -= 0.5 * double(n_obs - n_flat) * std::log(2.0 * M_PI);
   *value = static_cast<Real>(val);
 
-  // Q⁻¹ on the raw transition sums (fixed Q), in double.
+  // Q⁻¹ on the raw transition sums (fixed Q), in double; Q̄ is
+  // ½ Q⁻¹ (Σ E2 − (T−1) Q) Q⁻¹, made exactly symmetric here.
   if (raw && T > 1) {
-    std::vector<double> tmp(n2), tmp2(n2);
-    auto left = [&](const double* S, double* out) {
-      for (int i = 0; i < n; ++i)
-        for (int j = 0; j < n; ++j) {
-          double v = 0;
-          for (int c = 0; c < n; ++c) v += double(Qinv[i * n + c]) * S[c * n + j];
-          out[i * n + j] = v;
-        }
-    };
-    if (G.A.present() && !G.A.tv) {
-      left(G.A.acc, tmp.data());
-      std::copy(tmp.begin(), tmp.end(), G.A.acc);
-    }
-    if (G.Q.present()) {  // ½ Q⁻¹ (Σ E2 − (T−1) Q) Q⁻¹
+    if (G.Q.present())
+      for (std::size_t i = 0; i < n2; ++i) G.Q.acc[i] -= double(T - 1) * P.Q[i];
+    apply_qinv_to_sums(G, Qinv, n);
+    if (G.Q.present()) {
       double* S = G.Q.acc;
-      for (std::size_t i = 0; i < n2; ++i) S[i] -= double(T - 1) * P.Q[i];
-      left(S, tmp.data());
-      for (int i = 0; i < n; ++i)  // (Q⁻¹ S) Q⁻¹ = (Q⁻¹ (Q⁻¹ S)ᵀ)ᵀ, Q⁻¹ symmetric
-        for (int j = 0; j < n; ++j) tmp2[i * n + j] = tmp[j * n + i];
-      left(tmp2.data(), tmp.data());
       for (int i = 0; i < n; ++i)
-        for (int j = 0; j < n; ++j) S[i * n + j] = 0.25 * (tmp[j * n + i] + tmp[i * n + j]);
-    }
-    if (G.b.present() && !G.b.tv) {
-      for (int i = 0; i < n; ++i) {
-        double v = 0;
-        for (int c = 0; c < n; ++c) v += double(Qinv[i * n + c]) * G.b.acc[c];
-        tmp[i] = v;
-      }
-      for (int i = 0; i < n; ++i) G.b.acc[i] = tmp[i];
+        for (int j = 0; j <= i; ++j) S[i * n + j] = S[j * n + i] = 0.25 * (S[j * n + i] + S[i * n + j]);
     }
   }
-  for (int f = 0; f < 8; ++f) {
-    GradSink<Real>& s = *sinks[f];
-    if (!s.present() || s.tv) continue;
-    if (f == 4) {  // R̄: symmetric part of the accumulated sum
-      for (int i = 0; i < p; ++i)
-        for (int j = 0; j < p; ++j)
-          s.out[i * p + j] = static_cast<Real>(0.5 * (s.acc[i * p + j] + s.acc[j * p + i]));
-    } else {
-      for (std::size_t i = 0; i < s.item; ++i) s.out[i] = static_cast<Real>(s.acc[i]);
-    }
-  }
+  sinks.finish(/*symmetrise_Q=*/false);
 }
 
 }  // namespace kalmax_cpu

@@ -22,6 +22,29 @@
 
 namespace kalmax_cpu {
 
+// Lower Cholesky factor of the symmetrised observed sub-block R_KK (idx: the
+// k observed entries; scratch: k entries).
+template <class Real>
+inline bool observed_cov_factor(Real* Lr, const Real* R, int p, const int* idx, int k,
+                                Real* scratch) {
+  for (int a = 0; a < k; ++a)
+    for (int c = 0; c <= a; ++c)
+      Lr[a * k + c] = Real(0.5) * (R[idx[a] * p + idx[c]] + R[idx[c] * p + idx[a]]);
+  return cholesky<Real, 0>(Lr, Lr, k, scratch);
+}
+
+// The whitened observed rows W = Lr⁻¹C_K (k×n, Lr the factor of R_KK) and
+// their share of the information, G += WᵀW = C_KᵀR_KK⁻¹C_K.
+template <class Real, int NK>
+inline void whiten_observed_rows(Real* W, Real* G, const Real* Lr, const Real* C, const int* idx, int k,
+                                 int n_) {
+  const int n = fixed<NK>(n_);
+  for (int a = 0; a < k; ++a)
+    for (int j = 0; j < n; ++j) W[a * n + j] = C[std::size_t(idx[a]) * n + j];
+  lsolve_rows<Real, NK>(Lr, W, W, k, n);
+  add_cross<Real, NK, NK>(G, W, W, k, n, n, Real(1));
+}
+
 template <class Real>
 struct PatternBlocks {
   int k = 0;
@@ -90,19 +113,13 @@ class PatternCache {
     Real* Lr = scratch_.data();
     Real* Wr = Lr + std::size_t(p) * p;
     Real* c = Wr + std::size_t(p) * p;
-    for (int a = 0; a < k; ++a)
-      for (int b = 0; b <= a; ++b)
-        Lr[a * k + b] = Real(0.5) * (R_[idx[a] * p + idx[b]] + R_[idx[b] * p + idx[a]]);
-    if (!cholesky<Real, 0>(Lr, Lr, k, c)) {
+    if (!observed_cov_factor(Lr, R_, p, idx, k, c)) {
       e.ok = false;
       return e;
     }
-    for (int a = 0; a < k; ++a) e.logdet += Real(2) * std::log(Lr[a * k + a]);
+    e.logdet = cholesky_logdet(Lr, k);
     // W = Lr⁻¹C_K (into F), G = WᵀW, then F = Lr⁻ᵀW = R_KK⁻¹C_K.
-    for (int a = 0; a < k; ++a)
-      for (int j = 0; j < n; ++j) F[a * n + j] = C_[std::size_t(idx[a]) * n + j];
-    lsolve_rows<Real, NK>(Lr, F, F, k, n);
-    add_cross<Real, NK, NK>(G, F, F, k, n, n, Real(1));
+    whiten_observed_rows<Real, NK>(F, G, Lr, C_, idx, k, n);
     ltsolve_rows<Real, NK>(Lr, F, k, n);
     // Ri = WrᵀWr with Wr = Lr⁻¹.
     for (int a = 0; a < k; ++a)

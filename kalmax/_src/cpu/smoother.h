@@ -115,8 +115,7 @@ struct TransitionBlocks {
   bool compute(const Real* A, const Real* Q, int n_) {
     const int n = fixed<NK>(n_);
     const int n2 = n * n;
-    sym_lower<Real, NK>(Lq, Q, n);
-    if (!cholesky<Real, NK>(Lq, Lq, n, c)) return false;
+    if (!sym_cholesky<Real, NK>(Lq, Q, n, c)) return false;
     fill(Wi, n2, Real(0));
     for (int i = 0; i < n; ++i) Wi[i * n + i] = Real(1);
     lsolve_rows<Real, NK>(Lq, Wi, Wi, n, n);
@@ -148,15 +147,52 @@ inline int observed(const Real* w, int p, int* idx) {
   return k;
 }
 
-// Lower Cholesky factor of the symmetrised observed sub-block R_KK
-// (scratch: k entries).
-template <class Real>
-inline bool observed_cov_factor(Real* Lr, const Real* R, int p, const int* idx, int k,
-                                Real* scratch) {
-  for (int a = 0; a < k; ++a)
-    for (int c = 0; c <= a; ++c)
-      Lr[a * k + c] = Real(0.5) * (R[idx[a] * p + idx[c]] + R[idx[c] * p + idx[a]]);
-  return cholesky<Real, 0>(Lr, Lr, k, scratch);
+// The measurement of one step restricted to its observed entries K: y_K,
+// d_K, the rows C_K and the block R_KK, as every pass over time reads them.
+// With a pattern cache (C and R time-invariant) the blocks of K's pattern
+// come memoised (`memo`: R_KK⁻¹, F = R_KK⁻¹C_K, G = C_KᵀR_KK⁻¹C_K, log|R_KK|);
+// otherwise (`memo` null) the caller's Lr holds the Cholesky factor of R_KK.
+// Each pass keeps its own arithmetic for the two cases: the memoised blocks
+// round differently from the per-step factor.
+template <class Real, int NK>
+struct Measurement {
+  int n = 0;
+  int k = 0;                                  // |K|
+  const int* K = nullptr;                     // observed entries
+  const PatternBlocks<Real>* memo = nullptr;  // memoised blocks, or nullptr
+  const Real* y = nullptr;                    // y_t
+  const Real* d = nullptr;                    // d_t (nullptr: no offset)
+  const Real* C = nullptr;                    // C_t
+
+  // Row a of C_K.
+  const Real* C_row(int a) const { return C + std::size_t(K[a]) * fixed<NK>(n); }
+  // (y_t − d_t) at observed entry a.
+  Real centred(int a) const { return y[K[a]] - (d ? d[K[a]] : Real(0)); }
+  // The residual (y_t − d_t − C_t x_t) at observed entry a.
+  Real residual(int a, const Real* x) const { return centred(a) - dot<Real, NK>(C_row(a), x, n); }
+};
+
+// The measurement of step t (see Measurement). Without memoised blocks, K is
+// gathered into idx (p entries) and Lr (p×p) receives the factor of R_KK
+// (cs: its scratch). False when R_KK is not positive definite.
+template <class Real, int NK>
+inline bool measurement_at(const Trajectory<Real>& P, int t, PatternCache<Real>* cache, int* idx, Real* Lr,
+                           Real* cs, Measurement<Real, NK>* m) {
+  const int p = P.p;
+  const Real* w = P.w + std::size_t(t) * p;
+  m->n = P.n;
+  m->y = P.y + std::size_t(t) * p;
+  m->d = P.d != nullptr ? P.dt(t) : nullptr;
+  m->C = P.Ct(t);
+  m->memo = cache != nullptr ? cache->template lookup<NK>(w) : nullptr;
+  if (m->memo != nullptr) {
+    m->k = m->memo->k;
+    m->K = m->memo->idx;
+    return m->memo->ok;
+  }
+  m->K = idx;
+  m->k = observed(w, p, idx);
+  return m->k == 0 || observed_cov_factor(Lr, P.Rt(t), p, idx, m->k, cs);
 }
 
 // ---------------------------------------------------------------------------
@@ -308,21 +344,10 @@ bool refine_one(const Trajectory<Real>& P, const FactorView<Real>& F, Real* x, R
   Real* tmp = arena.take(n);
   Real* tmp2 = arena.take(n);
 
-  // Time-invariant Q and the prior: factor once.
-  if (T > 1 && !P.Q_tv) {
-    sym_lower<Real, NK>(Lq, P.Q, n);
-    if (!cholesky<Real, NK>(Lq, Lq, n, cs)) return false;
-    for (int j = 0; j < n; ++j) {  // Q⁻¹ as a matrix: independent dot products, no chains
-      for (int i = 0; i < n; ++i) rho[i] = Real(i == j);
-      lsolve_vec<Real, NK>(Lq, rho, rho, n);
-      ltsolve_vec_inplace<Real, NK>(Lq, rho, n);
-      for (int i = 0; i < n; ++i) Qinv[i * n + j] = rho[i];
-    }
-  }
-  if (P.P0 != nullptr) {
-    sym_lower<Real, NK>(Lp, P.P0, n);
-    if (!cholesky<Real, NK>(Lp, Lp, n, cs)) return false;
-  }
+  // Time-invariant Q and the prior: factor once (Q⁻¹ as a matrix: the
+  // residual's products with it are independent dot products, no chains).
+  if (T > 1 && !P.Q_tv && !sym_cholesky_inverse<Real, NK>(Qinv, Lq, P.Q, n, cs)) return false;
+  if (P.P0 != nullptr && !sym_cholesky<Real, NK>(Lp, P.P0, n, cs)) return false;
 
   std::vector<Real> d(Tn);
   Real prev = std::numeric_limits<Real>::infinity();
@@ -338,8 +363,7 @@ bool refine_one(const Trajectory<Real>& P, const FactorView<Real>& F, Real* x, R
         for (int i = 0; i < n; ++i)
           res[i] = xt[n + i] - dot<Real, NK>(At + std::size_t(i) * n, xt, n) - (bt ? bt[i] : Real(0));
         if (P.Q_tv) {
-          sym_lower<Real, NK>(Lq, P.Qt(t), n);
-          if (!cholesky<Real, NK>(Lq, Lq, n, cs)) return false;
+          if (!sym_cholesky<Real, NK>(Lq, P.Qt(t), n, cs)) return false;
           lsolve_vec<Real, NK>(Lq, res, rho, n);
           ltsolve_vec_inplace<Real, NK>(Lq, rho, n);
         } else {
@@ -349,30 +373,17 @@ bool refine_one(const Trajectory<Real>& P, const FactorView<Real>& F, Real* x, R
         for (int i = 0; i < n; ++i) rt[n + i] -= rho[i];
       }
       // Measurement t: r_t += C_tᵀ S_t e_t.
-      const Real* yt = P.y + std::size_t(t) * p;
-      const Real* dt = P.d != nullptr ? P.dt(t) : nullptr;
-      const Real* Ct = P.Ct(t);
-      const PatternBlocks<Real>* pb =
-          cache != nullptr ? cache->template lookup<NK>(P.w + std::size_t(t) * p) : nullptr;
-      if (pb != nullptr) {  // Cᵀ S e = Fᵀe with F = R_KK⁻¹C_K
-        if (!pb->ok) return false;
-        for (int a = 0; a < pb->k; ++a) {
-          const int i = pb->idx[a];
-          e[a] = yt[i] - (dt ? dt[i] : Real(0)) - dot<Real, NK>(Ct + std::size_t(i) * n, xt, n);
-        }
-        add_tmatvec<Real, NK>(rt, pb->F, e, pb->k, n, Real(1));
-      } else {
-        const int kk = observed(P.w + std::size_t(t) * p, p, idx);
-        if (kk > 0) {
-          if (!observed_cov_factor(Lr, P.Rt(t), p, idx, kk, cs)) return false;
-          for (int a = 0; a < kk; ++a)
-            e[a] = yt[idx[a]] - (dt ? dt[idx[a]] : Real(0)) - dot<Real, NK>(Ct + std::size_t(idx[a]) * n, xt, n);
-          lsolve_vec<Real, 0>(Lr, e, e, kk);
-          ltsolve_vec_inplace<Real, 0>(Lr, e, kk);  // S e on the observed entries
-          for (int a = 0; a < kk; ++a) {
-            const Real* Crow = Ct + std::size_t(idx[a]) * n;
-            for (int j = 0; j < n; ++j) rt[j] += e[a] * Crow[j];
-          }
+      Measurement<Real, NK> m;
+      if (!measurement_at<Real, NK>(P, t, cache, idx, Lr, cs, &m)) return false;
+      for (int a = 0; a < m.k; ++a) e[a] = m.residual(a, xt);
+      if (m.memo != nullptr) {  // Cᵀ S e = Fᵀe with F = R_KK⁻¹C_K
+        add_tmatvec<Real, NK>(rt, m.memo->F, e, m.k, n, Real(1));
+      } else if (m.k > 0) {
+        lsolve_vec<Real, 0>(Lr, e, e, m.k);
+        ltsolve_vec_inplace<Real, 0>(Lr, e, m.k);  // S e on the observed entries
+        for (int a = 0; a < m.k; ++a) {
+          const Real* Crow = m.C_row(a);
+          for (int j = 0; j < n; ++j) rt[j] += e[a] * Crow[j];
         }
       }
       // Prior: r_0 −= P_0⁻¹(x_0 − m_0).
@@ -479,8 +490,7 @@ int forward_one(const Trajectory<Real>& P, Real* x, Real* Li, Real* M, Real* sub
     if (t == 0 && P.P0 != nullptr) {
       // P_0⁻¹ = WpᵀWp with Wp = Lp⁻¹; P_0⁻¹m_0 = Wpᵀ(Wp m_0).
       Real* Lp = S;  // S is free until the factor step
-      sym_lower<Real, NK>(Lp, P.P0, n);
-      if (!cholesky<Real, NK>(Lp, Lp, n, cs)) {
+      if (!sym_cholesky<Real, NK>(Lp, P.P0, n, cs)) {
         failed_at = 0;
         break;
       }
@@ -495,36 +505,19 @@ int forward_one(const Trajectory<Real>& P, Real* x, Real* Li, Real* M, Real* sub
     }
 
     // Measurement terms C_tᵀS_tC_t and C_tᵀS_t(y_t − d_t).
-    const Real* yt = P.y + std::size_t(t) * p;
-    const Real* dt = P.d != nullptr ? P.dt(t) : nullptr;
-    const PatternBlocks<Real>* pb =
-        cache != nullptr ? cache->template lookup<NK>(P.w + std::size_t(t) * p) : nullptr;
-    if (pb != nullptr) {
-      if (!pb->ok) {
-        failed_at = t;
-        break;
-      }
-      const int k = pb->k;
-      for (int a = 0; a < k; ++a) ey[a] = yt[pb->idx[a]] - (dt ? dt[pb->idx[a]] : Real(0));
-      for (std::size_t i = 0; i < n2; ++i) H[i] += pb->G[i];
-      add_tmatvec<Real, NK>(g, pb->F, ey, k, n, Real(1));
-    } else {
-      const int k = observed(P.w + std::size_t(t) * p, p, idx);
-      if (k > 0) {
-        const Real* Ct = P.Ct(t);
-        if (!observed_cov_factor(Lr, P.Rt(t), p, idx, k, cs)) {
-          failed_at = t;
-          break;
-        }
-        for (int a = 0; a < k; ++a) {
-          ey[a] = yt[idx[a]] - (dt ? dt[idx[a]] : Real(0));
-          copy(WC + std::size_t(a) * n, Ct + std::size_t(idx[a]) * n, n);
-        }
-        lsolve_rows<Real, NK>(Lr, WC, WC, k, n);
-        lsolve_vec<Real, 0>(Lr, ey, ey, k);
-        add_cross<Real, NK, NK>(H, WC, WC, k, n, n, Real(1));
-        add_tmatvec<Real, NK>(g, WC, ey, k, n, Real(1));
-      }
+    Measurement<Real, NK> m;
+    if (!measurement_at<Real, NK>(P, t, cache, idx, Lr, cs, &m)) {
+      failed_at = t;
+      break;
+    }
+    for (int a = 0; a < m.k; ++a) ey[a] = m.centred(a);
+    if (m.memo != nullptr) {
+      for (std::size_t i = 0; i < n2; ++i) H[i] += m.memo->G[i];
+      add_tmatvec<Real, NK>(g, m.memo->F, ey, m.k, n, Real(1));
+    } else if (m.k > 0) {  // with W = Lr⁻¹C_K: H_tt += WᵀW, g_t += Wᵀ(Lr⁻¹(y_K − d_K))
+      whiten_observed_rows<Real, NK>(WC, H, Lr, m.C, m.K, m.k, n);
+      lsolve_vec<Real, 0>(Lr, ey, ey, m.k);
+      add_tmatvec<Real, NK>(g, WC, ey, m.k, n, Real(1));
     }
 
     // Transition t (to step t+1): its share of H_tt and g_t now, the rest
@@ -627,6 +620,17 @@ struct GradSink {
   std::size_t item = 0;   // elements per block
 
   bool present() const { return out != nullptr; }
+
+  // fn(destination of the term of step t): block t of the output, or the
+  // accumulator (fn takes Real* or double*). Nothing when the field is absent.
+  template <class Fn>
+  void add_at(int t, Fn&& fn) {
+    if (!present()) return;
+    if (tv)
+      fn(out + std::size_t(t) * item);
+    else
+      fn(acc);
+  }
 };
 
 template <class D, class Real>
@@ -655,6 +659,108 @@ struct Gradients {
 inline std::size_t accumulator_size(int n, int p) {
   return 3 * std::size_t(n) * n + 2 * std::size_t(n) + std::size_t(p) * n + std::size_t(p) * p +
          std::size_t(p) + 8;
+}
+
+// The sinks of one trajectory's gradients over one pass (gradients_one,
+// loglik_one). On construction every present output is zeroed and each
+// time-invariant field gets its double accumulator out of acc
+// (accumulator_size entries); fail() writes NaN to every output; finish()
+// rounds the accumulators into the outputs of the time-invariant fields.
+template <class Real>
+class GradSinks {
+ public:
+  GradSinks(Gradients<Real>& G, int T, int n, int p, double* acc)
+      : G_(G),
+        n_(n),
+        p_(p),
+        T_(T),
+        sinks_{&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0},
+        steps_{T - 1, T - 1, T - 1, T, T, T, 1, 1} {
+    double* next_acc = acc;
+    for (int f = 0; f < kFields; ++f) {
+      GradSink<Real>& s = *sinks_[f];
+      if (!s.present()) continue;
+      fill(s.out, blocks(f) * s.item, Real(0));
+      if (!s.tv) {
+        s.acc = next_acc;
+        next_acc += s.item;
+        std::fill(s.acc, s.acc + s.item, 0.0);
+      }
+    }
+    fill(G.y, std::size_t(T) * p, Real(0));
+  }
+
+  void fail() const {
+    const Real nan = quiet_nan<Real>();
+    for (int f = 0; f < kFields; ++f)
+      if (sinks_[f]->present()) fill(sinks_[f]->out, blocks(f) * sinks_[f]->item, nan);
+    fill(G_.y, std::size_t(T_) * p_, nan);
+  }
+
+  // R̄'s accumulator holds an unsymmetrised sum, and so does Q̄'s when
+  // symmetrise_Q is set: their outputs get the symmetric part.
+  void finish(bool symmetrise_Q) const {
+    for (int f = 0; f < kFields; ++f) {
+      GradSink<Real>& s = *sinks_[f];
+      if (!s.present() || s.tv) continue;
+      if (f == kR || (f == kQ && symmetrise_Q)) {
+        const int r = f == kQ ? n_ : p_;
+        for (int i = 0; i < r; ++i)
+          for (int j = 0; j < r; ++j)
+            s.out[i * r + j] = static_cast<Real>(0.5 * (s.acc[i * r + j] + s.acc[j * r + i]));
+      } else {
+        for (std::size_t i = 0; i < s.item; ++i) s.out[i] = static_cast<Real>(s.acc[i]);
+      }
+    }
+  }
+
+ private:
+  static constexpr int kFields = 8, kQ = 1, kR = 4;  // the order of sinks_
+
+  // Blocks in field f's output.
+  std::size_t blocks(int f) const {
+    return sinks_[f]->tv ? std::size_t(steps_[f] > 0 ? steps_[f] : 0) : 1;
+  }
+
+  Gradients<Real>& G_;
+  int n_, p_, T_;
+  GradSink<Real>* sinks_[kFields];
+  int steps_[kFields];
+};
+
+// out = Q⁻¹ S in double, for S with m columns (out must not alias S).
+template <class Real>
+inline void qinv_times(double* out, const Real* Qinv, const double* S, int n, int m) {
+  for (int i = 0; i < n; ++i)
+    for (int j = 0; j < m; ++j) {
+      double v = 0;
+      for (int r = 0; r < n; ++r) v += double(Qinv[i * n + r]) * S[r * m + j];
+      out[i * m + j] = v;
+    }
+}
+
+// Transition sums of a time-invariant Q, accumulated raw, get Q⁻¹ applied
+// once at the end (in double): Ā ← Q⁻¹Ā, b̄ ← Q⁻¹b̄, and Q̄ ← Q⁻¹(Q⁻¹Q̄)ᵀ =
+// Q⁻¹Q̄ᵀQ⁻¹ (Q⁻¹ symmetric), the transpose of Q⁻¹Q̄Q⁻¹: both callers keep
+// only its symmetric part. Each only where present and accumulated.
+template <class Real>
+void apply_qinv_to_sums(Gradients<Real>& G, const Real* Qinv, int n) {
+  const std::size_t n2 = std::size_t(n) * n;
+  std::vector<double> tmp(n2), tmp2(n2);
+  if (G.A.present() && !G.A.tv) {
+    qinv_times(tmp.data(), Qinv, G.A.acc, n, n);
+    std::copy(tmp.begin(), tmp.end(), G.A.acc);
+  }
+  if (G.Q.present() && !G.Q.tv) {
+    qinv_times(tmp.data(), Qinv, G.Q.acc, n, n);
+    for (int i = 0; i < n; ++i)
+      for (int j = 0; j < n; ++j) tmp2[i * n + j] = tmp[j * n + i];
+    qinv_times(G.Q.acc, Qinv, tmp2.data(), n, n);
+  }
+  if (G.b.present() && !G.b.tv) {
+    qinv_times(tmp.data(), Qinv, G.b.acc, n, 1);
+    std::copy(tmp.begin(), tmp.begin() + n, G.b.acc);
+  }
 }
 
 // Solves L Lᵀ v = v in place for two right-hand sides at once (interleaved,
@@ -691,31 +797,9 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
   const int T = P.T, n = fixed<NK>(P.n), p = P.p;
   const std::size_t n2 = std::size_t(n) * n, Tn = std::size_t(T) * n;
 
-  // Assign accumulators to time-invariant fields; zero every destination.
-  GradSink<Real>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
-  const int steps[] = {T - 1, T - 1, T - 1, T, T, T, 1, 1};
-  auto blocks = [&](int f) { return sinks[f]->tv ? std::size_t(steps[f] > 0 ? steps[f] : 0) : 1; };
-  double* next_acc = acc;
-  for (int f = 0; f < 8; ++f) {
-    GradSink<Real>& s = *sinks[f];
-    if (!s.present()) continue;
-    fill(s.out, blocks(f) * s.item, Real(0));
-    if (!s.tv) {
-      s.acc = next_acc;
-      next_acc += s.item;
-      std::fill(s.acc, s.acc + s.item, 0.0);
-    }
-  }
-  fill(G.y, std::size_t(T) * p, Real(0));
-
-  const Real nan = quiet_nan<Real>();
-  auto fail_all = [&]() {
-    for (int f = 0; f < 8; ++f)
-      if (sinks[f]->present()) fill(sinks[f]->out, blocks(f) * sinks[f]->item, nan);
-    fill(G.y, std::size_t(T) * p, nan);
-  };
+  const GradSinks<Real> sinks(G, T, n, p, acc);
   if (!ok) {
-    fail_all();
+    sinks.fail();
     return;
   }
 
@@ -734,33 +818,14 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
   Real* tmp = arena.take(n);
   Real* tmp2 = arena.take(n);
 
-  // Per-block destination for step t.
-  auto dst = [](GradSink<Real>& s, int t, auto&& fn) {
-    if (!s.present()) return;
-    if (s.tv)
-      fn(s.out + std::size_t(t) * s.item);
-    else
-      fn(s.acc);
-  };
-
   // A fixed transition (A, Q and b all time-invariant): the transition
   // gradients are Q⁻¹ times sums of outer products, so the loop only sums.
   const bool raw_sums = !P.Q_tv && !P.A_tv && !(P.b != nullptr && P.b_tv);
 
   // Time-invariant Q: use Q⁻¹ explicitly (matrix-vector products, no chains).
-  if (T > 1 && !P.Q_tv) {
-    sym_lower<Real, NK>(Lq, P.Q, n);
-    if (!cholesky<Real, NK>(Lq, Lq, n, cs)) {
-      fail_all();
-      return;
-    }
-    // Qinv = Lq⁻ᵀLq⁻¹ column by column: solve Lq Lqᵀ q_j = e_j.
-    for (int j = 0; j < n; ++j) {
-      for (int i = 0; i < n; ++i) rho[i] = Real(i == j);
-      lsolve_vec<Real, NK>(Lq, rho, rho, n);
-      ltsolve_vec_inplace<Real, NK>(Lq, rho, n);
-      for (int i = 0; i < n; ++i) Qinv[i * n + j] = rho[i];
-    }
+  if (T > 1 && !P.Q_tv && !sym_cholesky_inverse<Real, NK>(Qinv, Lq, P.Q, n, cs)) {
+    sinks.fail();
+    return;
   }
 
   // u = H⁻¹ x̄: forward sweep now, back sweep fused with the gradient terms.
@@ -804,9 +869,8 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
         }
       } else {
         if (P.Q_tv) {
-          sym_lower<Real, NK>(Lq, P.Qt(t), n);
-          if (!cholesky<Real, NK>(Lq, Lq, n, cs)) {
-            fail_all();
+          if (!sym_cholesky<Real, NK>(Lq, P.Qt(t), n, cs)) {
+            sinks.fail();
             return;
           }
           copy(rho, alpha, n);
@@ -816,7 +880,7 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
           matvec<Real, NK>(rho, Qinv, alpha, n, n);
           matvec<Real, NK>(phi, Qinv, beta, n, n);
         }
-        dst(G.A, t, [&](auto* gA) {
+        G.A.add_at(t, [&](auto* gA) {
           add_outer(gA, rho, ut, n, n, Real(1));
           add_outer(gA, phi, xt, n, n, Real(1));
         });
@@ -827,31 +891,26 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
           else
             add_outer(G.Q.acc, phi, rho, n, n, Real(1));
         }
-        dst(G.b, t, [&](auto* gb) {
+        G.b.add_at(t, [&](auto* gb) {
           for (int i = 0; i < n; ++i) gb[i] += phi[i];
         });
       }
     }
 
     // Measurement t: σ = S e (e the observed residual), κ = S C u.
-    const Real* yt = P.y + std::size_t(t) * p;
-    const Real* dt = P.d != nullptr ? P.dt(t) : nullptr;
-    const PatternBlocks<Real>* pb =
-        cache != nullptr ? cache->template lookup<NK>(P.w + std::size_t(t) * p) : nullptr;
-    int k = 0;
-    const int* K = idx;
-    if (pb != nullptr) {
-      if (!pb->ok) {
-        fail_all();
-        return;
-      }
-      k = pb->k;
-      K = pb->idx;
+    Measurement<Real, NK> m;
+    if (!measurement_at<Real, NK>(P, t, cache, idx, Lr, cs, &m)) {
+      sinks.fail();
+      return;
+    }
+    const int k = m.k;
+    const int* K = m.K;
+    if (m.memo != nullptr) {
       // κ = F u and σ = R_KK⁻¹(y_K − d_K) − F x, with F = R_KK⁻¹C_K.
-      for (int a = 0; a < k; ++a) ey[a] = yt[K[a]] - (dt ? dt[K[a]] : Real(0));
+      for (int a = 0; a < k; ++a) ey[a] = m.centred(a);
       for (int a = 0; a < k; ++a) {
-        const Real* Fa = pb->F + std::size_t(a) * n;
-        const Real* Ra = pb->Rinv + std::size_t(a) * k;
+        const Real* Fa = m.memo->F + std::size_t(a) * n;
+        const Real* Ra = m.memo->Rinv + std::size_t(a) * k;
         Real su = 0, sx = 0, sy = 0;
         for (int j = 0; j < n; ++j) {
           su += Fa[j] * ut[j];
@@ -861,31 +920,23 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
         kappa[a] = su;
         sigma[a] = sy - sx;
       }
-    } else {
-      k = observed(P.w + std::size_t(t) * p, p, idx);
-      if (k > 0) {
-        const Real* Ct = P.Ct(t);
-        if (!observed_cov_factor(Lr, P.Rt(t), p, idx, k, cs)) {
-          fail_all();
-          return;
+    } else if (k > 0) {
+      for (int a = 0; a < k; ++a) {
+        const Real* Crow = m.C_row(a);
+        Real sx = 0, su = 0;
+        for (int j = 0; j < n; ++j) {
+          sx += Crow[j] * xt[j];
+          su += Crow[j] * ut[j];
         }
-        for (int a = 0; a < k; ++a) {
-          const Real* Crow = Ct + std::size_t(idx[a]) * n;
-          Real sx = 0, su = 0;
-          for (int j = 0; j < n; ++j) {
-            sx += Crow[j] * xt[j];
-            su += Crow[j] * ut[j];
-          }
-          sigma[a] = yt[idx[a]] - sx - (dt ? dt[idx[a]] : Real(0));
-          kappa[a] = su;
-        }
-        spd_solve2<Real, 0>(Lr, sigma, kappa, k);
+        sigma[a] = m.y[K[a]] - sx - (m.d ? m.d[K[a]] : Real(0));
+        kappa[a] = su;
       }
+      spd_solve2<Real, 0>(Lr, sigma, kappa, k);
     }
     if (k > 0) {
       Real* gy = G.y + std::size_t(t) * p;
       for (int a = 0; a < k; ++a) gy[K[a]] = kappa[a];
-      dst(G.C, t, [&](auto* gC) {
+      G.C.add_at(t, [&](auto* gC) {
         for (int a = 0; a < k; ++a) {
           auto* row = gC + std::size_t(K[a]) * n;
           const Real sa = sigma[a], ka = kappa[a];
@@ -906,7 +957,7 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
           }
         }
       }
-      dst(G.d, t, [&](auto* gd) {
+      G.d.add_at(t, [&](auto* gd) {
         for (int a = 0; a < k; ++a) gd[K[a]] -= kappa[a];
       });
     }
@@ -914,9 +965,8 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
     // Prior on x_0: α = P_0⁻¹u_0, β = P_0⁻¹(x_0 − m_0).
     if (t == 0 && P.P0 != nullptr) {
       Real* Lp = Lq;  // Lq is no longer needed at t = 0
-      sym_lower<Real, NK>(Lp, P.P0, n);
-      if (!cholesky<Real, NK>(Lp, Lp, n, cs)) {
-        fail_all();
+      if (!sym_cholesky<Real, NK>(Lp, P.P0, n, cs)) {
+        sinks.fail();
         return;
       }
       for (int i = 0; i < n; ++i) {
@@ -924,55 +974,15 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
         beta[i] = xt[i] - (P.m0 != nullptr ? P.m0[i] : Real(0));
       }
       spd_solve2<Real, NK>(Lp, alpha, beta, n);
-      dst(G.m0, 0, [&](auto* gm) {
+      G.m0.add_at(0, [&](auto* gm) {
         for (int i = 0; i < n; ++i) gm[i] += alpha[i];
       });
-      dst(G.P0, 0, [&](auto* gP) { add_sym_outer(gP, alpha, beta, n, Real(1)); });
+      G.P0.add_at(0, [&](auto* gP) { add_sym_outer(gP, alpha, beta, n, Real(1)); });
     }
   }
 
-  if (raw_sums && T > 1) {
-    // Apply Q⁻¹ to the raw transition sums (in double).
-    std::vector<double> tmpm(n2);
-    auto left = [&](double* S) {  // S = Q⁻¹ S
-      for (int i = 0; i < n; ++i)
-        for (int j = 0; j < n; ++j) {
-          double v = 0;
-          for (int r = 0; r < n; ++r) v += double(Qinv[i * n + r]) * S[r * n + j];
-          tmpm[i * n + j] = v;
-        }
-      std::copy(tmpm.begin(), tmpm.end(), S);
-    };
-    if (G.A.present()) left(G.A.acc);
-    if (G.Q.present()) {  // Q⁻¹ S Q⁻¹ = Q⁻¹ (Q⁻¹ Sᵀ)ᵀ
-      double* S = G.Q.acc;
-      left(S);
-      for (int i = 0; i < n; ++i)
-        for (int j = i + 1; j < n; ++j) std::swap(S[i * n + j], S[j * n + i]);
-      left(S);
-    }
-    if (G.b.present()) {
-      std::vector<double> v(G.b.acc, G.b.acc + n);
-      for (int i = 0; i < n; ++i) {
-        double s = 0;
-        for (int r = 0; r < n; ++r) s += double(Qinv[i * n + r]) * v[r];
-        G.b.acc[i] = s;
-      }
-    }
-  }
-
-  for (int f = 0; f < 8; ++f) {
-    GradSink<Real>& s = *sinks[f];
-    if (!s.present() || s.tv) continue;
-    if (f == 1 || f == 4) {  // Q̄, R̄: symmetric part of the accumulated sum
-      const int r = f == 1 ? n : p;
-      for (int i = 0; i < r; ++i)
-        for (int j = 0; j < r; ++j)
-          s.out[i * r + j] = static_cast<Real>(0.5 * (s.acc[i * r + j] + s.acc[j * r + i]));
-    } else {
-      for (std::size_t i = 0; i < s.item; ++i) s.out[i] = static_cast<Real>(s.acc[i]);
-    }
-  }
+  if (raw_sums && T > 1) apply_qinv_to_sums(G, Qinv, n);
+  sinks.finish(/*symmetrise_Q=*/true);
 }
 
 }  // namespace kalmax_cpu
