@@ -100,6 +100,29 @@ def _kinds_text() -> str:
     return "\n".join(lines)
 
 
+COMPONENTS_HELP = """\
+Composed models (--components instead of --model): a sum of components joined by
+'+', each KIND, KIND(SETTING=VALUE, ...) or either followed by 'as NAME':
+{kinds}
+A period P is a duration: a number and a time unit (1 day, 24h, 11 year) or a
+plain number in the model's time unit. Names default to the kind word (season,
+season2, ...); parameters are NAME.PARAMETER (--set daily.q=0.01, --fix
+cycle.period). --measure COL reads every component; --measure COL=NAME+NAME
+reads only those named. A regression's input columns are known values read
+from DATA, not measured: every row needs one (a blank input cell is an error),
+and a forecast needs them too (--future-inputs FILE). Example, an invented
+greenhouse record:
+  kalmax fit greenhouse.csv --time time --time-unit h --measure humidity \\
+      --components "level + season(period=1 day, harmonics=2) as daily + regression(vent)\"
+"""
+
+
+def _components_text() -> str:
+    from ._src.tools.composed import kinds_text
+
+    return COMPONENTS_HELP.format(kinds=kinds_text())
+
+
 def _units_text() -> str:
     words = ", ".join(f"{k} ({v})" for k, v in UNIT_WORDS.items())
     return textwrap.fill("Time units: " + words + ".", width=80, break_on_hyphens=False)
@@ -147,6 +170,12 @@ def build_parser() -> argparse.ArgumentParser:
                     help="spacing of the forecast rows: a number in the model's time unit, or a number and a "
                          "unit such as 30min, 1.5h or 7day (default: the typical step of the data, the lower "
                          "median of its time steps)")
+    fc.add_argument("--future-inputs", metavar="FILE",
+                    help="for a composed model with a regression: a table (.csv or .parquet) with the time column "
+                         "and the regression's input columns, one row per forecast time after the last one of "
+                         "DATA; its rows are the forecast rows (--forecast N: the first N of them; no "
+                         "--forecast-step). Without it, --forecast is refused for such a model: the inputs at "
+                         "the forecast rows would be unknown")
     misc = common.add_argument_group("other")
     misc.add_argument("--quiet", "-q", action="store_true", help="print errors only (no progress, no summary)")
     misc.add_argument("--debug", action="store_true", help="show the Python traceback of an internal error")
@@ -158,7 +187,7 @@ def build_parser() -> argparse.ArgumentParser:
             "Fit a continuous-time model to DATA, then smooth and impute every measured column.\n\n"
             "A fraction of the observed cells (--test-fraction) is hidden from the fit and used to\n"
             "report the held-out error of the starting model and of the fitted model.\n\n"
-            "Model kinds (--model):\n" + _kinds_text() + "\n\n"
+            "Model kinds (--model):\n" + _kinds_text() + "\n\n" + _components_text() + "\n\n"
             "Each --measure names a column and, after '=', the state it measures; without '=' the\n"
             "k-th such column measures the k-th position/level. Example, positions in two axes plus a\n"
             "velocity sensor on the first axis:\n"
@@ -174,6 +203,9 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--measure", "-m", action="append", metavar="COL[=STATE]", default=None,
                    help="a measured column, optionally with the state it measures (repeat for each column)")
     g.add_argument("--model", metavar="KIND", help="model kind (see the list above; `kalmax models` too)")
+    g.add_argument("--components", metavar="TEXT",
+                   help="instead of --model: a sum of components, e.g. \"level + season(period=1 day, "
+                        "harmonics=2) as daily + regression(vent)\" (see 'Composed models' above)")
     g.add_argument("--dims", type=int, metavar="D",
                    help="number of spatial axes for random-walk / constant-velocity / constant-acceleration "
                         "(default: number of --measure columns without '=STATE')")
@@ -189,7 +221,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="start from a saved model file (gives kind, dims, columns and starting values)")
     g.add_argument("--set", action="append", default=[], metavar="NAME=VALUE",
                    help="starting value of a parameter, e.g. q=0.01, q=0.1,0.2 (per axis), frequency=0.5, "
-                        "noise=4 (every column) or noise.COL=4 (one column; a variance)")
+                        "daily.q=0.01 (a component's), noise=4 (every column) or noise.COL=4 (one column; a "
+                        "variance)")
     g.add_argument("--fix", action="append", default=[], metavar="NAME",
                    help="keep a parameter at its starting value (a process parameter name, or noise)")
     h = fit.add_argument_group("how to fit")
@@ -221,8 +254,9 @@ def build_parser() -> argparse.ArgumentParser:
     apply.add_argument("model_file", metavar="MODEL.json", help="model file written by `kalmax fit`")
     apply.add_argument("data", metavar="DATA", help="input table: .csv or .parquet")
 
-    sub.add_parser("models", help="list the model kinds, their states and parameters",
-                   description="List the model kinds, their states and parameters.")
+    sub.add_parser("models", help="list the model kinds, their states and parameters, and the component kinds",
+                   description="List the model kinds, their states and parameters, and the component kinds of "
+                               "composed models (--components).")
     return parser
 
 
@@ -321,6 +355,9 @@ def _check_forecast(args):
     """The number of forecast rows (None without --forecast); checks --forecast-step's syntax (UsageError)."""
     from ._src.tools import horizon
 
+    if args.future_inputs is not None and args.forecast_step is not None:
+        raise UsageError("--forecast-step does not go with --future-inputs: the rows of --future-inputs give the "
+                         "forecast times.")
     if args.forecast is None:
         if args.forecast_step is not None:
             raise UsageError("--forecast-step needs --forecast N (the number of forecast rows).")
@@ -330,19 +367,42 @@ def _check_forecast(args):
     return steps
 
 
-def _with_forecast(args, series, steps):
-    """``series`` with the forecast rows appended (unchanged without --forecast)."""
-    from ._src.tools import horizon
+def _check_future_inputs(args, spec):
+    """UsageError unless the forecast options suit the model's regression inputs (none, or --future-inputs)."""
+    inputs = spec.input_columns()
+    if args.future_inputs is not None and not inputs:
+        raise UsageError("--future-inputs: the model has no regression component, so its forecast rows need no "
+                         "inputs; use --forecast N (and --forecast-step).")
+    if inputs and args.forecast is not None and args.future_inputs is None:
+        regs = ", ".join(p.name for p in spec.components if p.inputs)
+        raise UsageError(f"--forecast {args.forecast}: the model's regression ({regs}) reads the input column(s) "
+                         f"{', '.join(inputs)}, whose values at the forecast rows are unknown. Give them with "
+                         f"--future-inputs FILE (a table with columns {spec.time_column}, {', '.join(inputs)}), "
+                         "or add the future rows to DATA with the inputs filled and the measurements blank.")
 
-    if steps is None:
+
+def _with_forecast(args, series, steps, spec):
+    """``series`` with the forecast rows appended (unchanged without --forecast or --future-inputs)."""
+    from ._src.tools import horizon, tables
+
+    _check_future_inputs(args, spec)
+    if args.future_inputs is not None:
+        names, cols = tables.read_table(args.future_inputs)
+        extended = horizon.rows_from_table(series, names, cols, spec.time_column, source=str(args.future_inputs),
+                                           limit=steps, missing=args.missing)
+        steps = extended.forecast
+    elif steps is None:
         return series
-    extended = horizon.extend(series, steps, args.forecast_step)
+    else:
+        extended = horizon.extend(series, steps, args.forecast_step)
     _say(args, f"Forecast: {steps} rows after {series.times_raw[-1]}, up to {extended.times_raw[-1]}.")
     return extended
 
 
 def _read(args, time_column, columns, time_format=None, *, time_unit=None, numeric_time_unit=None,
-          time_pattern=None):
+          time_pattern=None, inputs=(), inputs_option=None):
+    """The series of DATA. ``inputs``: regression input columns; with ``inputs_option`` (the option that named
+    them) one that DATA lacks is a UsageError naming that option, else a DataError."""
     from ._src.tools import series, tables
 
     if args.missing is not None:
@@ -350,9 +410,14 @@ def _read(args, time_column, columns, time_format=None, *, time_unit=None, numer
         if bad:
             raise UsageError("--missing needs a word; blank cells are always missing.")
     names, cols = tables.read_table(args.data)
+    absent = [c for c in inputs if c not in cols]
+    if absent and inputs_option is not None:
+        raise UsageError(f"{inputs_option}: the regression reads input column {absent[0]!r}, but {args.data} has "
+                         f"no such column; its columns are {', '.join(map(repr, names))}.")
     return series.series_from_table(names, cols, time_column, columns, source=str(args.data),
                                     time_format=time_format, missing=args.missing, time_unit=time_unit,
-                                    numeric_time_unit=numeric_time_unit, time_pattern=time_pattern)
+                                    numeric_time_unit=numeric_time_unit, time_pattern=time_pattern,
+                                    inputs=inputs)
 
 
 # ----------------------------------------------------------------------------
@@ -368,6 +433,7 @@ def cmd_models(args) -> int:
         dims_note = "" if k.fixed_dims else " (with --dims 1; more axes add position1, velocity1, ...)"
         print(f"    states: {', '.join(k.state_names(1))}{dims_note}")
         print(f"    parameters: {', '.join(k.params)}, noise (one variance per measured column)")
+    print("\n" + _components_text())
     return EXIT_OK
 
 
@@ -377,6 +443,7 @@ def cmd_fit(args) -> int:
     from ._src import splits
     from ._src.tools import apply_workflow, fit_workflow, model_file, starting_values, tables
     from ._src.tools.report import write_report
+    from ._src.tools import composed
     from ._src.tools.settings import apply_settings, parse_measures
     from ._src.tools.spec import KINDS, check_columns
 
@@ -390,18 +457,25 @@ def cmd_fit(args) -> int:
     if not (args.learning_rate > 0 and math.isfinite(args.learning_rate)):
         raise UsageError(f"--learning-rate must be > 0; got {args.learning_rate}.")
     forecast_steps = _check_forecast(args)
-    table_path, report_path, model_path = _outputs(args, model_file=True,
-                                                   inputs=[("DATA", args.data), ("--start", args.start)])
+    table_path, report_path, model_path = _outputs(args, model_file=True, inputs=[
+        ("DATA", args.data), ("--start", args.start), ("--future-inputs", args.future_inputs)])
 
     start = model_file.load_model(args.start) if args.start else None
     time_unit, numeric_unit = args.time_unit, args.numeric_time_unit
+    if args.components is not None and (args.model is not None or start is not None):
+        raise UsageError(f"--components gives the model, and so does {'--model' if args.model else '--start'}; "
+                         "drop one of them.")
     if start is not None:
         for opt, val, have in (("--model", args.model, start.kind), ("--time", args.time, start.time_column),
                                ("--dims", args.dims, start.dims)):
             if val is not None and val != have:
                 raise UsageError(f"{opt} {val} contradicts the --start model file ({have}); drop one of them.")
         if args.measure:
-            cols, states, _ = parse_measures(args.measure, start.kind, start.dims)
+            if start.is_composed:
+                cols, reads = composed.parse_reads(args.measure, [p.name for p in start.components])
+                states = ["+".join(r) for r in reads]
+            else:
+                cols, states, _ = parse_measures(args.measure, start.kind, start.dims)
             if tuple(cols) != start.columns or tuple(states) != start.measured:
                 raise UsageError("--measure contradicts the columns of the --start model file; drop one of them.")
         # The starting values are per the start file's time unit: another unit would change their meaning.
@@ -414,13 +488,37 @@ def cmd_fit(args) -> int:
             raise UsageError(f"--time-unit {resolved} contradicts the --start model file, whose rates are per "
                              f"{start.time_unit}; drop one of them.")
         series = _read(args, start.time_column, start.columns, start.time_format, time_unit=time_unit,
-                       numeric_time_unit=numeric_unit, time_pattern=_time_pattern(args, start.time_pattern))
+                       numeric_time_unit=numeric_unit, time_pattern=_time_pattern(args, start.time_pattern),
+                       inputs=start.input_columns())
         spec = start
+    elif args.components is not None:
+        missing = [o for o, v in (("--time", args.time), ("--measure", args.measure)) if not v]
+        if missing:
+            raise UsageError(f"fit needs {', '.join(missing)} (or --start MODEL.json).")
+        if args.dims is not None:
+            raise UsageError("--dims does not apply to --components (a composed model has one axis).")
+        drafts = composed.parse_components(args.components)
+        cols, reads = composed.parse_reads(args.measure, [d.name for d in drafts])
+        try:
+            check_columns(args.time, cols)
+        except ValueError as e:
+            raise UsageError(f"--measure: {e}") from None
+        clash = [c for c in composed.input_columns(drafts) if c in cols or c == args.time]
+        if clash:
+            raise UsageError(f"--components: regression input {clash[0]!r} is the time column or a --measure "
+                             "column; a regression reads known inputs, not the measured quantities.")
+        series = _read(args, args.time, cols, time_unit=time_unit, numeric_time_unit=numeric_unit,
+                       time_pattern=_time_pattern(args), inputs=composed.input_columns(drafts),
+                       inputs_option="--components")
+        try:
+            spec = starting_values.composed_spec(drafts, args.time, cols, reads, series)
+        except ValueError as e:
+            raise UsageError(f"--components: {e}") from None
     else:
         missing = [o for o, v in (("--time", args.time), ("--model", args.model), ("--measure", args.measure))
                    if not v]
         if missing:
-            raise UsageError(f"fit needs {', '.join(missing)} (or --start MODEL.json).")
+            raise UsageError(f"fit needs {', '.join(missing)} (or --components TEXT, or --start MODEL.json).")
         if args.model not in KINDS:
             raise UsageError(f"--model {args.model!r} is not a model kind; choose one of {', '.join(KINDS)}.")
         cols, states, dims = parse_measures(args.measure, args.model, args.dims)
@@ -439,9 +537,9 @@ def cmd_fit(args) -> int:
         if hint:
             _say(args, f"Note: the rates are per second; the typical step is {step:.4g} s, so --time-unit {hint} "
                        "may give more readable numbers.")
-    out_series = _with_forecast(args, series, forecast_steps)  # before the fit: a bad step fails fast
+    out_series = _with_forecast(args, series, forecast_steps, spec)  # before the fit: a bad step fails fast
     spec = apply_settings(spec, args.set)
-    allowed = set(spec.kind_info.params) | {"noise"}
+    allowed = spec.free_names()
     bad = [f for f in args.fix if f not in allowed]
     if bad:
         raise UsageError(f"--fix {bad[0]}: unknown parameter; this model has {', '.join(sorted(allowed))}.")
@@ -461,7 +559,7 @@ def cmd_fit(args) -> int:
     before = apply_workflow.heldout_rmse(spec, series, test) if test.any() else None
     if before is not None:
         _say(args, f"Held-out RMSE of the starting model: {_format_errors(before)}")
-    _say(args, f"Fitting {spec.kind} (objective: {args.objective}, {args.steps} steps) ...")
+    _say(args, f"Fitting {spec.label} (objective: {args.objective}, {args.steps} steps) ...")
     outcome = fit_workflow.fit_spec(spec, series, train, objective=args.objective, steps=args.steps,
                                 learning_rate=args.learning_rate, fixed=tuple(args.fix), folds=args.folds,
                                 seed=args.seed, progress=not args.quiet)
@@ -479,6 +577,7 @@ def cmd_fit(args) -> int:
         "final_loss": outcome.history[outcome.best_step] if outcome.history else None,
         "learning_rate": args.learning_rate, "fixed": list(args.fix), "test_fraction": args.test_fraction,
         "seed": args.seed, "heldout_rmse_before": before, "heldout_rmse_after": after,
+        **({"components": args.components} if args.components is not None else {}),
     })
     smoothing = apply_workflow.smooth_series(fitted, out_series)
     names, cols = _table_for(args, fitted, out_series, smoothing, test if test.any() else None)
@@ -494,7 +593,7 @@ def cmd_fit(args) -> int:
                          test_mask=test if test.any() else None, history=outcome.history,
                          loss_label=("−log-likelihood per cell" if args.objective == "likelihood"
                                      else "CV squared error (sd units)"),
-                         title=f"kalmax fit: {fitted.kind} on {Path(args.data).name}", summary=summary)
+                         title=f"kalmax fit: {fitted.label} on {Path(args.data).name}", summary=summary)
     def fmt(v):
         return "[" + ", ".join(f"{x:.4g}" for x in v) + "]" if isinstance(v, (list, tuple)) else f"{v:.4g}"
 
@@ -513,25 +612,27 @@ def cmd_apply(args) -> int:
 
     _check_level(args)
     forecast_steps = _check_forecast(args)
-    table_path, report_path, _ = _outputs(args, model_file=False,
-                                          inputs=[("DATA", args.data), ("MODEL.json", args.model_file)])
+    table_path, report_path, _ = _outputs(args, model_file=False, inputs=[
+        ("DATA", args.data), ("MODEL.json", args.model_file), ("--future-inputs", args.future_inputs)])
     spec = model_file.load_model(args.model_file)
+    _check_future_inputs(args, spec)
     if horizon.step_needs_unit(args.forecast_step, spec.time_format, spec.time_unit):
         raise ModelFileError(f"{args.model_file}: the model names no time unit (numeric times fitted without "
                              f"--time-unit, or a format version 1 file), so --forecast-step {args.forecast_step} "
                              "cannot be converted to the time column's units; give the step as a plain number in "
                              "those units, or refit with --time-unit.")
     series = _read(args, spec.time_column, spec.columns, spec.time_format, time_unit=spec.time_unit,
-                   numeric_time_unit=spec.numeric_time_unit, time_pattern=_time_pattern(args, spec.time_pattern))
+                   numeric_time_unit=spec.numeric_time_unit, time_pattern=_time_pattern(args, spec.time_pattern),
+                   inputs=spec.input_columns())
     _say(args, f"Read {args.data}: {len(series.t)} rows, {int(series.mask.sum())} observed cells.")
-    series = _with_forecast(args, series, forecast_steps)
+    series = _with_forecast(args, series, forecast_steps, spec)
     smoothing = apply_workflow.smooth_series(spec, series)
     names, cols = _table_for(args, spec, series, smoothing)
     with AtomicOutputs() as out:
         tables.write_table(table_path, names, cols, out)
         if report_path is not None:
             write_report(out.temp_for(report_path), spec, series, smoothing, level=args.level,
-                         title=f"kalmax apply: {spec.kind} model {Path(args.model_file).name} on "
+                         title=f"kalmax apply: {spec.label} model {Path(args.model_file).name} on "
                                f"{Path(args.data).name}")
     _say(args, f"Wrote {table_path}" + (f", {report_path}" if report_path else ""))
     return EXIT_OK

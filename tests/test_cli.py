@@ -84,7 +84,7 @@ def test_fit_writes_table_model_and_report(cv_csv, tmp_path):
     assert spec.measured == ("position0", "velocity0")
     assert spec.fit["objective"] == "likelihood" and spec.fit["heldout_rmse_after"]["pos"] > 0
     doc = json.loads(model.read_text())
-    assert doc["format"] == "kalmax-model" and doc["format_version"] == 2
+    assert doc["format"] == "kalmax-model" and doc["format_version"] == 3
     png = report.read_bytes()
     assert png.startswith(b"\x89PNG\r\n\x1a\n") and len(png) > 20_000
     assert not [p for p in tmp_path.iterdir() if p.name.endswith(".part")]
@@ -174,8 +174,8 @@ def _bad_inputs(folder: Path):
                                         columns=("pos", "vel"), measured=("position0", "velocity0"),
                                         params={"q": [0.1]}, noise=(0.1, 0.01)))
     (folder / "good.json").write_text(json.dumps(doc))
-    doc["format_version"] = 3
-    (folder / "v3.json").write_text(json.dumps(doc))
+    doc["format_version"] = 4
+    (folder / "v4.json").write_text(json.dumps(doc))
     doc["format_version"] = 2
     doc["model"]["measurements"][0]["noise_variance"] = -1.0
     (folder / "negative.json").write_text(json.dumps(doc))
@@ -204,8 +204,8 @@ def _bad_inputs(folder: Path):
         ("parquet without pyarrow", S, ["apply", "iso.json", "bad.parquet"], 3,
          ["pyarrow", "not installed"], no_pyarrow),
         ("report path is a folder", P, fit + ["ok.csv", *FIT_ARGS, "--report", "a_folder"], 3, ["is a folder"]),
-        ("model from another version", S, ["apply", "v3.json", "ok.csv"], 4,
-         ["format version 3", "reads format versions 1 and 2"]),
+        ("model from another version", S, ["apply", "v4.json", "ok.csv"], 4,
+         ["format version 4", "reads format versions 1, 2 and 3"]),
         ("model file missing", P, ["apply", "none.json", "ok.csv"], 4, ["no such file"]),
         ("missing options", S, fit + ["ok.csv", "--measure", "pos"], 2, ["--time", "--model"]),
         ("axis never measured", S, fit + ["ok.csv", "--time", "t", "--model", "constant-velocity", "--dims", "2",
@@ -222,8 +222,8 @@ def _bad_inputs(folder: Path):
         ("empty file", P, fit + ["blank.csv", *FIT_ARGS], 3, ["empty"]),
         ("output folder missing", P, fit + ["ok.csv", *FIT_ARGS, "-o", "no/such/dir/out.csv"], 3,
          ["does not exist"]),
-        ("start from another version", P, fit + ["ok.csv", "--start", "v3.json", "--quiet"], 4,
-         ["format version 3"]),
+        ("start from another version", P, fit + ["ok.csv", "--start", "v4.json", "--quiet"], 4,
+         ["format version 4"]),
         ("invalid model values", P, ["apply", "negative.json", "ok.csv"], 4, ["noise", "> 0"]),
         ("NaN in model file", P, ["apply", "nan.json", "ok.csv"], 4, ["invalid JSON"]),
         ("model not json", P, ["apply", "notjson.json", "ok.csv"], 4, ["invalid JSON"]),

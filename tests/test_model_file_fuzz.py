@@ -753,7 +753,7 @@ def test_strict_values_are_refused(workdir, name):
 
 def test_matching_states_and_integer_version_load(workdir):
     doc = _valid_doc()
-    assert doc["format_version"] == kio.FORMAT_VERSION == 2 and type(doc["format_version"]) is int
+    assert doc["format_version"] == kio.FORMAT_VERSION == 3 and type(doc["format_version"]) is int
     spec = kx.load_model(_write(workdir, json.dumps(doc).encode()))
     assert list(spec.state_names()) == doc["model"]["states"]
     del doc["model"]["states"]  # optional: the kind and dims define them
@@ -762,7 +762,8 @@ def test_matching_states_and_integer_version_load(workdir):
 
 def test_version_1_files_load_with_the_units_of_version_1(workdir):
     """A version-1 file (no unit entries) still loads: rates per second for date-times, per unit of the
-    numbers for numbers; saving it again writes version 2 with those units spelt out, which loads equal."""
+    numbers for numbers; saving it again writes the current version with those units spelt out, which loads
+    equal."""
     for seed, want in ((SEED_SPECS[1], "s"), (SEED_SPECS[0], None)):
         doc = kio.spec_to_dict(seed)
         doc["format_version"] = 1
@@ -774,7 +775,7 @@ def test_version_1_files_load_with_the_units_of_version_1(workdir):
         again = workdir / "v1_resaved.json"
         kx.save_model(again, spec)
         resaved = json.loads(again.read_text())
-        assert resaved["format_version"] == 2 and resaved["model"]["time_unit"] == want
+        assert resaved["format_version"] == kio.FORMAT_VERSION and resaved["model"]["time_unit"] == want
         assert kx.load_model(again) == spec
     CASES["fixed"] += 2
 

@@ -35,7 +35,7 @@ def smooth_series(spec: ModelSpec, series: Series, mask=None) -> Smoothing:
     identified (NaN from the smoother).
     """
     mask = series.mask if mask is None else mask
-    model = spec.state_space(jnp.asarray(series.t))
+    model = spec.state_space(jnp.asarray(series.t), inputs=series.inputs)
     y = jnp.asarray(np.where(mask, series.y, 0.0))
     out = _smooth_with_covariances(model, y, jnp.asarray(mask))
     mean = np.asarray(out.measurements)

@@ -18,6 +18,11 @@ then read back from those cells by the same exact route as the record's
 (``series.exact_time``), so the smoothed rows and the written timestamps
 agree; a step finer than the column can write is refused rather than
 rounded into repeated timestamps.
+
+Future inputs. A composed model with a regression needs its input columns at
+the forecast rows too, which no step can invent: ``--future-inputs FILE``
+gives the forecast rows instead, one per row of FILE (its time column and the
+input columns), read by :func:`rows_from_table`.
 """
 
 from __future__ import annotations
@@ -30,8 +35,8 @@ from typing import Optional
 
 import numpy as np
 
-from .errors import UsageError
-from .series import Series, exact_time, to_model_time
+from .errors import DataError, UsageError
+from .series import Series, _parse_time, exact_time, input_values, missing_words, to_model_time
 from .tables import _NS_PER, Instant
 from .time_units import UNITS, parse_duration
 
@@ -216,11 +221,63 @@ def extend(series: Series, steps: int, step_text: Optional[str] = None) -> Serie
                              f"would be written {cells[k]!s}, not after {series.times_raw[-1] if k == 0 else cells[k - 1]!s}."
                              " Give a larger --forecast-step.")
         prev = v
+    return _append(series, cells, exact, None, UsageError, "give a larger --forecast-step or fewer rows")
+
+
+def _append(series: Series, cells: list, exact: list, inputs, error, remedy: str) -> Series:
+    """``series`` with rows at the exact times ``exact`` (written ``cells``) appended as forecast rows.
+
+    ``inputs``: column → values of the new rows for each of ``series.inputs`` (None: unknown, NaN).
+    """
+    clock = series.clock
+    steps = len(cells)
     t_new = np.array([to_model_time(v, clock.first, clock.native_per_unit) for v in exact])
     t = np.concatenate([series.t, t_new])
     if not (np.all(np.isfinite(t_new)) and np.all(np.diff(t) > 0)):
-        raise UsageError("the forecast timestamps are too close together (or too far out) to tell apart in "
-                         "float64 at their distance from the first timestamp; give a larger --forecast-step or "
-                         "fewer rows.")
+        raise error("the forecast timestamps are too close together (or too far out) to tell apart in "
+                    f"float64 at their distance from the first timestamp; {remedy}.")
     y = np.concatenate([series.y, np.full((steps, series.y.shape[1]), np.nan)])
-    return series._replace(times_raw=list(series.times_raw) + cells, t=t, y=y, forecast=steps)
+    known = None
+    if series.inputs is not None:
+        known = {k: np.concatenate([v, np.full(steps, np.nan) if inputs is None else inputs[k]])
+                 for k, v in series.inputs.items()}
+    return series._replace(times_raw=list(series.times_raw) + cells, t=t, y=y, forecast=steps, inputs=known)
+
+
+def rows_from_table(series: Series, names, cols, time_column: str, *, source: str, limit: Optional[int] = None,
+                    missing=None) -> Series:
+    """``series`` with the rows of a future-inputs table appended as forecast rows (``--future-inputs``).
+
+    The table needs ``time_column`` (written like the record's: the same kind
+    of timestamps, read with the same pattern) and every input column of
+    ``series.inputs``, with a value in every cell; its times must come after
+    the record's last one and increase. ``limit``: use only the first rows.
+    Raises :class:`DataError` naming the file, row and column.
+    """
+    wanted = [time_column] + list(series.inputs or ())
+    absent = [c for c in wanted if c not in cols]
+    if absent:
+        raise DataError(f"{source}: no column named {', '.join(repr(c) for c in absent)}; the future inputs need "
+                        f"the time column and the input column(s): {', '.join(repr(c) for c in wanted)}.")
+    cells = list(cols[time_column])[:limit]
+    if not cells or (limit is not None and len(cells) < limit):
+        raise DataError(f"{source}: {len(cells)} row(s), but {limit or 1} forecast row(s) were asked for: the future "
+                        "inputs give one forecast row per row.")
+    clock = series.clock
+    exact, prev = [], clock.last
+    for i, cell in enumerate(cells):
+        parsed = None if cell is None or (isinstance(cell, str) and not cell.strip()) else _parse_time(
+            cell, clock.pattern)
+        if parsed is None or parsed[1] != series.time_format:
+            raise DataError(f"{source}: time column {time_column!r}, data row {i + 1}: {cell!r} is not a timestamp "
+                            f"like the record's ({series.time_format}" + (f", pattern {clock.pattern!r}"
+                                                                            if clock.pattern else "") + ").")
+        if parsed[0] <= prev:
+            after = series.times_raw[-1] if i == 0 else cells[i - 1]
+            raise DataError(f"{source}: time column {time_column!r}, data row {i + 1}: {cell!r} is not after "
+                            f"{after!r}; forecast rows must follow the record's last timestamp and increase.")
+        prev = parsed[0]
+        exact.append(parsed[0])
+    known = {c: input_values(list(cols[c])[:len(cells)], c, source, missing_words(missing))
+             for c in series.inputs or ()}
+    return _append(series, cells, exact, known, DataError, "space the future rows further apart")

@@ -13,8 +13,21 @@ Format versions:
    would ignore it and use the wrong unit).
 2. adds, in ``model``, ``time_unit`` (required: a unit name, or null for
    numbers in their own unnamed unit), ``numeric_time_unit`` and
-   ``time_pattern`` (optional, null when absent). :func:`save_model` writes
-   version 2; version-1 files still load, with the units above.
+   ``time_pattern`` (optional, null when absent).
+3. adds composed models (``kalmax fit --components``): kind ``"composed"``
+   with a ``components`` list, one object per component: ``name``, ``kind``
+   (a component kind: level, trend, season, cycle, oscillation, regression),
+   ``columns`` (the measured columns that read it), and for a season its
+   fixed ``period`` (in ``time_unit``) and ``harmonics``, for a regression
+   its ``inputs`` (the input columns of the table). Its ``parameters`` are
+   named ``COMPONENT.PARAMETER`` (a regression's ``NAME.beta`` is a list, one
+   coefficient per input, any sign); its measurement entries have no
+   ``state``. The named kinds are written as in version 2 (no
+   ``components`` entry).
+
+:func:`save_model` writes version 3; version-1 and version-2 files still
+load, with the units above (:func:`spec_to_dict` can still write them, for
+models they can hold).
 """
 
 from __future__ import annotations
@@ -26,13 +39,16 @@ from pathlib import Path
 
 from .atomic_outputs import AtomicOutputs
 from .errors import ModelFileError
-from .spec import KINDS, ModelSpec
+from . import composed
+from .spec import COMPOSED, KINDS, ModelSpec
 from .time_units import MAX_PATTERN_CHARS, UNITS, unit_names
 
 FORMAT_NAME = "kalmax-model"
-FORMAT_VERSION = 2
-READABLE_VERSIONS = (1, 2)
+FORMAT_VERSION = 3
+READABLE_VERSIONS = (1, 2, 3)
 V2_ENTRIES = ("time_unit", "numeric_time_unit", "time_pattern")  # model entries new in version 2
+V3_ENTRIES = ("components",)  # model entries new in version 3
+PART_ENTRIES = ("name", "kind", "columns", "period", "harmonics", "inputs")
 MAX_MODEL_FILE_BYTES = 1 << 20  # 1 MiB: a model file holds a few hundred numbers
 MAX_DIMS = 16
 MAX_COLUMNS = 256
@@ -40,14 +56,41 @@ MAX_NAME_CHARS = 200
 MAX_MESSAGE_CHARS = 1000  # an error message quoting a huge value from the file is shortened to this
 
 
-def spec_to_dict(spec: ModelSpec) -> dict:
-    """The JSON document of a :class:`ModelSpec` (see :func:`save_model`)."""
+def _part_to_dict(p: composed.Part) -> dict:
+    entry = {"name": p.name, "kind": p.kind, "columns": list(p.columns)}
+    if p.kind == "season":
+        entry.update(period=p.period, harmonics=p.harmonics)
+    if p.inputs:
+        entry["inputs"] = list(p.inputs)
+    return entry
+
+
+def spec_to_dict(spec: ModelSpec, version: int = FORMAT_VERSION) -> dict:
+    """The JSON document of a :class:`ModelSpec` (see :func:`save_model`) in format ``version``.
+
+    Versions 1 and 2 are written for the models they can hold (ValueError
+    otherwise): no composed model, and for version 1 only the time units it
+    implies (seconds for date-times, none for numbers, no pattern).
+    """
     from ..version import __version__
 
+    if version not in READABLE_VERSIONS:
+        raise ValueError(f"version must be one of {READABLE_VERSIONS}; got {version!r}.")
+    if spec.is_composed and version < 3:
+        raise ValueError(f"format version {version} cannot hold a composed model (version 3 and later).")
+    v1_units = dict(time_unit="s" if spec.time_format == "iso8601" else None, numeric_time_unit=None,
+                    time_pattern=None)
+    if version == 1 and any(getattr(spec, k) != v for k, v in v1_units.items()):
+        raise ValueError("format version 1 has no time-unit entries: it holds only rates per second for "
+                         "date-times and per unit of the numbers for numbers, without a time pattern.")
     params = {k: (list(v) if isinstance(v, (list, tuple)) else v) for k, v in spec.params.items()}
-    return {
+    measurements = [{"column": c, "state": s, "noise_variance": float(r)}
+                    for c, s, r in zip(spec.columns, spec.measured, spec.noise)]
+    if spec.is_composed:  # what each column reads is in the components' "columns"
+        measurements = [{"column": c, "noise_variance": float(r)} for c, r in zip(spec.columns, spec.noise)]
+    doc = {
         "format": FORMAT_NAME,
-        "format_version": FORMAT_VERSION,
+        "format_version": version,
         "written_by": f"kalmax {__version__}",
         "written_at": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "model": {
@@ -61,10 +104,7 @@ def spec_to_dict(spec: ModelSpec) -> dict:
             "time_pattern": spec.time_pattern,
             "jitter": spec.jitter,
             "parameters": params,
-            "measurements": [
-                {"column": c, "state": s, "noise_variance": float(r)}
-                for c, s, r in zip(spec.columns, spec.measured, spec.noise)
-            ],
+            "measurements": measurements,
         },
         "fit": dict(spec.fit) if spec.fit is not None else None,
         "notes": (
@@ -73,6 +113,15 @@ def spec_to_dict(spec: ModelSpec) -> dict:
             "velocity or rate is in its units per time_unit too. Variances, not standard deviations."
         ),
     }
+    if spec.is_composed:  # after "jitter", before the parameters that name them
+        m = doc["model"]
+        at = list(m).index("parameters")
+        doc["model"] = dict(list(m.items())[:at] + [("components", [_part_to_dict(p) for p in spec.components])]
+                            + list(m.items())[at:])
+    if version == 1:
+        for k in V2_ENTRIES:
+            del doc["model"][k]
+    return doc
 
 
 def _reject_constant(name):
@@ -118,14 +167,18 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
     if version not in READABLE_VERSIONS:
         raise ModelFileError(f"{path}: " + _clip(
             f"model file format version {version!r} (written by {doc.get('written_by', 'unknown')}); "
-            f"this kalmax reads format versions {' and '.join(map(str, READABLE_VERSIONS))}. Refit the model "
+            f"this kalmax reads format versions {', '.join(map(str, READABLE_VERSIONS[:-1]))} and "
+            f"{READABLE_VERSIONS[-1]}. Refit the model "
             "with this version, or use the kalmax version that wrote the file."
         ))
     m = doc.get("model")
     _require(isinstance(m, dict), "the 'model' entry is missing or not an object.", path)
     kind = m.get("kind")
-    _require(isinstance(kind, str) and kind in KINDS,  # a list or object is not hashable
-             f"unknown model kind {kind!r}; known kinds: {', '.join(KINDS)}.", path)
+    _require(isinstance(kind, str) and (kind in KINDS or kind == COMPOSED),  # a list or object is not hashable
+             f"unknown model kind {kind!r}; known kinds: {', '.join(KINDS)}, {COMPOSED}.", path)
+    is_composed = kind == COMPOSED
+    _require(not is_composed or version >= 3, f"model kind {COMPOSED!r} needs format version 3 or later; the file "
+                                              f"says format_version {version}.", path)
     dims = m.get("dims")
     _require(isinstance(dims, int) and not isinstance(dims, bool) and 1 <= dims <= MAX_DIMS,
              f"dims must be an integer from 1 to {MAX_DIMS}; got {dims!r}.", path)
@@ -133,12 +186,14 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
     _require(isinstance(meas, list) and 1 <= len(meas) <= MAX_COLUMNS,
              f"'measurements' must be a list of 1 to {MAX_COLUMNS} entries.", path)
     for i, e in enumerate(meas):
-        _require(isinstance(e, dict) and isinstance(e.get("column"), str) and isinstance(e.get("state"), str)
+        _require(isinstance(e, dict) and isinstance(e.get("column"), str)
+                 and (is_composed or isinstance(e.get("state"), str))
                  and isinstance(e.get("noise_variance"), (int, float)) and not isinstance(e.get("noise_variance"), bool),
-                 f"measurement {i} must have a text 'column', a text 'state' and a numeric 'noise_variance'.", path)
+                 f"measurement {i} must have a text 'column', " + ("" if is_composed else "a text 'state' ")
+                 + "and a numeric 'noise_variance'.", path)
         _require(len(e["column"]) <= MAX_NAME_CHARS, f"measurement {i}: column name too long.", path)
         _require(e["column"].strip() != "", f"measurement {i}: the column name is empty.", path)
-    if "states" in m:  # written for readers; optional, but if present it must be the kind's states
+    if "states" in m and not is_composed:  # written for readers; optional, but if present it must be the kind's states
         want = list(KINDS[kind].state_names(dims))
         _require(m["states"] == want and all(isinstance(x, str) for x in m["states"]),
                  f"'states' must be the states of a {kind} model with dims={dims}: {', '.join(want)}.", path)
@@ -146,11 +201,12 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
     _require(isinstance(tcol, str) and 0 < len(tcol) <= MAX_NAME_CHARS, "'time_column' must be a non-empty text.", path)
     params = m.get("parameters")
     _require(isinstance(params, dict), "'parameters' must be an object.", path)
+    longest = MAX_COLUMNS if is_composed else MAX_DIMS  # a regression's beta: one per input column
     for k, v in params.items():
         ok = isinstance(v, (int, float)) and not isinstance(v, bool)
-        ok = ok or (isinstance(v, list) and len(v) <= MAX_DIMS
+        ok = ok or (isinstance(v, list) and len(v) <= longest
                     and all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in v))
-        _require(ok, f"parameter {k!r} must be a number or a list of at most {MAX_DIMS} numbers.", path)
+        _require(ok, f"parameter {k!r} must be a number or a list of at most {longest} numbers.", path)
     fit = doc.get("fit")
     _require(fit is None or isinstance(fit, dict), "'fit' must be an object or null.", path)
     jitter = m.get("jitter", 0.0)
@@ -158,6 +214,12 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
     time_format = m.get("time_format", "number")
     _require(isinstance(time_format, str) and time_format in ("number", "iso8601"),
              "'time_format' must be \"number\" or \"iso8601\".", path)
+    later = [k for k in V3_ENTRIES if k in m] if version < 3 else []
+    _require(not later, f"'{later[0] if later else ''}' is an entry of format version 3, but the file says "
+                        f"format_version {version} (a reader of that version would ignore it).", path)
+    _require(is_composed or "components" not in m,
+             f"'components' belongs to kind {COMPOSED!r}, not to kind {kind!r}.", path)
+    parts = _parts_from_doc(m.get("components"), path) if is_composed else ()
     if version == 1:
         extra = [k for k in V2_ENTRIES if k in m]
         _require(not extra, f"'{extra[0] if extra else ''}' is an entry of format version 2, but the file says "
@@ -166,7 +228,7 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
         units = dict(time_unit="s" if time_format == "iso8601" else None, numeric_time_unit=None, time_pattern=None)
     else:
         _require("time_format" in m and "time_unit" in m,
-                 "a format version 2 model needs 'time_format' and 'time_unit' entries.", path)
+                 f"a format version {version} model needs 'time_format' and 'time_unit' entries.", path)
         units = {k: m.get(k) for k in V2_ENTRIES}
         for k in ("time_unit", "numeric_time_unit"):
             _require(units[k] is None or (isinstance(units[k], str) and units[k] in UNITS),
@@ -177,23 +239,60 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
         _require(units["time_unit"] is not None or time_format == "number",
                  "'time_unit' must name a unit for date-times (time_format iso8601); null is for numbers only.",
                  path)
+    columns = tuple(e["column"] for e in meas)
     try:
-        return ModelSpec(
+        spec = ModelSpec(
             kind=kind, dims=dims, time_column=tcol,
-            columns=tuple(e["column"] for e in meas),
-            measured=tuple(e["state"] for e in meas),
+            columns=columns,
+            measured=(tuple(composed.reads_text(parts, c) for c in columns) if is_composed
+                      else tuple(e["state"] for e in meas)),
             params=params,
             noise=tuple(float(e["noise_variance"]) for e in meas),
             time_format=time_format,
             jitter=float(jitter),
             fit=fit,
+            components=parts,
             **units,
         )
+        if is_composed and "states" in m:  # written for readers; if present, the components' states
+            _require(m["states"] == list(spec.state_names()),
+                     f"'states' must be the states of the components: {', '.join(spec.state_names())}.", path)
+        return spec
     except ValueError as e:
         raise ModelFileError(f"{path}: invalid model: {_clip(str(e))}") from None
     except OverflowError:  # an integer too large for a float (JSON integers are unbounded)
         raise ModelFileError(f"{path}: invalid model: a number is too large to be a floating-point value "
                              "(the largest is about 1.8e308).") from None
+
+
+def _parts_from_doc(entries, path) -> tuple:
+    """The components of a composed model's document, checked for types (values: ``composed.check_parts``)."""
+    _require(isinstance(entries, list) and 1 <= len(entries) <= composed.MAX_PARTS,
+             f"a composed model needs 'components': a list of 1 to {composed.MAX_PARTS} objects.", path)
+    parts = []
+    for i, e in enumerate(entries):
+        _require(isinstance(e, dict), f"component {i} must be an object.", path)
+        unknown = [k for k in e if k not in PART_ENTRIES]
+        _require(not unknown, f"component {i}: unknown entry {unknown[0] if unknown else ''!r}; the entries are "
+                              f"{', '.join(PART_ENTRIES)}.", path)
+        _require(isinstance(e.get("name"), str) and len(e["name"]) <= MAX_NAME_CHARS,
+                 f"component {i} needs a text 'name'.", path)
+        _require(isinstance(e.get("kind"), str) and e["kind"] in composed.PART_KINDS,
+                 f"component {i}: 'kind' must be one of {', '.join(composed.PART_KINDS)}.", path)
+        for key in ("columns", "inputs"):
+            v = e.get(key, [] if key == "inputs" else None)
+            _require(isinstance(v, list) and len(v) <= MAX_COLUMNS
+                     and all(isinstance(c, str) and len(c) <= MAX_NAME_CHARS for c in v),
+                     f"component {i}: '{key}' must be a list of at most {MAX_COLUMNS} column names.", path)
+        period, harmonics = e.get("period"), e.get("harmonics")
+        _require(period is None or (isinstance(period, (int, float)) and not isinstance(period, bool)),
+                 f"component {i}: 'period' must be a number.", path)
+        _require(harmonics is None or (type(harmonics) is int and 1 <= harmonics <= composed.MAX_STATES // 2),
+                 f"component {i}: 'harmonics' must be a whole number from 1 to {composed.MAX_STATES // 2}.", path)
+        parts.append(composed.Part(kind=e["kind"], name=e["name"], columns=tuple(e["columns"]),
+                                   period=None if period is None else float(period), harmonics=harmonics,
+                                   inputs=tuple(e.get("inputs", ()))))
+    return tuple(parts)
 
 
 def save_model(path, spec: ModelSpec, out: AtomicOutputs = None) -> None:

@@ -20,13 +20,19 @@ from ..likelihood import log_likelihood
 from ..smoothing import holdout_sums, smooth
 from .errors import FitError
 from .series import Series, column_scales
-from .spec import ModelSpec, param_shape
+from .spec import ModelSpec
 
 
 def _scaled(model, y, s):
     """The same model in standardised units y_j / s_j (smoothed states are unchanged)."""
     inv = 1.0 / s
-    return model.replace(C=model.C * inv[:, None], R=model.R * inv[:, None] * inv[None, :]), y * inv
+    d = None if model.d is None else model.d * inv
+    return model.replace(C=model.C * inv[:, None], R=model.R * inv[:, None] * inv[None, :], d=d), y * inv
+
+
+def series_inputs(series: Series):
+    """The regression inputs of ``series`` as JAX arrays (None when it has none): a data argument of the loss."""
+    return None if not series.inputs else {k: jnp.asarray(v) for k, v in series.inputs.items()}
 
 
 _CHAIN_KINDS = ("random-walk", "constant-velocity", "constant-acceleration")
@@ -116,25 +122,26 @@ def make_loss(spec: ModelSpec, series: Series, train_mask, objective: str, *,
     t = np.asarray(series.t)
     y = jnp.asarray(np.where(train_mask, series.y, 0.0))
     mask = jnp.asarray(train_mask)
+    inputs = series_inputs(series)
     n_obs = float(np.sum(train_mask))
     if objective == "likelihood":
         axes = independent_axes(spec)
         if axes is not None:
             return _axis_likelihood_loss(spec, t, axes, y, mask, n_obs)
 
-        def loss(theta, y, mask):
-            model = spec.state_space(t, theta)
+        def loss(theta, y, mask, inputs):
+            model = spec.state_space(t, theta, inputs=inputs)
             return -log_likelihood(model, y, mask) / n_obs
-        return loss, (y, mask)
+        return loss, (y, mask, inputs)
     if objective == "holdout":
         s = jnp.asarray(column_scales(series, train_mask))
         holds = splits.holdout_folds(mask, folds, seed)
 
-        def loss(theta, y, mask, s, holds):
-            model, ys = _scaled(spec.state_space(t, theta), y, s)
+        def loss(theta, y, mask, s, holds, inputs):
+            model, ys = _scaled(spec.state_space(t, theta, inputs=inputs), y, s)
             sse, cnt = jax.vmap(lambda h: holdout_sums(model, ys, mask, h))(holds)
             return jnp.sum(sse) / jnp.sum(cnt)
-        return loss, (y, mask, s, holds)
+        return loss, (y, mask, s, holds, inputs)
     raise ValueError(f"objective must be 'likelihood' or 'holdout'; got {objective!r}.")
 
 
@@ -152,7 +159,7 @@ def calibrate_scale(spec: ModelSpec, series: Series, train_mask, *, folds: int =
     y = jnp.asarray(np.where(train_mask, series.y, 0.0))
     mask = jnp.asarray(train_mask)
     holds = splits.holdout_folds(mask, folds, seed)
-    model = spec.state_space(t)
+    model = spec.state_space(t, inputs=series.inputs)
     R = np.diag(np.asarray(model.R))
 
     def one(h):
@@ -164,9 +171,9 @@ def calibrate_scale(spec: ModelSpec, series: Series, train_mask, *, folds: int =
     c = float(z2.sum() / np.asarray(holds).sum())
     if not (math.isfinite(c) and c > 0):
         raise FitError("could not calibrate the noise scale (non-finite held-out errors).")
-    kind = spec.kind_info
+    variances = spec.variance_names()  # q, q_level, q_slope, ...: variances per unit time
     params = {}
     for k, v in spec.params.items():
-        scale = c if k.startswith("q") else 1.0  # q, q_level, q_slope are variances per unit time
-        params[k] = [scale * float(x) for x in v] if param_shape(kind, k, spec.dims) else scale * float(v)
+        scale = c if k in variances else 1.0
+        params[k] = [scale * float(x) for x in v] if np.ndim(v) else scale * float(v)
     return spec.replace(params=params, noise=tuple(c * r for r in spec.noise))

@@ -82,6 +82,8 @@ class Series(NamedTuple):
     clock: how ``t`` was made (None for a series built by hand: numbers, no unit).
     forecast: the last ``forecast`` rows are forecast rows appended past the
        record (no measurements; see ``horizon.py``).
+    inputs: the regression input columns of a composed model, column name →
+       (T,) float64 values (known at every row; None when the model has none).
     """
 
     times_raw: list
@@ -90,6 +92,7 @@ class Series(NamedTuple):
     time_format: str
     clock: Optional[Clock] = None
     forecast: int = 0
+    inputs: Optional[Dict[str, np.ndarray]] = None
 
     @property
     def mask(self) -> np.ndarray:
@@ -255,7 +258,8 @@ def series_from_table(names: Sequence[str], cols: Dict[str, list], time_column: 
                       missing: Optional[Iterable[str]] = None,
                       time_unit: Optional[str] = None,
                       numeric_time_unit: Optional[str] = None,
-                      time_pattern: Optional[str] = None) -> Series:
+                      time_pattern: Optional[str] = None,
+                      inputs: Sequence[str] = ()) -> Series:
     """Pick and check the time and measurement columns of a table.
 
     ``missing``: the words read as a missing measurement, compared without
@@ -280,9 +284,13 @@ def series_from_table(names: Sequence[str], cols: Dict[str, list], time_column: 
     to ``time_unit`` (which defaults to it). ``time_pattern``: a strptime
     pattern that reads every text cell as a date-time (instead of numbers
     and ISO 8601); a time without ``%z`` is read as UTC.
+
+    ``inputs``: regression input columns (known values, not measurements),
+    read into ``Series.inputs``; a missing cell in one of them is a
+    :class:`DataError` naming the row (an input must be known at every row).
     """
     missing_set = missing_words(missing)
-    wanted = [time_column] + list(columns)
+    wanted = [time_column] + list(columns) + list(inputs)
     absent = [c for c in wanted if c not in cols]
     if absent:
         raise DataError(f"{source}: no column named {', '.join(repr(c) for c in absent)}; "
@@ -370,7 +378,20 @@ def series_from_table(names: Sequence[str], cols: Dict[str, list], time_column: 
     if empty:
         raise DataError(f"{source}: column(s) {', '.join(repr(c) for c in empty)} hold no observation at all; "
                         "drop them from the measured columns.")
-    return Series(times_raw=list(raw), t=t, y=y, time_format=fmt, clock=clock)
+    known = {c: input_values(cols[c], c, source, missing_set) for c in inputs} or None
+    return Series(times_raw=list(raw), t=t, y=y, time_format=fmt, clock=clock, inputs=known)
+
+
+def input_values(cells, column: str, source: str, missing=frozenset(DEFAULT_MISSING)) -> np.ndarray:
+    """(T,) float64 values of a regression input column; a missing or bad cell is a :class:`DataError`."""
+    values = np.array([_parse_value(cell, column, i + 1, source, missing) for i, cell in enumerate(cells)],
+                      dtype=np.float64)
+    gaps = np.nonzero(np.isnan(values))[0]
+    if gaps.size:
+        raise DataError(f"{source}: input column {column!r}, data row {int(gaps[0]) + 1}: the value is missing "
+                        f"({gaps.size} missing in all). A regression reads its inputs at every row: fill the cells "
+                        "(e.g. with the last known value, if that is right for your inputs), or drop those rows.")
+    return values
 
 
 def first_datetime(series: Series) -> _dt.datetime:

@@ -60,8 +60,10 @@ def apply_settings(spec: ModelSpec, sets: Sequence[str]) -> ModelSpec:
     """``spec`` with starting values from ``NAME=VALUE`` items.
 
     ``q=0.1`` (every axis) or ``q=0.1,0.2`` (per axis), ``noise=4`` (every
-    column), ``noise.COL=4`` (one column). Values are variances or rates in
-    natural units, finite and > 0. Raises :class:`UsageError` naming the item.
+    column), ``noise.COL=4`` (one column); a composed model's parameters by
+    their full names (``daily.q=0.01``, ``heat.beta=0.5,-0.2``). Values are
+    variances or rates in natural units, finite and > 0 (a regression
+    coefficient may have any sign). Raises :class:`UsageError` naming the item.
     """
     params = dict(spec.params)
     noise = list(spec.noise)
@@ -74,8 +76,12 @@ def apply_settings(spec: ModelSpec, sets: Sequence[str]) -> ModelSpec:
             values = [float(v) for v in value.split(",")]
         except ValueError:
             raise UsageError(f"--set {item!r}: {value!r} is not a number or a comma-separated list.") from None
-        if not all(math.isfinite(v) and v > 0 for v in values):
-            raise UsageError(f"--set {item!r}: values must be finite and > 0.")
+        if name not in params and name != "noise" and not name.startswith("noise."):
+            raise UsageError(f"--set {name}: unknown parameter; this model has "
+                             f"{', '.join(list(params) + ['noise', 'noise.COL'])}.")
+        signed = name in params and not spec.is_positive(name)  # a regression coefficient
+        if not all(math.isfinite(v) and (v > 0 or signed) for v in values):
+            raise UsageError(f"--set {item!r}: values must be finite" + ("." if signed else " and > 0."))
         if name == "noise":
             if len(values) == 1:
                 noise = values * len(noise)
@@ -88,7 +94,7 @@ def apply_settings(spec: ModelSpec, sets: Sequence[str]) -> ModelSpec:
             if col not in spec.columns or len(values) != 1:
                 raise UsageError(f"--set {item!r}: no measured column {col!r} (or more than one value).")
             noise[spec.columns.index(col)] = values[0]
-        elif name in params:
+        else:  # a process parameter (unknown names were refused above)
             shape = np.shape(params[name])
             if shape == ():
                 if len(values) != 1:
@@ -98,9 +104,7 @@ def apply_settings(spec: ModelSpec, sets: Sequence[str]) -> ModelSpec:
                 if len(values) == 1:
                     values = values * shape[0]
                 if len(values) != shape[0]:
-                    raise UsageError(f"--set {name}: give 1 value or {shape[0]} (one per axis).")
+                    each = "one per input column" if spec.is_composed else "one per axis"
+                    raise UsageError(f"--set {name}: give 1 value or {shape[0]} ({each}).")
                 params[name] = values
-        else:
-            raise UsageError(f"--set {name}: unknown parameter; this model has "
-                             f"{', '.join(list(params) + ['noise', 'noise.COL'])}.")
     return spec.replace(params=params, noise=tuple(noise))

@@ -6,6 +6,13 @@ measures, and the parameter values in natural units. It turns into a
 :class:`ContinuousModel` (and so into a discrete :class:`StateSpace` for any
 timestamps), and its positive parameters map to and from an unconstrained
 vector of logarithms for gradient-based fitting.
+
+A *composed* model (kind ``"composed"``, ``kalmax fit --components``) is a sum
+of components (:mod:`.composed`): ``components`` lists them with the columns
+that read each, its parameters are named ``COMPONENT.PARAMETER``, and a
+regression's coefficients (``NAME.beta``, any sign) are fitted as they are,
+not as logarithms. Its model needs the regression input columns of the table
+(``inputs``: column name → (T,) values).
 """
 
 from __future__ import annotations
@@ -17,7 +24,9 @@ import jax.numpy as jnp
 import numpy as np
 
 from .. import continuous
+from ..components import NOISE
 from ..continuous import ContinuousModel
+from . import composed
 from ..model import StateSpace
 from .time_units import UNITS, check_pattern, unit_names
 
@@ -73,6 +82,10 @@ KINDS: Dict[str, Kind] = {
 }
 
 
+# The kind of a sum of components (``kalmax fit --components``); not one of KINDS.
+COMPOSED = "composed"
+
+
 def param_shape(kind: Kind, name: str, dims: int) -> tuple:
     return (dims,) if kind.params[name] == "axis" else ()
 
@@ -108,6 +121,9 @@ class ModelSpec:
             ``time_unit``. None: no conversion.
         time_pattern: the strptime pattern that date-times were read with
             (None: ISO 8601); ``kalmax apply`` reads new data with it too.
+        components: for kind ``"composed"``, the components
+            (:class:`composed.Part`, each with the columns that read it);
+            then ``measured`` holds what each column reads, ``NAME+NAME``.
     """
 
     kind: str
@@ -123,6 +139,7 @@ class ModelSpec:
     time_unit: Optional[str] = None
     numeric_time_unit: Optional[str] = None
     time_pattern: Optional[str] = None
+    components: Tuple[composed.Part, ...] = ()
 
     def __post_init__(self):
         if self.time_format == "iso8601" and self.time_unit is None:
@@ -133,8 +150,51 @@ class ModelSpec:
     def kind_info(self) -> Kind:
         return KINDS[self.kind]
 
+    @property
+    def is_composed(self) -> bool:
+        return self.kind == COMPOSED
+
+    @property
+    def label(self) -> str:
+        """The kind, or for a composed model its components (``level + season as daily + ...``)."""
+        if not self.is_composed:
+            return self.kind
+        return " + ".join(p.name if p.name == p.kind else f"{p.kind} as {p.name}" for p in self.components)
+
+    def composition(self):
+        """The :class:`ComposedModel` of a composed model (its structure; values come from ``params``)."""
+        cm = self.__dict__.get("_composition")
+        if cm is None:  # built once per spec (the spec is frozen); not a field, so not compared
+            cm = composed.composition(self.components, self.columns, self.jitter)
+            object.__setattr__(self, "_composition", cm)
+        return cm
+
     def state_names(self) -> Tuple[str, ...]:
+        if self.is_composed:
+            return self.composition().state_names
         return self.kind_info.state_names(self.dims)
+
+    def parameter_names(self) -> Tuple[str, ...]:
+        """The process parameters (not the noise), in order."""
+        if self.is_composed:
+            return tuple(k for k in self.composition().parameter_names if k != NOISE)
+        return tuple(self.kind_info.params)
+
+    def is_positive(self, name: str) -> bool:
+        """Whether parameter ``name`` (or ``"noise"``) must be positive; only regression coefficients need not."""
+        if self.is_composed and name != "noise":
+            return name in self.composition().positive
+        return True
+
+    def variance_names(self) -> Tuple[str, ...]:
+        """The process parameters that are variances (per unit time): they scale with the noise."""
+        if self.is_composed:
+            return composed.variance_names(self.components)
+        return tuple(k for k in self.kind_info.params if k.startswith("q"))
+
+    def input_columns(self) -> Tuple[str, ...]:
+        """The table columns a composed model's regressions read (known inputs, not measurements)."""
+        return composed.input_columns(self.components)
 
     def measured_indices(self) -> Tuple[int, ...]:
         names = self.state_names()
@@ -146,44 +206,51 @@ class ModelSpec:
     # -- unconstrained parametrisation ------------------------------------
     def free_names(self, fixed=()) -> Tuple[str, ...]:
         """Names of the fitted parameters: the process parameters, then ``noise``."""
-        return tuple(k for k in list(self.kind_info.params) + ["noise"] if k not in fixed)
+        return tuple(k for k in list(self.parameter_names()) + ["noise"] if k not in fixed)
 
     def to_unconstrained(self, fixed=()) -> Dict[str, np.ndarray]:
-        """{name: log(value)} for every parameter not in ``fixed`` (all are positive)."""
+        """{name: log(value)} for every parameter not in ``fixed`` (the value itself for a regression
+        coefficient, which may have any sign)."""
         out = {}
         for k in self.free_names(fixed):
-            v = self.noise if k == "noise" else self.params[k]
-            out[k] = np.log(np.asarray(v, dtype=np.float64))
+            v = np.asarray(self.noise if k == "noise" else self.params[k], dtype=np.float64)
+            out[k] = np.log(v) if self.is_positive(k) else v
         return out
 
-    def continuous_model(self, theta: Optional[Mapping] = None, dtype=None) -> ContinuousModel:
+    def continuous_model(self, theta: Optional[Mapping] = None, dtype=None, inputs=None) -> ContinuousModel:
         """The :class:`ContinuousModel`; ``theta`` (from :meth:`to_unconstrained`,
-        possibly traced) overrides the stored values of the parameters it names."""
+        possibly traced) overrides the stored values of the parameters it names.
+        ``inputs``: column name → (T,) values of a composed model's regression inputs."""
         theta = theta or {}
-        kind = self.kind_info
 
         def value(name, stored):
             if name in theta:
-                return jnp.exp(theta[name])
-            return jnp.asarray(np.asarray(stored, dtype=np.float64), dtype)
+                v = jnp.exp(theta[name]) if self.is_positive(name) else jnp.asarray(theta[name])
+            else:
+                v = jnp.asarray(np.asarray(stored, dtype=np.float64))
+            return v if dtype is None else v.astype(dtype)
 
-        p = {k: value(k, self.params[k]) for k in kind.params}
+        p = {k: value(k, self.params[k]) for k in self.parameter_names()}
         r = value("noise", self.noise)
-        if dtype is not None:
-            p = {k: v.astype(dtype) for k, v in p.items()}
-            r = r.astype(dtype)
-        return kind.build(self.dims, p, r, list(self.measured_indices()), self.jitter)
+        if self.is_composed:
+            X = composed.regression_inputs(self.components, inputs, dtype)
+            return self.composition().model({**p, NOISE: r}, inputs=X)
+        return self.kind_info.build(self.dims, p, r, list(self.measured_indices()), self.jitter)
 
-    def state_space(self, times, theta: Optional[Mapping] = None, dtype=None) -> StateSpace:
-        """The exact discrete :class:`StateSpace` at ``times`` (T,), increasing."""
-        return self.continuous_model(theta, dtype).at_times(times if dtype is None else jnp.asarray(times, dtype))
+    def state_space(self, times, theta: Optional[Mapping] = None, dtype=None, inputs=None) -> StateSpace:
+        """The exact discrete :class:`StateSpace` at ``times`` (T,), increasing (``inputs``: see
+        :meth:`continuous_model`)."""
+        return self.continuous_model(theta, dtype, inputs).at_times(
+            times if dtype is None else jnp.asarray(times, dtype))
 
     def with_unconstrained(self, theta: Mapping) -> "ModelSpec":
-        """A copy with the parameters named in ``theta`` set to exp(theta)."""
+        """A copy with the parameters named in ``theta`` set to exp(theta) (theta itself for a
+        regression coefficient)."""
         params = dict(self.params)
         noise = self.noise
         for k, v in theta.items():
-            val = np.exp(np.asarray(v, dtype=np.float64))
+            val = np.asarray(v, dtype=np.float64)
+            val = np.exp(val) if self.is_positive(k) else val
             if k == "noise":
                 noise = tuple(float(x) for x in val)
             else:
@@ -191,28 +258,32 @@ class ModelSpec:
         return self.replace(params=params, noise=noise)
 
 
+def _check_composed(spec: ModelSpec) -> None:
+    if spec.dims != 1:
+        raise ValueError(f"a composed model has dims = 1; got {spec.dims!r}.")
+    check_columns(spec.time_column, spec.columns)
+    composed.check_parts(spec.components, spec.columns, spec.time_column)
+    want = tuple(composed.reads_text(spec.components, c) for c in spec.columns)
+    if tuple(spec.measured) != want:
+        raise ValueError(f"measured must say what each column reads ({', '.join(want)}); got {list(spec.measured)}.")
+    shapes = {k: s for k, s in spec.composition().parameter_shapes.items() if k != NOISE}
+    if set(spec.params) != set(shapes):
+        raise ValueError(f"the components take parameters {sorted(shapes)}; got {sorted(spec.params)}.")
+    for k, shape in shapes.items():
+        if spec.is_positive(k):
+            _check_positive(k, spec.params[k], shape)
+        else:
+            _check_finite(k, spec.params[k], shape)
+
+
 def check_spec(spec: ModelSpec) -> None:
     """Raise ValueError naming the first inconsistency in a :class:`ModelSpec`."""
-    if spec.kind not in KINDS:
-        raise ValueError(f"unknown model kind {spec.kind!r}; choose one of {', '.join(KINDS)}.")
-    kind = KINDS[spec.kind]
-    if not isinstance(spec.dims, int) or isinstance(spec.dims, bool) or spec.dims < 1:
-        raise ValueError(f"dims must be a positive integer; got {spec.dims!r}.")
-    if kind.fixed_dims is not None and spec.dims != kind.fixed_dims:
-        raise ValueError(f"model kind {spec.kind!r} has dims = {kind.fixed_dims}; got {spec.dims}.")
-    check_columns(spec.time_column, spec.columns)
-    if len(spec.measured) != len(spec.columns):
-        raise ValueError(f"measured needs one state name per column ({len(spec.columns)}); got {len(spec.measured)}.")
-    names = kind.state_names(spec.dims)
-    for col, s in zip(spec.columns, spec.measured):
-        if s not in names:
-            raise ValueError(f"column {col!r} is said to measure state {s!r}, but model kind {spec.kind!r} "
-                             f"with dims={spec.dims} has states {', '.join(names)}.")
-    if set(spec.params) != set(kind.params):
-        raise ValueError(f"model kind {spec.kind!r} takes parameters {sorted(kind.params)}; "
-                         f"got {sorted(spec.params)}.")
-    for k in kind.params:
-        _check_positive(k, spec.params[k], param_shape(kind, k, spec.dims))
+    if spec.kind == COMPOSED:
+        _check_composed(spec)
+    elif spec.kind not in KINDS:
+        raise ValueError(f"unknown model kind {spec.kind!r}; choose one of {', '.join(KINDS)} (or {COMPOSED}).")
+    else:
+        _check_kind(spec)
     _check_positive("noise", spec.noise, (len(spec.columns),))
     if not isinstance(spec.time_format, str) or spec.time_format not in ("number", "iso8601"):
         raise ValueError(f"time_format must be 'number' or 'iso8601'; got {spec.time_format!r}.")
@@ -234,6 +305,29 @@ def check_spec(spec: ModelSpec) -> None:
         raise ValueError(f"jitter must be a finite number >= 0; got {spec.jitter!r}.")
 
 
+def _check_kind(spec: ModelSpec) -> None:
+    kind = KINDS[spec.kind]
+    if spec.components:
+        raise ValueError(f"model kind {spec.kind!r} has no components (they belong to kind {COMPOSED!r}).")
+    if not isinstance(spec.dims, int) or isinstance(spec.dims, bool) or spec.dims < 1:
+        raise ValueError(f"dims must be a positive integer; got {spec.dims!r}.")
+    if kind.fixed_dims is not None and spec.dims != kind.fixed_dims:
+        raise ValueError(f"model kind {spec.kind!r} has dims = {kind.fixed_dims}; got {spec.dims}.")
+    check_columns(spec.time_column, spec.columns)
+    if len(spec.measured) != len(spec.columns):
+        raise ValueError(f"measured needs one state name per column ({len(spec.columns)}); got {len(spec.measured)}.")
+    names = kind.state_names(spec.dims)
+    for col, s in zip(spec.columns, spec.measured):
+        if s not in names:
+            raise ValueError(f"column {col!r} is said to measure state {s!r}, but model kind {spec.kind!r} "
+                             f"with dims={spec.dims} has states {', '.join(names)}.")
+    if set(spec.params) != set(kind.params):
+        raise ValueError(f"model kind {spec.kind!r} takes parameters {sorted(kind.params)}; "
+                         f"got {sorted(spec.params)}.")
+    for k in kind.params:
+        _check_positive(k, spec.params[k], param_shape(kind, k, spec.dims))
+
+
 def check_columns(time_column: str, columns) -> None:
     """Raise ValueError unless the measurement columns are distinct, at least one, and not the time column."""
     if len(columns) < 1:
@@ -244,7 +338,7 @@ def check_columns(time_column: str, columns) -> None:
         raise ValueError(f"the time column {time_column!r} cannot also be a measurement column.")
 
 
-def _check_positive(name, value, shape) -> None:
+def _check_finite(name, value, shape) -> np.ndarray:
     try:
         arr = np.asarray(value, dtype=np.float64)
     except (TypeError, ValueError):
@@ -252,5 +346,11 @@ def _check_positive(name, value, shape) -> None:
     if arr.shape != shape:
         want = "a single number" if shape == () else f"a list of {shape[0]} numbers"
         raise ValueError(f"parameter {name!r} must be {want}; got {value!r}.")
-    if not np.all(np.isfinite(arr)) or np.any(arr <= 0):
+    if not np.all(np.isfinite(arr)):
+        raise ValueError(f"parameter {name!r} must be finite; got {value!r}.")
+    return arr
+
+
+def _check_positive(name, value, shape) -> None:
+    if np.any(_check_finite(name, value, shape) <= 0):
         raise ValueError(f"parameter {name!r} must be finite and > 0; got {value!r}.")
