@@ -38,6 +38,12 @@ The components (ω = 2π/period throughout):
   noise growing linearly with Δ. With q = 0 the pattern is a fixed sum of
   sinusoids (then give a ``jitter``: Q would be singular). The amplitude of
   harmonic j at time τ is √(γ_j² + γ*_j²).
+  With ``order=2`` each harmonic also has a rate pair (δ_j, δ*_j) turning
+  with it, F_j = [[Ω_j, I], [0, Ω_j]] (Ω_j the skew block above),
+  G_j = diag(q I₂, q_rate I₂): A_j = [[R, Δ R], [0, R]] with R = R(ω_j Δ)
+  and Q_j = [[q Δ + q_rate Δ³/3, q_rate Δ²/2], [q_rate Δ²/2, q_rate Δ]] ⊗ I₂.
+  In the turning frame the coefficients are then a local linear trend
+  rather than a random walk: a pattern that changes smoothly.
 - **cycle** (damped, stochastic): the seasonal rotation with a damping rate
   ρ > 0, F = [[−ρ, ω], [−ω, −ρ]], G = q I₂. F = −ρ I + (skew part) and the
   two commute, so exp(F s) = e^{−ρs} R(ω s) and
@@ -247,7 +253,8 @@ def trend_component(name: str = "trend", *, q_level=1.0, q_slope=0.01) -> Compon
                      positive=frozenset({"q_level", "q_slope"}), output=np.array([1.0, 0.0]), dynamics=dynamics)
 
 
-def seasonal_component(name: str, period: float, harmonics: int = 1, *, q=0.01) -> Component:
+def seasonal_component(name: str, period: float, harmonics: int = 1, *, q=0.01, order: int = 1,
+                       q_rate=1e-6) -> Component:
     r"""A seasonal pattern of fixed ``period`` in trigonometric form, on any timestamps.
 
     Harmonic j = 1..K (K = ``harmonics``) is a pair of states (γ_j, γ*_j)
@@ -262,40 +269,86 @@ def seasonal_component(name: str, period: float, harmonics: int = 1, *, q=0.01) 
     the shape of the model); the one parameter is ``NAME.q`` (positive), the
     same for every harmonic.
 
+    ``order=2`` makes the pattern change smoothly. Seen from a frame turning
+    with the harmonic, the pair's coefficients a_j = R(−ω_j t)[γ_j, γ*_j]ᵀ
+    are then a random walk (q) plus an integrated random walk (``q_rate``),
+    like a local linear trend, instead of a random walk alone: each harmonic
+    gets a second pair of states, its rate (δ_j, δ*_j), turning with it,
+
+        d[γ; δ] = [[Ω_j, I₂], [0, Ω_j]] [γ; δ] dt + dβ,   E[dβ dβᵀ] = diag(q I₂, q_rate I₂) dt,
+
+    with Ω_j = [[0, ω_j], [−ω_j, 0]]. Ω_j commutes with I₂, so over a step Δ
+
+        A_j = [[R(ω_jΔ), Δ R(ω_jΔ)], [0, R(ω_jΔ)]],
+        Q_j = [[q Δ + q_rate Δ³/3, q_rate Δ²/2], [q_rate Δ²/2, q_rate Δ]] ⊗ I₂
+
+    (the rotations cancel in e^{F s} G e^{F s}ᵀ because R Rᵀ = I). A random
+    walk's uncertainty across a gap grows like Δ, the integrated one's like
+    Δ³ with a much smaller q_rate: a pattern that drifts slowly and smoothly
+    (a daily temperature curve through the year) is bridged across gaps
+    without the random walk's wide intervals. 4K states.
+
     Args:
         name: the component's name.
         period: the period, in the units of the timestamps (24.0 for a daily
             pattern on hours).
         harmonics: K ≥ 1; the pattern's detail (K harmonics resolve features
-            down to about period/(2K)). 2K states.
-        q: starting value of the diffusion.
+            down to about period/(2K)). 2K states (4K with ``order=2``).
+            Sampled N times per period, harmonic N/2 is seen only through
+            its cosine (its sine state is never identified): keep K < N/2.
+        q: starting value of the diffusion of the pattern.
+        order: 1 (the coefficients are a random walk) or 2 (plus an
+            integrated random walk: a smoothly changing pattern).
+        q_rate: for ``order=2``, starting value of the diffusion of the rates
+            (parameter ``NAME.q_rate``, positive).
 
-    States ``c1, s1, c2, s2, ...`` (γ_1, γ*_1, ...). With a flat prior the
-    2K states need observations at 2K or more distinct phases (module
-    docstring, "Flat prior").
+    States ``c1, s1, c2, s2, ...`` (γ_1, γ*_1, ...); with ``order=2``
+    ``c1, s1, c1_rate, s1_rate, c2, ...``. With a flat prior the states need
+    observations at enough distinct phases and times (module docstring,
+    "Flat prior").
 
     Example:
         >>> day = kx.seasonal_component("day", period=24.0, harmonics=2)
         >>> day.state_names, day.output
         (('c1', 's1', 'c2', 's2'), array([1., 0., 1., 0.]))
+        >>> smooth = kx.seasonal_component("day", period=24.0, harmonics=1, order=2)
+        >>> smooth.state_names, sorted(smooth.parameter_shapes)
+        (('c1', 's1', 'c1_rate', 's1_rate'), ['q', 'q_rate'])
     """
     _check_name(name)
     period = _positive_static(period, "period")
     if isinstance(harmonics, bool) or not isinstance(harmonics, (int, np.integer)) or harmonics < 1:
         raise ValueError(f"harmonics must be a positive integer; got {harmonics!r}.")
-    K = int(harmonics)
-    F = np.zeros((2 * K, 2 * K))
+    if isinstance(order, bool) or order not in (1, 2):
+        raise ValueError(f"order must be 1 (random-walk pattern) or 2 (smoothly changing pattern); got {order!r}.")
+    K, order = int(harmonics), int(order)
+    m = 2 * order  # states per harmonic
+    F = np.zeros((m * K, m * K))
     for j in range(1, K + 1):
         w = 2.0 * np.pi * j / period
-        F[2 * j - 2, 2 * j - 1] = w
-        F[2 * j - 1, 2 * j - 2] = -w
+        b = m * (j - 1)
+        for k in range(0, m, 2):  # the pattern pair, and for order 2 the rate pair, both turn at ω_j
+            F[b + k, b + k + 1] = w
+            F[b + k + 1, b + k] = -w
+        if order == 2:
+            F[b:b + 2, b + 2:b + 4] = np.eye(2)
 
-    def dynamics(p, dtype):
-        return F.astype(dtype), _scalar(p, "q", dtype) * jnp.eye(2 * K, dtype=dtype)
+    if order == 1:
+        def dynamics(p, dtype):
+            return F.astype(dtype), _scalar(p, "q", dtype) * jnp.eye(2 * K, dtype=dtype)
 
-    names = tuple(s for j in range(1, K + 1) for s in (f"c{j}", f"s{j}"))
-    return Component(name=name, kind="seasonal", state_names=names, parameter_shapes={"q": ()},
-                     initial={"q": q}, positive=frozenset({"q"}), output=np.tile([1.0, 0.0], K), dynamics=dynamics)
+        names = tuple(s for j in range(1, K + 1) for s in (f"c{j}", f"s{j}"))
+        shapes, initial = {"q": ()}, {"q": q}
+    else:
+        def dynamics(p, dtype):
+            qq, qr = _scalar(p, "q", dtype), _scalar(p, "q_rate", dtype)
+            return F.astype(dtype), jnp.diag(jnp.tile(jnp.stack([qq, qq, qr, qr]), K))
+
+        names = tuple(s for j in range(1, K + 1) for s in (f"c{j}", f"s{j}", f"c{j}_rate", f"s{j}_rate"))
+        shapes, initial = {"q": (), "q_rate": ()}, {"q": q, "q_rate": q_rate}
+    output = np.tile(np.eye(m)[0], K)
+    return Component(name=name, kind="seasonal", state_names=names, parameter_shapes=shapes,
+                     initial=initial, positive=frozenset(shapes), output=output, dynamics=dynamics)
 
 
 def _omega(p, dtype):
