@@ -83,6 +83,10 @@ def _parquet_cells(column, pa) -> list:
                 return [Unreadable(str(typ), "a timestamp outside the years 1 to 9999")] * len(column)
             out.append(Instant(ns, typ.unit, typ.tz or None))
         return out
+    if pa.types.is_duration(typ):
+        # Refused by type, not by what to_pylist returns: that is a timedelta
+        # or, when pandas is installed, a pandas Timedelta.
+        return [Unreadable(str(typ), "a duration (a length of time), neither a time stamp nor a number")] * len(column)
     try:
         return column.to_pylist()
     except (ValueError, TypeError, OverflowError, NotImplementedError, pa.ArrowException) as e:
