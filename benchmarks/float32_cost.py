@@ -1,10 +1,11 @@
 """Cost of a float32 solve: forward and value+grad at T = 10⁵, n = p = 10 (compiled kernel).
 
-Usage: ``python benchmarks/float32_cost.py [--T 100000] [--repeats 7] [--x64]``
+Usage: ``python benchmarks/float32_cost.py [--T 100000] [--repeats 7] [--x64] [--methods cpu,scan,covariance]``
 
 The workload is the invented coupled-oscillator system of ``run.py`` cast to
 float32. Prints the medians (seconds) of repeated calls after a warm-up, for
-``method="cpu"`` (and, with ``--scan``, the pure-JAX ``"scan"`` path). JAX's
+each ``--methods`` entry (default ``"cpu"``; ``"scan"`` is the pure-JAX path,
+``"covariance"`` the covariance-form filter). JAX's
 x64 switch is off unless ``--x64`` is given (float32 users usually leave it
 off; the kernel's arithmetic does not depend on it).
 """
@@ -28,7 +29,7 @@ def main(argv=None):
     ap.add_argument("--n", type=int, default=10)
     ap.add_argument("--repeats", type=int, default=7)
     ap.add_argument("--x64", action="store_true")
-    ap.add_argument("--scan", action="store_true")
+    ap.add_argument("--methods", default="cpu", help="comma-separated backends, e.g. cpu,scan,covariance")
     ap.add_argument("--float64", action="store_true", help="the same in float64 (needs --x64), for comparison")
     args = ap.parse_args(argv)
 
@@ -47,7 +48,7 @@ def main(argv=None):
     w = jnp.asarray(mask, dt)
     params = tuple(f32[k] for k in ("A", "C", "Q", "R"))
     out = {"T": args.T, "n": args.n, "p": args.n, "x64": bool(args.x64), "dtype": str(np.dtype(dt))}
-    for method in ["cpu"] + (["scan"] if args.scan else []):
+    for method in [m for m in args.methods.split(",") if m]:
 
         def states(params):
             A, C, Q, R = params
