@@ -9,7 +9,10 @@ import kalmax as kx
 
 
 def _ok(T=5, n=2, p=3):
-    model = kx.StateSpace(A=jnp.eye(n), C=jnp.ones((p, n)), Q=jnp.eye(n), R=jnp.eye(p))
+    # C of full column rank: with a flat prior, C = ones would leave the direction
+    # (1, -1) unobserved (H singular), which validate rightly reports.
+    C = jnp.ones((p, n)).at[jnp.arange(n), jnp.arange(n)].set(2.0)
+    model = kx.StateSpace(A=jnp.eye(n), C=C, Q=jnp.eye(n), R=jnp.eye(p))
     return model, jnp.zeros((T, p)), jnp.ones((T, p), bool)
 
 
