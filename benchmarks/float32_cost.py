@@ -38,35 +38,18 @@ def main(argv=None):
     jax.config.update("jax_enable_x64", bool(args.x64))
     import jax.numpy as jnp
 
-    import kalmax as kx
-    from run import make_problem, time_it
+    from run import build, make_problem, time_it
 
     md, y, mask = make_problem(args.n, args.n, args.T, 0)
     dt = jnp.float64 if args.float64 else jnp.float32
     f32 = {k: jnp.asarray(v, dt) for k, v in md.items()}
     y32 = jnp.asarray(y, dt)
-    w = jnp.asarray(mask, dt)
-    params = tuple(f32[k] for k in ("A", "C", "Q", "R"))
     out = {"T": args.T, "n": args.n, "p": args.n, "x64": bool(args.x64), "dtype": str(np.dtype(dt))}
     for method in [m for m in args.methods.split(",") if m]:
-
-        def states(params):
-            A, C, Q, R = params
-            m = kx.StateSpace(A=A, C=C, Q=Q, R=R, b=f32["b"], d=f32["d"], x0_mean=f32["m0"], x0_cov=f32["P0"])
-            return kx.smooth(m, y32, method=method).states
-
-        def loss(params):
-            x = states(params)
-            pred = x @ params[1].T + f32["d"]
-            err = jnp.where(w > 0, jnp.nan_to_num(y32) - pred, 0.0)
-            return jnp.sum(err**2) / jnp.sum(w)
-
-        fwd = jax.jit(states).lower(params).compile()
-        vg = jax.jit(jax.value_and_grad(loss)).lower(params).compile()
-        x = fwd(params)
-        ok = bool(np.all(np.isfinite(np.asarray(x))))
-        tf, times_f, _ = time_it(lambda: jax.block_until_ready(fwd(params)), args.repeats, 60)
-        tv, times_v, _ = time_it(lambda: jax.block_until_ready(vg(params)), args.repeats, 60)
+        fwd, vg = build(method, f32, y32, mask, 0)
+        ok = bool(np.all(np.isfinite(np.asarray(fwd()))))
+        tf, times_f, _ = time_it(fwd, args.repeats, 60)
+        tv, times_v, _ = time_it(vg, args.repeats, 60)
         out[method] = {"forward_median_s": tf, "value_and_grad_median_s": tv, "finite": ok,
                        "forward_all": times_f, "value_and_grad_all": times_v}
     out["load_average"] = os.getloadavg()

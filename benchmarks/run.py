@@ -125,7 +125,9 @@ def make_problem(n, p, T, batch, seed=0, missing=0.2):
 
 
 def build(method, model, y, mask, batch):
-    """(forward(), value_and_grad()) zero-argument callables returning host-ready results."""
+    """(forward(), value_and_grad()) zero-argument callables returning host-ready results.
+
+    The arrays keep their dtype (float32 model and data give a float32 problem)."""
     if method == "splu":
         return _build_splu(model, y, mask, batch)
     import jax
@@ -135,12 +137,15 @@ def build(method, model, y, mask, batch):
     from baselines import scan_smoother
 
     yj = jnp.asarray(y)
-    wj = jnp.asarray(mask, jnp.float64)
+    wj = jnp.asarray(mask, yj.dtype)
     fixed = {k: jnp.asarray(model[k]) for k in ("b", "d", "m0", "P0")}
     params = tuple(jnp.asarray(model[k]) for k in ("A", "C", "Q", "R"))
 
-    if method in ("kernel", "jax"):
-        kmethod = "cpu" if method == "kernel" else "scan"
+    # "kernel" and "jax" are this table's names for kalmax's "cpu" and "scan";
+    # any other kalmax backend may be named directly ("scan_kf" is the plain
+    # JAX baseline of baselines.py).
+    kmethod = {"kernel": "cpu", "jax": "scan"}.get(method, method)
+    if method != "scan_kf":
 
         def states_one(params, y1):
             A, C, Q, R = params
