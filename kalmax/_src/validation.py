@@ -14,7 +14,8 @@ from .normal_equations import assemble
 from .primitive import get_backend, resolve_method, smoothed_means
 
 
-def _cov_problems(name: str, S, rtol: float) -> list:
+def _cov_problems(name: str, S, rtol: float, singular_ok: bool = False) -> list:
+    """Symmetry and definiteness of a covariance; with ``singular_ok``, positive semidefinite suffices."""
     S = np.asarray(S, dtype=np.float64)
     if S.size == 0:  # p = 0: an empty R has nothing to check
         return []
@@ -29,13 +30,26 @@ def _cov_problems(name: str, S, rtol: float) -> list:
         where = "" if S.ndim == 2 else f" at time index {int(bad[0])} (and {bad.size - 1} more)"
         problems.append(f"model.{name} is not symmetric{where}: max |S - Sᵀ| = {asym[bad[0]]:.3g}.")
     sym = 0.5 * (mats + np.swapaxes(mats, -1, -2))
-    min_eig = np.linalg.eigvalsh(sym)[:, 0]
-    bad = np.nonzero(min_eig <= 0)[0]
-    if bad.size:
-        where = "" if S.ndim == 2 else f" at time index {int(bad[0])} (and {bad.size - 1} more)"
+    eig = np.linalg.eigvalsh(sym)
+    min_eig = eig[:, 0]
+    # An exactly singular covariance (zero rows and columns, a rank-one Q) has
+    # eigenvalues of rounding size, of either sign: 10·n·eps relative to the largest.
+    zero = 10 * sym.shape[-1] * np.finfo(np.float64).eps * np.maximum(np.abs(eig).max(axis=-1), np.finfo(np.float64).tiny)
+    indefinite = np.nonzero(min_eig < -zero)[0]
+    singular = np.nonzero(min_eig <= zero)[0]
+    if singular_ok and indefinite.size:
+        where = "" if S.ndim == 2 else f" at time index {int(indefinite[0])} (and {indefinite.size - 1} more)"
         problems.append(
-            f"model.{name} is not positive definite{where}: smallest eigenvalue {min_eig[bad[0]]:.3g}."
+            f"model.{name} is not positive semidefinite{where}: smallest eigenvalue {min_eig[indefinite[0]]:.3g}."
         )
+    elif not singular_ok and singular.size:
+        where = "" if S.ndim == 2 else f" at time index {int(singular[0])} (and {singular.size - 1} more)"
+        text = f"model.{name} is not positive definite{where}: smallest eigenvalue {min_eig[singular[0]]:.3g}."
+        if name in ("Q", "x0_cov") and not indefinite.size:
+            text += (" It is singular but positive semidefinite (deterministic directions), which the normal "
+                     "equations cannot take (they hold its inverse); method='covariance' takes it exactly "
+                     "(with a prior, model.x0_mean/x0_cov).")
+        problems.append(text)
     return problems
 
 
@@ -146,7 +160,9 @@ def validate(model: StateSpace, y, mask=None, *, rtol: float = 1e-6,
     - non-finite observed measurements (NaN/inf where ``mask`` is True),
     - non-finite A, C, b, d or prior mean,
     - Q, R or x0_cov not symmetric (relative tolerance ``rtol``) or not
-      positive definite,
+      positive definite (for ``method="covariance"``, Q and x0_cov need only
+      be positive semidefinite: that backend takes singular ones exactly; for
+      the others a singular Q or x0_cov is reported with that advice),
     - a flat prior with no observed entry at all (states not identified),
     - what ``smooth`` itself will do: the check runs the solve (``method``,
       the input dtype) and, when it returns NaN, says why — the states are
@@ -205,10 +221,12 @@ def validate(model: StateSpace, y, mask=None, *, rtol: float = 1e-6,
         x = getattr(model, name)
         if x is not None and not np.all(np.isfinite(np.asarray(x))):
             problems.append(f"model.{name} has non-finite entries.")
+    # The covariance-form filter never inverts Q or the prior covariance: singular ones are fine there.
+    singular_ok = not get_backend(resolve_method(method)).refined
     for name in ("Q", "R", "x0_cov"):
         x = getattr(model, name)
         if x is not None:
-            problems.extend(_cov_problems(name, x, rtol))
+            problems.extend(_cov_problems(name, x, rtol, singular_ok=singular_ok and name != "R"))
     if model.x0_cov is None and not mask.any():
         problems.append(
             "nothing is observed and the first state has a flat prior: the states are not identified "

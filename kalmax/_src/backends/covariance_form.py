@@ -11,9 +11,12 @@ per-step noise to the measurement noise, not in units). Such models are
 ordinary in tracking, and a textbook covariance-form filter handles them even
 in float32, because it never forms Q⁻¹: it propagates the covariances
 P_t⁻ = A P A ᵀ + Q, which stay well scaled. This backend is that filter,
-followed by the Rauch–Tung–Striebel pass, in plain JAX. It needs a proper
+followed by the Rauch–Tung–Striebel smoother (in adjoint form, below), in plain JAX. It needs a proper
 prior on x_0 (``x0_cov``); with a flat prior it returns NaN (use the normal
-equations there: a flat prior is their strength).
+equations there: a flat prior is their strength). Because it never forms Q⁻¹
+or P_0⁻¹ it is also the backend for singular (positive-semidefinite) process noise and prior
+covariance, which it takes exactly (see "Smoother"): the normal equations
+hold Q⁻¹ and P_0⁻¹ and return NaN there.
 
 Recursions (Kalman 1960; Rauch, Tung & Striebel 1965; e.g. Särkkä (2013),
 Bayesian Filtering and Smoothing, Algs 4.3 and 8.2). The mask enters as in
@@ -26,9 +29,28 @@ nothing, and the observed block of R̃ is R_oo (the marginal of full R).
              (m⁻_0 = m_0, P⁻_0 = P_0)
     update   S_t = C̃ P⁻_t C̃ᵀ + R̃,  K_t = P⁻_t C̃ᵀ S_t⁻¹,  v_t = ẽ_t − C̃ m⁻_t
              m_t = m⁻_t + K_t v_t,  P_t = (I − K_tC̃) P⁻_t (I − K_tC̃)ᵀ + K_t R̃ K_tᵀ  (Joseph form)
-    smooth   G_t = P_t A_tᵀ (P⁻_{t+1})⁻¹
-             x_t = m_t + G_t (x_{t+1} − m⁻_{t+1}),  Σ_t = P_t + G_t (Σ_{t+1} − P⁻_{t+1}) G_tᵀ
-             Σ_{t+1,t} = Σ_{t+1} G_tᵀ
+
+Smoother. The Rauch–Tung–Striebel pass, G_t = P_t A_tᵀ (P⁻_{t+1})⁻¹,
+x_t = m_t + G_t (x_{t+1} − m⁻_{t+1}), inverts the predicted covariance, which
+is singular when the process noise is (deterministic components: a fixed
+seasonal pattern, a constant offset, an integrator with noise on its rate
+only) together with a singular prior covariance. We run the same smoother in
+adjoint form instead (the modified Bryson–Frazier recursion; Bierman (1977),
+Factorization Methods for Discrete Sequential Estimation — reference
+from memory), which inverts only S_t. Let λ̂_t, Λ̂_t be the gradient and
+Hessian of −log p(y_{t+1:T−1} | x_t) at x_t = m_t (λ̂_{T−1} = 0, Λ̂_{T−1} = 0):
+
+    λ̃_t = −C̃ᵀ S_t⁻¹ v_t + (I − K_tC̃)ᵀ λ̂_t        Λ̃_t = C̃ᵀ S_t⁻¹ C̃ + (I − K_tC̃)ᵀ Λ̂_t (I − K_tC̃)
+    λ̂_{t−1} = A_{t−1}ᵀ λ̃_t                        Λ̂_{t−1} = A_{t−1}ᵀ Λ̃_t A_{t−1}
+    x_t = m_t − P_t λ̂_t                           Σ_t = P_t − P_t Λ̂_t P_t
+    Σ_{t+1,t} = (I − P_{t+1} Λ̂_{t+1}) (I − K_{t+1}C̃) A_t P_t
+
+Where P⁻_{t+1} is invertible these equal the RTS formulas: substitute
+Σ_{t+1} = P⁻ − P⁻Λ̃_{t+1}P⁻ into Σ_{t+1}G_tᵀ, and (I − KC̃)P⁻ = P (filtered) to
+move from the predicted to the filtered form; both sides are continuous in
+Q and P_0, so the recursion stays exact as they become singular. The form
+with the filtered P_t (not P⁻_t − P⁻_tΛ̃_tP⁻_t) keeps the subtraction to the
+information that later steps add.
 
 The smoothed means are the solution of H x = g (the joint density's mode), the
 Σ's are the band of H⁻¹, and
@@ -44,11 +66,13 @@ decomposition |R̃ + M Σ_p Mᵀ| = Π_t |S_t|, so
 
 Solving H u = v with the stored gains (``adjoint``). H does not depend on the
 data, offsets or prior mean; the smoother of the problem with data 0 and
-offsets (m_0', b_t') returns H⁻¹g' with g'_0 = P_0⁻¹m_0' − A_0ᵀQ_0⁻¹b_0',
+offsets (m_0', b_t') returns H⁻¹g' (for singular Q, the posterior covariance
+times v, the limit of H⁻¹v) with g'_0 = P_0⁻¹m_0' − A_0ᵀQ_0⁻¹b_0',
 g'_t = Q_{t−1}⁻¹b'_{t−1} − A_tᵀQ_t⁻¹b_t', g'_{T−1} = Q_{T−2}⁻¹b'_{T−2}.
 Choosing s_{T−1} = v_{T−1}, s_t = v_t + A_tᵀ s_{t+1}, b'_{t−1} = Q_{t−1} s_t and
 m_0' = P_0 (v_0 + A_0ᵀ s_1) makes g' = v, again without Q⁻¹; the mean
-recursions then reuse the stored gains K_t and G_t (O(T n²)). The sums s_t
+recursions then reuse the stored gains K_t, the factors of S_t and the
+filtered P_t (O(T n²)). The sums s_t
 grow like the powers of Aᵀ, so this route is for stable or neutral dynamics;
 the gradients below do not use it.
 
@@ -133,7 +157,8 @@ class CovarianceFactor(NamedTuple):
     P0: jax.Array           # (n, n)
     Ct: jax.Array           # (T, p, n) C̃_t
     Kt: jax.Array           # (T, p, n) Kalman gains, transposed
-    G: jax.Array            # (T-1, n, n) smoother gains
+    Ls: jax.Array           # (T, p, p) Cholesky factors of S_t
+    P: jax.Array            # (T, n, n) filtered covariances P_t
     cov: jax.Array          # (T, n, n) Σ_t
     cross: jax.Array        # (T-1, n, n) Σ_{t+1,t}
     log_det: jax.Array      # () log|H|
@@ -155,27 +180,36 @@ def sweep(model: StateSpace, y, w):
         m, P, m_pred, P_pred, Kt, Ls, v = predict_update(*carry, *xs)
         z = lsolve_vec(Ls, v)  # whitened innovation: vᵀS⁻¹v = ‖z‖²
         half_logdet_S = jnp.sum(jnp.log(jnp.diagonal(Ls)))
-        return (m, P), (m, P, m_pred, P_pred, Kt, half_logdet_S, jnp.sum(z * z))
+        return (m, P), (m, P, m_pred, P_pred, Kt, Ls, v, half_logdet_S, jnp.sum(z * z))
 
-    _, (m, P, m_pred, P_pred, Kt, half_ld_S, quad) = lax.scan(forward_step, (m0, P0), (A, b, Q, Ct, Rt, ey))
+    _, (m, P, m_pred, P_pred, Kt, Ls, v, half_ld_S, quad) = lax.scan(forward_step, (m0, P0), (A, b, Q, Ct, Rt, ey))
+
+    # Backward pass in adjoint form (module docstring, "Smoother"): it needs
+    # S_t⁻¹ only, never (P⁻_{t+1})⁻¹, so a singular prediction (singular Q
+    # together with a singular prior) is no obstacle.
+    IKC = jnp.eye(n, dtype=dtype)[None] - mT(Kt) @ Ct          # (T, n, n) I − K_t C̃_t
+    u = lsolve(Ls, lsolve(Ls, Ct), transpose=True)              # S_t⁻¹ C̃_t  (T, p, n)
+    info_here = mT(Ct) @ u                                      # C̃ᵀ S⁻¹ C̃
+    score_here = -jnp.einsum("tpn,tp->tn", u, v)                # −C̃ᵀ S⁻¹ v
 
     def backward_step(carry, xs):
-        x_next, S_next = carry
-        m_t, P_t, A_t, m_pred_next, P_pred_next = xs
-        Lp = chol(P_pred_next)
-        G = mT(lsolve(Lp, lsolve(Lp, A_t @ P_t), transpose=True))  # G = P Aᵀ (P⁻)⁻¹
-        x_t = m_t + G @ (x_next - m_pred_next)
-        S_t = sym(P_t + G @ (S_next - P_pred_next) @ mT(G))
-        return (x_t, S_t), (x_t, S_t, S_next @ mT(G), G)
+        lam_hat, Lam_hat = carry            # from steps after t, at x_t
+        m_t, P_t, IKC_t, info_t, score_t, A_t = xs   # A_t: transition into step t (out of t − 1)
+        x_t = m_t - P_t @ lam_hat
+        S_t = sym(P_t - P_t @ Lam_hat @ P_t)
+        lam_tilde = score_t + mT(IKC_t) @ lam_hat     # at x_t, before its own update
+        Lam_tilde = sym(info_t + mT(IKC_t) @ Lam_hat @ IKC_t)
+        # (I − P_t Λ̂_t)(I − K_t C̃_t) is the map that the cross-covariance needs.
+        left = (jnp.eye(n, dtype=dtype) - P_t @ Lam_hat) @ IKC_t
+        return (mT(A_t) @ lam_tilde, sym(mT(A_t) @ Lam_tilde @ A_t)), (x_t, S_t, left)
 
+    zero_n = jnp.zeros((n,), dtype)
+    _, (x, cov, left) = lax.scan(backward_step, (zero_n, jnp.zeros((n, n), dtype)),
+                                 (m, P, IKC, info_here, score_here, A), reverse=True)
     if T > 1:
-        _, (xs, Ss, cross, G) = lax.scan(
-            backward_step, (m[-1], P[-1]), (m[:-1], P[:-1], A[1:], m_pred[1:], P_pred[1:]), reverse=True)
-        x = jnp.concatenate([xs, m[-1:]], axis=0)
-        cov = jnp.concatenate([Ss, P[-1:]], axis=0)
+        cross = left[1:] @ A[1:] @ P[:-1]   # Σ_{t+1,t} = (I − P_{t+1}Λ̂_{t+1})(I − K C̃)_{t+1} A P_t
     else:
-        x, cov = m, P
-        cross = G = jnp.zeros((0, n, n), dtype)
+        cross = jnp.zeros((0, n, n), dtype)
 
     def logdet_spd(S):
         return 2.0 * jnp.sum(jnp.log(jnp.diagonal(chol(S), axis1=-2, axis2=-1)), axis=-1)
@@ -186,7 +220,7 @@ def sweep(model: StateSpace, y, w):
     log_lik = -0.5 * jnp.sum(quad) - jnp.sum(half_ld_S) - 0.5 * math.log(2 * math.pi) * jnp.sum(w)
 
     ok = jnp.logical_not(flat) & jnp.all(jnp.isfinite(x)) & jnp.all(jnp.isfinite(cov)) & jnp.isfinite(log_lik)
-    factor = CovarianceFactor(ok=ok, A=A, Q=Q, P0=P0, Ct=Ct, Kt=Kt, G=G, cov=cov, cross=cross,
+    factor = CovarianceFactor(ok=ok, A=A, Q=Q, P0=P0, Ct=Ct, Kt=Kt, Ls=Ls, P=P, cov=cov, cross=cross,
                               log_det=log_det, log_lik=log_lik)
     x = jnp.where(ok, x, jnp.nan)
     return x, factor
@@ -216,20 +250,21 @@ def adjoint(factor: CovarianceFactor, v):
     def filter_step(m_prev, xs):
         A_t, b_t, Kt, Ct = xs
         m_pred = A_t @ m_prev + b_t
-        m = m_pred - mT(Kt) @ (Ct @ m_pred)
-        return m, (m, m_pred)
+        v = -(Ct @ m_pred)                 # innovation of data 0
+        return m_pred + mT(Kt) @ v, (m_pred + mT(Kt) @ v, v)
 
-    _, (m, m_pred) = lax.scan(filter_step, m0, (A, offsets, factor.Kt, factor.Ct))
-    if T == 1:
-        return jnp.where(factor.ok, m, jnp.nan)
+    _, (m, innov) = lax.scan(filter_step, m0, (A, offsets, factor.Kt, factor.Ct))
+    Ct, Ls = factor.Ct, factor.Ls
+    score = -jnp.einsum("tpn,tp->tn", Ct, lsolve_vec(Ls, lsolve_vec(Ls, innov), transpose=True))  # −C̃ᵀS⁻¹v
+    IKC = jnp.eye(n, dtype=v.dtype)[None] - mT(factor.Kt) @ Ct
 
-    def smooth_step(x_next, xs):
-        m_t, G, m_pred_next = xs
-        x_t = m_t + G @ (x_next - m_pred_next)
-        return x_t, x_t
+    def smooth_step(lam_hat, xs):
+        m_t, P_t, IKC_t, score_t, A_t = xs
+        x_t = m_t - P_t @ lam_hat
+        return mT(A_t) @ (score_t + mT(IKC_t) @ lam_hat), x_t
 
-    _, xs = lax.scan(smooth_step, m[-1], (m[:-1], factor.G, m_pred[1:]), reverse=True)
-    return jnp.where(factor.ok, jnp.concatenate([xs, m[-1:]], axis=0), jnp.nan)
+    _, x = lax.scan(smooth_step, jnp.zeros((n,), v.dtype), (m, factor.P, IKC, score, A), reverse=True)
+    return jnp.where(factor.ok, x, jnp.nan)
 
 
 def logdet(factor: CovarianceFactor):
