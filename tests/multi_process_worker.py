@@ -7,8 +7,9 @@ with a checkpoint file, and two test hooks:
 - ``--stall-at K``: when the fit reaches step K (a checkpoint at step K has
   then been written), print ``stalled`` and sleep, so that the test can kill
   the processes with SIGKILL in the middle of a fit;
-- ``--out FILE``: process 0 writes the fitted parameters, the loss history
-  and the step the run resumed from as JSON.
+- ``--out FILE``: process 0 writes the fitted parameters, the loss history,
+  the step the run resumed from, and whether slices that differ between the
+  processes were refused by ``kx.shard_batch``, as JSON.
 
 Usage: multi_process_worker.py PROCESS_ID COORDINATOR ARGS...
 """
@@ -61,6 +62,20 @@ def main():
     loss = kx.data_parallel(example.batch_loss, (y, mask, hold), mesh)
 
     tick("batch placed")
+
+    def refused(local, words):
+        try:
+            kx.shard_batch(local, mesh)
+        except ValueError as err:
+            return words in str(err)
+        return False
+
+    refusals = None
+    if a.out:  # slices that differ between the processes: each process must refuse, not hang
+        refusals = {
+            "count": refused(np.zeros((2 * (1 + a.process_id), 3)), "same number of trajectories"),
+            "layout": refused(np.zeros((2, 3 + a.process_id)), "differ in structure, dtype or trailing shape"),
+        }
     resumed_from = 0
     if os.path.exists(a.checkpoint):
         fresh = example.initial_params()
@@ -83,6 +98,7 @@ def main():
                 "loss": np.asarray(result.history["loss"]).tolist(),
                 "steps_run": result.steps_run,
                 "resumed_from": resumed_from,
+                "refusals": refusals,
                 "devices": len(jax.devices()),
                 "local_devices": len(jax.local_devices()),
                 "processes": jax.process_count(),

@@ -137,6 +137,8 @@ def test_two_processes_really_ran_and_were_killed_midway(runs):
     assert (r["local_valid"], r["local_padded"]) == (3, 4)
     assert runs["stalled"] and runs["checkpoint_after_kill"]
     assert runs["temporaries_left"] == []
+    # Slices of different sizes or layouts were refused by a message, not a hang.
+    assert r["refusals"] == {"count": True, "layout": True}
     # The second launch continued from the checkpoint, not from the start.
     assert r["resumed_from"] == STALL and r["steps_run"] == STEPS
 
