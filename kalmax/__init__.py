@@ -18,6 +18,9 @@ from ._src.sampling import sample_states as sample_states
 
 # Learning layer: held-out splits, parameterisations, proximal steps, fitting, EM.
 from ._src.em import em as em
+from ._src.checkpoint import FitState as FitState
+from ._src.checkpoint import load_fit_state as load_fit_state
+from ._src.checkpoint import save_fit_state as save_fit_state
 from ._src.fitting import FitResult as FitResult
 from ._src.fitting import FitStep as FitStep
 from ._src.fitting import fit as fit
@@ -67,9 +70,11 @@ from ._src.components import seasonal_component as seasonal_component
 from ._src.components import trend_component as trend_component
 
 # Scale: data-parallel helpers over a device mesh (the solver backends are in _src/backends).
+from ._src.sharding import DataParallelLoss as DataParallelLoss
 from ._src.sharding import batch_mesh as batch_mesh
 from ._src.sharding import data_parallel as data_parallel
 from ._src.sharding import pad_batch as pad_batch
+from ._src.sharding import pad_to_mesh as pad_to_mesh
 from ._src.sharding import replicate as replicate
 from ._src.sharding import shard_batch as shard_batch
 

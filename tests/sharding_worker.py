@@ -70,7 +70,7 @@ def main():
         kx.shard_batch(np.zeros((mesh.size + 1, 3)), mesh)
         out["indivisible_refused"] = mesh.size == 1
     except ValueError as err:
-        out["indivisible_refused"] = "pad_batch" in str(err)
+        out["indivisible_refused"] = "pad_to_mesh" in str(err)
 
     # 2. kx.fit with the data-parallel loss, compiled (jit=True) and not.
     loss_fn = kx.data_parallel(batch_loss, (y, mask, hold), mesh)

@@ -9,12 +9,31 @@ The loop is deliberately plain so that it is easy to copy and change::
         params = optax.apply_updates(params, updates)
 
 ``fit`` adds a ``jit``-compiled step, a history, optional early stopping on a
-validation function, a progress display and, on request, standard errors.
+validation function, a progress display, checkpoints to resume from and, on
+request, standard errors.
+
+**Several processes** (``jax.distributed``). Every process runs the same
+loop. The loss of :func:`kalmax.data_parallel` carries a batch spread over
+all processes' devices; the step receives that batch as an *argument* (JAX
+refuses to compile a function that closes over arrays of other processes), so
+its value and gradient are global sums that XLA reduces across processes and
+hands back fully replicated. Every process therefore reads the same loss,
+appends the same history and takes the same stopping decision, without any
+further communication; only process 0 shows progress and writes checkpoints.
+A ``callback`` must decide the same way on every process (a stop on one
+process alone would leave the others waiting in the next collective).
+
+**Determinism of a resumed run.** The state saved after k updates is
+exactly what the loop holds before evaluating step k (see
+:class:`kalmax.FitState`); the resumed run compiles the same step and feeds it
+the same numbers, so on one machine it repeats the uninterrupted run's
+arithmetic exactly.
 """
 
 from __future__ import annotations
 
 import math
+import os
 import sys
 import time
 from typing import Any, Callable, Dict, NamedTuple, Optional
@@ -24,6 +43,9 @@ import jax.numpy as jnp
 import numpy as np
 import optax
 from jax.flatten_util import ravel_pytree
+
+from .checkpoint import FitState, load_if_present, save_fit_state
+from .sharding import DataParallelLoss, replicate
 
 
 class FitResult(NamedTuple):
@@ -129,6 +151,8 @@ def fit(
     callback: Optional[Callable] = None,
     neg_log_lik_fn: Optional[Callable] = None,
     args: tuple = (),
+    checkpoint: Optional[str] = None,
+    checkpoint_every: int = 100,
 ) -> FitResult:
     r"""Minimise ``loss_fn(params)`` with an Optax optimiser.
 
@@ -163,7 +187,17 @@ def fit(
             way rather than closing over it: under ``jit`` closed-over arrays
             become constants of the compiled program, which XLA may spend
             seconds folding (and a new array means a new compilation), while
-            arguments are passed at run time.
+            arguments are passed at run time. A :class:`kalmax.DataParallelLoss`
+            (from :func:`kalmax.data_parallel`) as ``loss_fn`` or
+            ``validation_fn`` has its batch passed the same way.
+        checkpoint: optional file name (``.npz``). Every ``checkpoint_every``
+            updates the state (params, Optax state, step, history,
+            early-stopping counters; :class:`kalmax.FitState`) is written
+            there atomically by :func:`kalmax.save_fit_state`. When the file
+            already exists the fit *resumes* from it: ``params`` and
+            ``optimizer`` then only supply the structure, which must match
+            the file (else ValueError). Delete the file to start afresh.
+        checkpoint_every: updates between checkpoints (default 100).
 
     Returns:
         :class:`FitResult`. A non-finite loss stops the fit and returns the
@@ -189,40 +223,78 @@ def fit(
     if patience is not None and int(patience) < 1:
         raise ValueError(f"patience must be a positive integer or None; got {patience}.")
     steps = int(steps)
+    if checkpoint is not None and int(checkpoint_every) < 1:
+        raise ValueError(f"checkpoint_every must be a positive integer; got {checkpoint_every}.")
+    checkpoint = None if checkpoint is None else os.fspath(checkpoint)
     args = tuple(args)
     opt = optax.with_extra_args_support(optimizer)
-    value_and_grad = jax.value_and_grad(loss_fn)
+    # A data-parallel loss brings its (sharded) batch: it travels as the first
+    # of the data arguments, never as a constant closed over by the step.
+    loss_call, loss_data = _as_call(loss_fn)
+    val_call, val_data = _as_call(validation_fn)
+    value_and_grad = jax.value_and_grad(loss_call)
 
-    def step_fn(params, opt_state, *data):
-        loss, grads = value_and_grad(params, *data)
+    def step_fn(params, opt_state, loss_data, args):
+        loss, grads = value_and_grad(params, *loss_data, *args)
         updates, opt_state = opt.update(grads, opt_state, params, value=loss, grad=grads,
-                                        value_fn=lambda p: loss_fn(p, *data))
+                                        value_fn=lambda p: loss_call(p, *loss_data, *args))
         return optax.apply_updates(params, updates), opt_state, loss
 
-    loss_only = loss_fn
-    val_fn = validation_fn
+    def loss_only(params, loss_data, args):
+        return loss_call(params, *loss_data, *args)
+
+    def val_fn(params, val_data, args):
+        return val_call(params, *val_data, *args)
+
     if jit:
-        step_fn = jax.jit(step_fn)
-        loss_only = jax.jit(loss_fn)
-        val_fn = None if validation_fn is None else jax.jit(validation_fn)
+        step_fn, loss_only, val_fn = jax.jit(step_fn), jax.jit(loss_only), jax.jit(val_fn)
+    if validation_fn is None:
+        val_fn = None
 
     opt_state = opt.init(params)
     losses, vals = [], []
     best_value, best_step, best_params, since_best = math.inf, 0, params, 0
-    last_finite = params
-    bar = _Progress(steps, progress)
+    k = 0
+    empty_history = {"loss": []} if validation_fn is None else {"loss": [], "validation": []}
+    fresh = FitState(0, params, opt_state, params, params, empty_history)
+    resumed = load_if_present(checkpoint, fresh)
+    if resumed is not None:
+        if set(resumed.history) != set(fresh.history):
+            raise ValueError(
+                f"checkpoint {checkpoint} was written by a fit "
+                + ("with" if "validation" in resumed.history else "without")
+                + " validation_fn; this one is "
+                + ("with" if validation_fn is not None else "without") + " it."
+            )
+        if resumed.step > steps:
+            raise ValueError(f"checkpoint {checkpoint} is at step {resumed.step}, beyond steps={steps}.")
+        k, params, opt_state = resumed.step, resumed.params, resumed.opt_state
+        losses, vals = list(resumed.history["loss"]), list(resumed.history.get("validation", []))
+        best_value, best_step, best_params, since_best = (resumed.best_value, resumed.best_step,
+                                                          resumed.best_params, resumed.since_best)
+        last_finite = resumed.last_finite_params
+    else:
+        last_finite = params
+    mesh = _mesh_of((loss_fn, validation_fn, args))
+    if mesh is not None:
+        # Start from the placement the step's outputs will have (replicated on
+        # the mesh): otherwise the second call sees new input shardings and
+        # compiles the step a second time.
+        params, opt_state = replicate((params, opt_state), mesh)
+    bar = _Progress(steps, progress and jax.process_index() == 0)
     reason = "steps"
     current = params
-    k = 0
     while True:
-        # One evaluation per params: the loss comes from the step itself
-        # except after the last update, where only the loss is needed.
-        if k < steps:
-            new_params, new_state, loss = step_fn(current, opt_state, *args)
+        # One evaluation per params: the loss comes from the step itself.
+        # After the last update only the loss is needed; compiled, the step
+        # (its update discarded) is still cheaper than compiling a second
+        # program for the loss alone.
+        if k < steps or jit:
+            new_params, new_state, loss = step_fn(current, opt_state, loss_data, args)
         else:
-            loss = loss_only(current, *args)
+            loss = loss_only(current, loss_data, args)
         loss = float(loss)
-        val = None if val_fn is None else float(val_fn(current, *args))
+        val = None if val_fn is None else float(val_fn(current, val_data, args))
         losses.append(loss)
         if val is not None:
             vals.append(val)
@@ -246,6 +318,10 @@ def fit(
             break
         current, opt_state = new_params, new_state
         k += 1
+        if checkpoint is not None and k % int(checkpoint_every) == 0:
+            history = {"loss": losses} if validation_fn is None else {"loss": losses, "validation": vals}
+            save_fit_state(checkpoint, FitState(k, current, opt_state, best_params, last_finite, history,
+                                                best_value, best_step, since_best))
     bar.close(reason)
 
     if validation_fn is None:
@@ -265,6 +341,23 @@ def fit(
         opt_state=opt_state,
         standard_errors=ses,
     )
+
+
+def _as_call(fn: Optional[Callable]):
+    """(callable(params, *data, *args), data): a data-parallel loss's batch made an argument."""
+    if isinstance(fn, DataParallelLoss):
+        return fn.fn, (fn.batch,)
+    return fn, ()
+
+
+def _mesh_of(things):
+    """The device mesh of the first data-parallel loss or sharded array among ``things``, else None."""
+    for leaf in jax.tree_util.tree_leaves(things, is_leaf=lambda x: isinstance(x, DataParallelLoss)):
+        if isinstance(leaf, DataParallelLoss):
+            return leaf.mesh
+        if isinstance(leaf, jax.Array) and isinstance(leaf.sharding, jax.sharding.NamedSharding):
+            return leaf.sharding.mesh
+    return None
 
 
 def _hessian(f_flat, x, method: str, eps: Optional[float]):

@@ -170,7 +170,7 @@ def holdout_folds(mask, folds: int, seed, *, block_length=None):
     return mask[None] & (fold_of[None] == jnp.arange(folds)[:, None, None])
 
 
-def pad_series(series: Sequence, masks: Sequence = None):
+def pad_series(series: Sequence, masks: Sequence = None, length: int = None):
     """Stack trajectories of different lengths into one padded batch.
 
     Padding goes at the end and is marked missing, which leaves the smoothed
@@ -180,6 +180,9 @@ def pad_series(series: Sequence, masks: Sequence = None):
     Args:
         series: sequence of B arrays of shape (T_i, p) (NaN = missing).
         masks: optional sequence of (T_i, p) bool masks (default ``~isnan``).
+        length: pad to this many steps (≥ every T_i; default the longest
+            T_i). Processes of a multi-process fit each pad their own
+            trajectories and must agree on the length.
 
     Returns:
         (y, mask) as NumPy arrays of shapes (B, T_max, p): ``y`` is NaN and
@@ -202,6 +205,10 @@ def pad_series(series: Sequence, masks: Sequence = None):
     if masks is not None and len(masks) != len(arrays):
         raise ValueError(f"masks must hold one mask per trajectory ({len(arrays)}); got {len(masks)}.")
     B, T, p = len(arrays), max(a.shape[0] for a in arrays), arrays[0].shape[1]
+    if length is not None:
+        if int(length) < T:
+            raise ValueError(f"length ({length}) must be at least the longest series ({T} steps).")
+        T = int(length)
     dtype = np.result_type(*arrays, np.float32)
     y = np.full((B, T, p), np.nan, dtype=dtype)
     mask = np.zeros((B, T, p), dtype=bool)
