@@ -30,6 +30,8 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
+import reference as ref
+from helpers import to_model
 from kalmax._src import linalg
 
 # jaxlib 0.10.2's batched LAPACK kernels schedule a batch on the thread pool
@@ -84,27 +86,27 @@ def _loss(S, B):
             + jnp.sum(L ** 3))
 
 
-def test_derivatives_against_differences_and_written_out(rng, monkeypatch):
+def test_derivatives_against_central_differences(rng, lapack_route):
+    # Reverse, forward and forward-over-reverse (what fitting.information
+    # uses) against central differences along a random symmetric direction
+    # (common practice).
     S = jnp.asarray(_spd(rng, (2,), 3))
     B = jnp.asarray(rng.standard_normal((2, 3, 2)))
-    written_out = jax.jit(jax.grad(_loss, argnums=(0, 1)))(S, B)
-    hess_written_out = jax.jit(jax.hessian(lambda s: _loss(s, B)))(S[0])
-    monkeypatch.setattr(linalg, "WRITTEN_OUT_MAX", 0)
-    gS, gB = jax.jit(jax.grad(_loss, argnums=(0, 1)))(S, B)
-    np.testing.assert_allclose(gS, written_out[0], rtol=1e-10, atol=1e-12)
-    np.testing.assert_allclose(gB, written_out[1], rtol=1e-10, atol=1e-12)
-    # Central differences along a random symmetric direction (common practice).
     E = rng.standard_normal(S.shape)
     E = jnp.asarray(E + np.swapaxes(E, -1, -2))
+    D = jnp.asarray(rng.standard_normal(B.shape))
     h = 1e-5
     loss = jax.jit(_loss)
-    fd = (loss(S + h * E, B) - loss(S - h * E, B)) / (2 * h)
-    np.testing.assert_allclose(jnp.sum(gS * E), fd, rtol=1e-7)
-    # Forward over reverse (what fitting.information uses) and forward mode.
-    hess = jax.jit(jax.hessian(lambda s: _loss(s, B)))(S[0])
-    np.testing.assert_allclose(hess, hess_written_out, rtol=1e-9, atol=1e-10)
+    grad = jax.jit(jax.grad(_loss, argnums=(0, 1)))
+    gS, gB = grad(S, B)
+    np.testing.assert_allclose(jnp.sum(gS * E), (loss(S + h * E, B) - loss(S - h * E, B)) / (2 * h), rtol=1e-7)
+    np.testing.assert_allclose(jnp.sum(gB * D), (loss(S, B + h * D) - loss(S, B - h * D)) / (2 * h), rtol=1e-7)
     _, tangent = jax.jit(lambda s, e: jax.jvp(lambda s: _loss(s, B), (s,), (e,)))(S, E)
-    np.testing.assert_allclose(tangent, fd, rtol=1e-7)
+    np.testing.assert_allclose(tangent, jnp.sum(gS * E), rtol=1e-7)
+    hess = jax.jit(jax.hessian(lambda s: _loss(s, B)))(S)
+    hE = jnp.tensordot(hess, E, axes=3)
+    fd = (grad(S + h * E, B)[0] - grad(S - h * E, B)[0]) / (2 * h)
+    np.testing.assert_allclose(hE, fd, rtol=1e-5, atol=1e-6)
 
 
 def test_nested_vmap_matches_a_loop(rng, lapack_route):
@@ -115,6 +117,47 @@ def test_nested_vmap_matches_a_loop(rng, lapack_route):
     for i in range(2):
         for j in range(3):
             np.testing.assert_allclose(batched[i, j], grad(S[i, j], B[i, j]), rtol=1e-12, atol=1e-13)
+
+
+_SLOW = not os.environ.get("KALMAX_SLOW")
+
+
+@pytest.mark.parametrize("method", [
+    "parallel",
+    pytest.param("scan", marks=pytest.mark.skipif(_SLOW, reason="set KALMAX_SLOW=1 to run")),
+    pytest.param("scan-recompute", marks=pytest.mark.skipif(_SLOW, reason="set KALMAX_SLOW=1 to run")),
+    pytest.param("covariance", marks=pytest.mark.skipif(_SLOW, reason="set KALMAX_SLOW=1 to run")),
+])
+def test_backends_through_the_lapack_route_against_the_textbook_filter(rng, lapack_route, method):
+    # A JAX backend with all its decompositions on the LAPACK primitives, under
+    # vmap: smoothed means and log-likelihood against the NumPy covariance-form
+    # filter and RTS smoother (Särkkä 2013, Bayesian Filtering and Smoothing,
+    # Ch. 4 and 8; tests/reference.py), and the gradient along a direction of Q
+    # against central differences of that filter's log-likelihood (common
+    # practice). One compiled program (compilation dominates the cost).
+    import kalmax as kx
+
+    T = 12
+    md = ref.random_model(rng, 3, 2, T, time_varying=False)
+    model = to_model(md)
+    data = [ref.random_data(rng, md, T) for _ in range(2)]
+    ys = np.stack([np.where(mask, y, 0.0) for y, mask in data])
+    masks = np.stack([mask for _, mask in data])
+
+    def one(m, y, w):
+        ll, g = jax.value_and_grad(lambda m: kx.log_likelihood(m, y, w, method=method))(m)
+        return kx.smooth(m, y, w, method=method).states, ll, g.Q
+
+    states, ll, gQ = jax.jit(jax.vmap(one, in_axes=(None, 0, 0)))(model, ys, masks)
+    E = rng.standard_normal((3, 3))
+    E = E + E.T
+    h = 1e-6
+    for i in range(2):
+        np.testing.assert_allclose(states[i], ref.rts_smoother(md, ys[i], masks[i])[0], rtol=1e-8, atol=1e-9)
+        np.testing.assert_allclose(ll[i], ref.kalman_filter(md, ys[i], masks[i]).log_likelihood, rtol=1e-9)
+        up = ref.kalman_filter({**md, "Q": md["Q"] + h * E}, ys[i], masks[i]).log_likelihood
+        down = ref.kalman_filter({**md, "Q": md["Q"] - h * E}, ys[i], masks[i]).log_likelihood
+        np.testing.assert_allclose(np.sum(gQ[i] * E), (up - down) / (2 * h), rtol=1e-6)
 
 
 _LAPACK_CALL = re.compile(r"custom_call @lapack_(\w+?)_ffi\(.*?: \((tensor<[^)]*)\) ->")

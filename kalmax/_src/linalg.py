@@ -38,10 +38,29 @@ tangents, so forward mode, reverse mode and second derivatives all work.
 Run time is on a par with LAPACK for these block sizes; the price is
 compilation: a program full of them compiles 2–3× slower than with one
 LAPACK call each (the pure-JAX "scan" path; the compiled kernel's paths
-barely use them). GPU and TPU keep the vendor solvers. Larger blocks (rare: k > 32) keep LAPACK, issued in chunks that each
-stay below the inline bound, so no call ever schedules work on the pool; under
-``vmap`` such a chunk gains the batch axis, which is the one remaining way to
-reach the jaxlib bug (documented in the README's limits).
+barely use them). GPU and TPU keep the vendor solvers.
+
+Larger blocks (rare: k > 32), and every block on GPU/TPU, go to LAPACK (or
+the vendor solver) through two primitives, ``kalmax_lapack_cholesky`` and
+``kalmax_lapack_triangular_solve`` (bottom of this module): the only calls of
+a decomposition library in the package. Their CPU lowering issues the batch in
+chunks that each stay below the inline bound (:func:`_lapack_in_chunks`), so
+no call ever schedules work on the pool. They are primitives, not functions,
+because of ``vmap``: a chunk loop written in JAX gains the vmapped axis inside
+every chunk, so a vmapped caller handed LAPACK (vmap size × chunk) matrices
+per call and hung again (T = 66,000, batch 4, the parallel path's
+gradient). The primitives' batching rule instead folds the mapped axis into
+the leading batch, so the chunking sees the whole batch at any vmap depth;
+their own JVP and transpose rules keep jit, grad, jvp and second derivatives.
+(``jax.custom_batching.custom_vmap`` would give the batching but has no
+reverse mode, and a ``custom_vjp`` around it no forward mode, which the
+observed information of ``fitting.py`` needs.)
+
+Outside this module only two decompositions remain, each of one small
+parameter-space matrix and never of a time-indexed batch: the eigenvalues of
+the observed information (``fitting.py``) and the SVD of the nuclear-norm
+prox (``prox.py``). Under a user's ``vmap`` their batch is the vmap size.
+``tests/test_linalg.py`` checks that no other module calls one.
 
 Numerics: the column-by-column Cholesky is the textbook algorithm (Golub &
 Van Loan, *Matrix Computations*, 4th ed., Alg. 4.2.1), backward stable like
