@@ -278,8 +278,8 @@ def _lsolve_loop(L, B, transpose):
 # binds the same primitive again, so the lowering always sees the whole batch
 # — vmap size × inner batch, for nested vmaps the product of all of them — and
 # on CPU issues it through _lapack_in_chunks. A plain function chunked with
-# lax.map (what stood here before) gains the vmap axis inside every chunk, so
-# a vmapped caller still handed LAPACK B × chunk matrices at once and hung
+# lax.map gains the vmap axis inside every chunk, so a vmapped caller would
+# hand LAPACK B × chunk matrices at once, and did, and hung
 # (seen at T = 66,000, B = 4, n = 2 with the written-out code switched off:
 # two pool threads in lapack_dtrsm_ffi → ParallelBatchMap →
 # BlockingCounter::Wait, the main thread in BlockUntilReady).
@@ -313,8 +313,8 @@ def _triangular_solve_cpu(L, B, *, transpose):
     return _lapack_in_chunks(partial(_triangular_solve_plain, transpose=transpose), (L, B), k * k * B.shape[-1])
 
 
-def lapack_chunk_size(cost: int) -> int:
-    """Matrices per LAPACK call on CPU, for a per-matrix work estimate `cost`."""
+def _chunk_size(cost: int) -> int:
+    # Matrices per LAPACK call on CPU, for a per-matrix work estimate `cost`.
     return max(1, _INLINE_WORK // max(1, cost))
 
 
@@ -328,7 +328,7 @@ def _lapack_in_chunks(fn, operands, cost):
     """
     lead = operands[0].shape[:-2]
     batch = math.prod(lead)
-    chunk = lapack_chunk_size(cost)
+    chunk = _chunk_size(cost)
     if batch <= chunk:
         return fn(*operands)
     n_chunks = -(-batch // chunk)
@@ -396,7 +396,7 @@ def _cholesky_jvp(primals, tangents):
     (S,), (dS,) = primals, tangents
     L = _lapack_cholesky_p.bind(S)
     if type(dS) is ad.Zero:
-        return L, ad.Zero.from_primal_value(L)
+        return L, jnp.zeros_like(L)
     dS = 0.5 * (dS + mT(dS))
     solve = partial(_lapack_triangular_solve_p.bind, transpose=False)
     X = solve(L, mT(solve(L, dS)))
@@ -410,7 +410,7 @@ def _triangular_solve_jvp(primals, tangents, *, transpose):
     (L, B), (dL, dB) = primals, tangents
     X = _lapack_triangular_solve_p.bind(L, B, transpose=transpose)
     if type(dL) is ad.Zero and type(dB) is ad.Zero:
-        return X, ad.Zero.from_primal_value(X)
+        return X, jnp.zeros_like(X)
     rhs = ad.instantiate_zeros(dB)
     if type(dL) is not ad.Zero:
         dL = jnp.tril(dL)
