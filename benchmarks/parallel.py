@@ -17,10 +17,9 @@ C, Q, R. Medians over repeats after a warm-up call.
 
 The process is pinned to ONE core, so times measure total work — the
 quantity the parallel path's CPU target is stated in (it is built for
-accelerators, where the levels run in parallel). Pinning also sidesteps a
-hang seen with jaxlib 0.10.2 on this 2-core machine: value-and-gradient
-programs with batched triangular solves over more than 65,536 matrices
-sometimes never finish when XLA runs them on several threads.
+accelerators, where the levels run in parallel). (Pinning was also how this
+benchmark once sidestepped jaxlib 0.10.2's batched-LAPACK thread-pool hang;
+``kalmax/_src/linalg.py`` now avoids that hang at its root.)
 
 Memory (--memory): each method runs in a fresh subprocess: compile ahead of
 time, reset the kernel's peak-RSS counter (/proc/self/clear_refs), run the

@@ -38,10 +38,29 @@ tangents, so forward mode, reverse mode and second derivatives all work.
 Run time is on a par with LAPACK for these block sizes; the price is
 compilation: a program full of them compiles 2–3× slower than with one
 LAPACK call each (the pure-JAX "scan" path; the compiled kernel's paths
-barely use them). GPU and TPU keep the vendor solvers. Larger blocks (rare: k > 32) keep LAPACK, issued in chunks that each
-stay below the inline bound, so no call ever schedules work on the pool; under
-``vmap`` such a chunk gains the batch axis, which is the one remaining way to
-reach the jaxlib bug (documented in the README's limits).
+barely use them). GPU and TPU keep the vendor solvers.
+
+Larger blocks (rare: k > 32), and every block on GPU/TPU, go to LAPACK (or
+the vendor solver) through two primitives, ``kalmax_lapack_cholesky`` and
+``kalmax_lapack_triangular_solve`` (bottom of this module): the only calls of
+a decomposition library in the package. Their CPU lowering issues the batch in
+chunks that each stay below the inline bound (:func:`_lapack_in_chunks`), so
+no call ever schedules work on the pool. They are primitives, not functions,
+because of ``vmap``: a chunk loop written in JAX gains the vmapped axis inside
+every chunk, so a vmapped caller handed LAPACK (vmap size × chunk) matrices
+per call and hung again (T = 66,000, batch 4, the parallel path's
+gradient). The primitives' batching rule instead folds the mapped axis into
+the leading batch, so the chunking sees the whole batch at any vmap depth;
+their own JVP and transpose rules keep jit, grad, jvp and second derivatives.
+(``jax.custom_batching.custom_vmap`` would give the batching but has no
+reverse mode, and a ``custom_vjp`` around it no forward mode, which the
+observed information of ``fitting.py`` needs.)
+
+Outside this module only two decompositions remain, each of one small
+parameter-space matrix and never of a time-indexed batch: the eigenvalues of
+the observed information (``fitting.py``) and the SVD of the nuclear-norm
+prox (``prox.py``). Under a user's ``vmap`` their batch is the vmap size.
+``tests/test_linalg.py`` checks that no other module calls one.
 
 Numerics: the column-by-column Cholesky is the textbook algorithm (Golub &
 Van Loan, *Matrix Computations*, 4th ed., Alg. 4.2.1), backward stable like
@@ -57,7 +76,9 @@ from functools import partial
 
 import jax
 import jax.numpy as jnp
-from jax import lax
+from jax import core, lax
+from jax.extend.core import Primitive
+from jax.interpreters import ad, batching, mlir
 
 # Blocks up to this size are factorised and solved by the elementwise code
 # below: a loop over the k columns (rows), or straight-line code for one small
@@ -87,7 +108,11 @@ def chol(S):
     k = S.shape[-1]
     if _written_out(k):
         return _chol_columns(S)
-    return _lapack_in_chunks(lambda s: jnp.linalg.cholesky(s), (S,), k**3 // 3)
+    L = _lapack_cholesky_p.bind(0.5 * (S + mT(S)))
+    # LAPACK leaves zeros above the diagonal of a failed factor: NaN throughout,
+    # as the written-out factor.
+    good = jnp.all(jnp.isfinite(jnp.diagonal(L, axis1=-2, axis2=-1)), axis=-1)
+    return jnp.where(good[..., None, None], L, jnp.nan)
 
 
 def _column(X, j):
@@ -192,15 +217,12 @@ def lsolve(L, B, *, transpose: bool = False):
     if L.ndim == 2 and B.ndim > 2:
         # One L against a batch: all right-hand sides as columns of one solve (batch 1).
         cols = jnp.moveaxis(B, -2, 0).reshape(k, -1)
-        X = lax.linalg.triangular_solve(L, cols, left_side=True, lower=True, transpose_a=transpose)
+        X = _lapack_triangular_solve_p.bind(L, cols, transpose=transpose)
         return jnp.moveaxis(X.reshape((k,) + B.shape[:-2] + B.shape[-1:]), 0, -2)
-    if L.ndim > B.ndim:
-        B = jnp.broadcast_to(B, L.shape[:-2] + B.shape[-2:])
-    elif B.ndim > L.ndim:
-        L = jnp.broadcast_to(L, B.shape[:-2] + L.shape[-2:])
-    solve = lambda l, b: lax.linalg.triangular_solve(  # noqa: E731
-        l, b, left_side=True, lower=True, transpose_a=transpose)
-    return _lapack_in_chunks(solve, (L, B), k * k * B.shape[-1])
+    batch = jnp.broadcast_shapes(L.shape[:-2], B.shape[:-2])
+    L = jnp.broadcast_to(L, batch + L.shape[-2:])
+    B = jnp.broadcast_to(B, batch + B.shape[-2:])
+    return _lapack_triangular_solve_p.bind(L, B, transpose=transpose)
 
 
 @partial(jax.custom_jvp, nondiff_argnums=(2,))
@@ -246,15 +268,67 @@ def _lsolve_loop(L, B, transpose):
     return X
 
 
+# --- LAPACK for blocks above WRITTEN_OUT_MAX (and on GPU/TPU) -----------------
+#
+# Two primitives, a batched Cholesky factorisation and a batched lower-
+# triangular solve, are the only way this package reaches a decomposition
+# library. Operands carry equal leading batch shapes (the wrappers above
+# broadcast them). What makes them primitives rather than plain functions is
+# vmap: their batching rule moves the vmapped axis into the leading batch and
+# binds the same primitive again, so the lowering always sees the whole batch
+# — vmap size × inner batch, for nested vmaps the product of all of them — and
+# on CPU issues it through _lapack_in_chunks. A plain function chunked with
+# lax.map gains the vmap axis inside every chunk, so a vmapped caller would
+# hand LAPACK B × chunk matrices at once, and did, and hung
+# (seen at T = 66,000, B = 4, n = 2 with the written-out code switched off:
+# two pool threads in lapack_dtrsm_ffi → ParallelBatchMap →
+# BlockingCounter::Wait, the main thread in BlockUntilReady).
+#
+# Why not jax.custom_batching.custom_vmap: it has no reverse mode, and the
+# custom_vjp that would have to wrap it has no forward mode, which the
+# observed-information Hessian (fitting.py, forward-over-reverse) needs. A
+# primitive carries its own JVP (written with the two primitives, so second
+# derivatives follow) and the transpose of the solve in its right-hand side
+# (the solve with the other transpose flag), so jit, vmap, grad, jvp and
+# their compositions all reach the chunked lowering.
+#
+# Only the CPU lowering chunks: the deadlock is the CPU runtime's, and on
+# GPU/TPU a loop over chunks would only serialise the vendor solvers.
+
+def _cholesky_plain(S):
+    return lax.linalg.cholesky(S, symmetrize_input=False)
+
+
+def _triangular_solve_plain(L, B, *, transpose):
+    return lax.linalg.triangular_solve(L, B, left_side=True, lower=True, transpose_a=transpose)
+
+
+def _cholesky_cpu(S):
+    k = S.shape[-1]
+    return _lapack_in_chunks(_cholesky_plain, (S,), k**3 // 3)
+
+
+def _triangular_solve_cpu(L, B, *, transpose):
+    k = L.shape[-1]
+    return _lapack_in_chunks(partial(_triangular_solve_plain, transpose=transpose), (L, B), k * k * B.shape[-1])
+
+
+def _chunk_size(cost: int) -> int:
+    # Matrices per LAPACK call on CPU, for a per-matrix work estimate `cost`.
+    return max(1, _INLINE_WORK // max(1, cost))
+
+
 def _lapack_in_chunks(fn, operands, cost):
     """fn over the leading batch of the operands, in chunks small enough to stay inline.
 
+    The one place that issues LAPACK on CPU (the lowering of both primitives).
     cost: jaxlib's work estimate per matrix (k³/3 for Cholesky, k²m for a solve
-    with m right-hand sides, read off the jaxlib 0.10.2 kernels).
+    with m right-hand sides, read off the jaxlib 0.10.2 kernels). Operands
+    share their leading batch shape.
     """
     lead = operands[0].shape[:-2]
     batch = math.prod(lead)
-    chunk = max(1, _INLINE_WORK // max(1, cost))
+    chunk = _chunk_size(cost)
     if batch <= chunk:
         return fn(*operands)
     n_chunks = -(-batch // chunk)
@@ -274,6 +348,87 @@ def _lapack_in_chunks(fn, operands, cost):
     out = lax.map(lambda ops: fn(*ops), tuple(flat))
     out = out.reshape((n_chunks * chunk,) + out.shape[-2:])[:batch]
     return out.reshape(lead + out.shape[-2:])
+
+
+def _eager(cpu_fn, plain_fn):
+    # Outside jit the primitives run their implementation op by op.
+    return lambda *args, **params: (cpu_fn if jax.default_backend() == "cpu" else plain_fn)(*args, **params)
+
+
+def _same_shape(x, **_):
+    return core.ShapedArray(x.shape, x.dtype)
+
+
+def _solution_shape(L, B, **_):
+    return core.ShapedArray(B.shape, B.dtype)
+
+
+def _batch_into_lead(primitive):
+    # vmap: the mapped axis becomes the first batch axis of every operand
+    # (broadcast where an operand is not mapped), then the same primitive again.
+    def rule(args, dims, **params):
+        size = next(a.shape[d] for a, d in zip(args, dims) if d is not None)
+        args = [jnp.broadcast_to(a, (size,) + a.shape) if d is None else jnp.moveaxis(a, d, 0)
+                for a, d in zip(args, dims)]
+        return primitive.bind(*args, **params), 0
+    return rule
+
+
+_lapack_cholesky_p = Primitive("kalmax_lapack_cholesky")
+_lapack_cholesky_p.def_impl(_eager(_cholesky_cpu, _cholesky_plain))
+_lapack_cholesky_p.def_abstract_eval(_same_shape)
+mlir.register_lowering(_lapack_cholesky_p, mlir.lower_fun(_cholesky_plain, multiple_results=False))
+mlir.register_lowering(_lapack_cholesky_p, mlir.lower_fun(_cholesky_cpu, multiple_results=False), platform="cpu")
+batching.primitive_batchers[_lapack_cholesky_p] = _batch_into_lead(_lapack_cholesky_p)
+
+_lapack_triangular_solve_p = Primitive("kalmax_lapack_triangular_solve")
+_lapack_triangular_solve_p.def_impl(_eager(_triangular_solve_cpu, _triangular_solve_plain))
+_lapack_triangular_solve_p.def_abstract_eval(_solution_shape)
+mlir.register_lowering(_lapack_triangular_solve_p,
+                       mlir.lower_fun(_triangular_solve_plain, multiple_results=False))
+mlir.register_lowering(_lapack_triangular_solve_p,
+                       mlir.lower_fun(_triangular_solve_cpu, multiple_results=False), platform="cpu")
+batching.primitive_batchers[_lapack_triangular_solve_p] = _batch_into_lead(_lapack_triangular_solve_p)
+
+
+def _cholesky_jvp(primals, tangents):
+    # dL = L Φ(L⁻¹ dS L⁻ᵀ), as for the written-out factor; S arrives symmetric.
+    (S,), (dS,) = primals, tangents
+    L = _lapack_cholesky_p.bind(S)
+    if type(dS) is ad.Zero:
+        return L, jnp.zeros_like(L)
+    dS = 0.5 * (dS + mT(dS))
+    solve = partial(_lapack_triangular_solve_p.bind, transpose=False)
+    X = solve(L, mT(solve(L, dS)))
+    phi = jnp.tril(X) - 0.5 * X * jnp.eye(S.shape[-1], dtype=X.dtype)
+    return L, L @ phi
+
+
+def _triangular_solve_jvp(primals, tangents, *, transpose):
+    # X = L⁻¹B (or L⁻ᵀB): dX = L⁻¹(dB − dL X) (or L⁻ᵀ(dB − dLᵀ X)). Only the
+    # lower triangle of L is read, so only that of dL counts.
+    (L, B), (dL, dB) = primals, tangents
+    X = _lapack_triangular_solve_p.bind(L, B, transpose=transpose)
+    if type(dL) is ad.Zero and type(dB) is ad.Zero:
+        return X, jnp.zeros_like(X)
+    rhs = ad.instantiate_zeros(dB)
+    if type(dL) is not ad.Zero:
+        dL = jnp.tril(dL)
+        rhs = rhs - (mT(dL) if transpose else dL) @ X
+    return X, _lapack_triangular_solve_p.bind(L, rhs, transpose=transpose)
+
+
+def _triangular_solve_transpose(ct, L, B, *, transpose):
+    # Linear in B only: B̄ = L⁻ᵀ X̄ (or L⁻¹ X̄).
+    assert not ad.is_undefined_primal(L), "the solve is linear in its right-hand side only"
+    if type(ct) is ad.Zero:
+        return None, ad.Zero(B.aval)
+    return None, _lapack_triangular_solve_p.bind(L, ct, transpose=not transpose)
+
+
+ad.primitive_jvps[_lapack_cholesky_p] = _cholesky_jvp
+ad.primitive_jvps[_lapack_triangular_solve_p] = _triangular_solve_jvp
+ad.primitive_transposes[_lapack_triangular_solve_p] = _triangular_solve_transpose
 
 
 def lsolve_vec(L, v, *, transpose: bool = False):
