@@ -169,37 +169,52 @@ def test_float32(method):
     md, qv, rv, y, mask = _problem(8, "scalar", "diag_tv")
     f32 = lambda a: jnp.asarray(a, jnp.float32)  # noqa: E731
     model = _model(md, kx.ScalarNoise(f32(qv)), kx.DiagonalNoise(f32(rv)), dtype=np.float32)
-    out = kx.smooth(model, f32(np.where(mask, y, 0.0)), mask, method=method)
-    assert out.states.dtype == jnp.float32
-    np.testing.assert_allclose(out.states, ref.rts_smoother(md, np.where(mask, y, 0.0), mask)[0], rtol=1e-3, atol=1e-3)
-    g = jax.grad(lambda r: kx.log_likelihood(model.replace(R=kx.DiagonalNoise(r)), f32(np.where(mask, y, 0.0)), mask,
-                                             method=method))(f32(rv))
-    assert g.dtype == jnp.float32
+    y32 = f32(np.where(mask, y, 0.0))
+
+    @jax.jit
+    def run(r):
+        states = kx.smooth(model.replace(R=kx.DiagonalNoise(r)), y32, mask, method=method).states
+        return states, jax.grad(lambda r: kx.log_likelihood(model.replace(R=kx.DiagonalNoise(r)), y32, mask,
+                                                            method=method))(r)
+
+    states, g = run(f32(rv))
+    assert states.dtype == jnp.float32 and g.dtype == jnp.float32
+    np.testing.assert_allclose(states, ref.rts_smoother(md, np.where(mask, y, 0.0), mask)[0], rtol=1e-3, atol=1e-3)
     ref_ll = lambda r: ref.dense_log_likelihood(dict(md, R=_dense("diag_tv", r, P)), np.where(mask, y, 0.0), mask)  # noqa: E731
     np.testing.assert_allclose(g, _fd(ref_ll, rv), rtol=2e-3, atol=2e-3)
 
 
 def test_the_wrapper_not_the_shape_decides():
     """With T = p a per-step diagonal and a dense (p, p) have the same shape;
-    a bare array is read as the dense covariance, the wrapper as variances."""
-    md, qv, rv, y, mask = _problem(9, "scalar", "diag_tv")
-    as_dense = kx.smooth(_model(md, kx.ScalarNoise(qv), jnp.asarray(rv)), y, mask, method="scan").states
-    md_dense = dict(md, R=np.asarray(rv))  # rv read as one (p, p) matrix, time-invariant
-    md_dense["R"] = 0.5 * (md_dense["R"] + md_dense["R"].T) + P * np.eye(P)
-    as_wrapped = kx.smooth(_model(md, kx.ScalarNoise(qv), kx.DiagonalNoise(rv)), y, mask, method="scan").states
-    np.testing.assert_allclose(as_wrapped, ref.rts_smoother(md, np.where(mask, y, 0.0), mask)[0], rtol=1e-9)
+    a bare array is read as the dense covariance, the wrapper as variances.
+    The values are chosen to be valid both ways (positive entries, and SPD as
+    a matrix), and each reading is checked against its reference."""
+    rng = np.random.default_rng(9)
+    md = ref.random_model(rng, N, P, T, time_varying=True, full_R=False)
+    v = 0.3 * np.ones((T, P)) + np.diag(rng.uniform(0.5, 1.2, P))  # symmetric, diagonally dominant
+    y, mask = ref.random_data(rng, md, T, missing=0.3)
+    y0 = np.where(mask, y, 0.0)
+    method = BACKENDS[0]  # the compiled kernel where it is built: the check is about the interface
+    q = jnp.asarray(md["Q"])
+    as_dense = kx.smooth(_model(md, q, jnp.asarray(v)), y, mask, method=method).states
+    as_wrapped = kx.smooth(_model(md, q, kx.DiagonalNoise(v)), y, mask, method=method).states
+    np.testing.assert_allclose(as_dense, ref.rts_smoother(dict(md, R=v), y0, mask)[0], rtol=1e-9, atol=1e-10)
+    np.testing.assert_allclose(as_wrapped, ref.rts_smoother(dict(md, R=_dense("diag_tv", v, P)), y0, mask)[0],
+                               rtol=1e-9, atol=1e-10)
     assert not np.allclose(as_dense, as_wrapped)
 
 
 @pytest.mark.parametrize(
     "field, value, words",
     [
-        ("R", np.ones((T + 1, P)), ["model.R has shape (6, 5)", "kx.DiagonalNoise(variances)"]),
-        ("R", kx.DiagonalNoise(np.ones((T, P + 1))), ["model.R.variances has shape (5, 6)", "(p,) or (T, p)"]),
-        ("R", kx.ScalarNoise(np.ones((T - 1,))), ["model.R.variance has shape (4,)", "() or (T,)"]),
-        ("Q", kx.DiagonalNoise(np.ones((T, N))), ["model.Q.variances has shape (5, 3)", "(n,) or (T-1, n)"]),
-        ("Q", kx.ScalarNoise(np.ones((2, 2))), ["model.Q.variance", "kx.ScalarNoise(variance)"]),
-        ("Q", np.ones(N), ["model.Q has shape (3,)", "wrap them as kx.DiagonalNoise"]),
+        ("R", np.ones((T + 1, P)), ["model.R must have shape (5, 5)", "got (6, 5)", "kx.DiagonalNoise(variances)"]),
+        ("R", kx.DiagonalNoise(np.ones((T, P + 1))),
+         ["model.R.variances must have shape (5,) (time-invariant) or (5, 5)", "got (5, 6)", "(p,) or (T, p)"]),
+        ("R", kx.ScalarNoise(np.ones((T - 1,))), ["model.R.variance must have shape () ", "got (4,)", "() or (T,)"]),
+        ("Q", kx.DiagonalNoise(np.ones((T, N))), ["model.Q.variances must have shape (3,) (time-invariant) or (4, 3)",
+                                                  "(n,) or (T-1, n)"]),
+        ("Q", kx.ScalarNoise(np.ones((2, 2))), ["model.Q.variance", "got (2, 2)", "kx.ScalarNoise(variance)"]),
+        ("Q", np.ones(N), ["model.Q must have shape (3, 3)", "got (3,)", "wrap them as kx.DiagonalNoise"]),
         ("R", kx.DiagonalNoise(np.ones(P, np.int32)), ["model.R.variances must be a real floating-point"]),
     ],
 )

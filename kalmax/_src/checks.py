@@ -84,7 +84,8 @@ def _check_noise(name: str, x, k: int, steps: int, k_name: str, steps_name: str)
         hint = (f" A shape {_shape_str(shape)} array looks like variances: wrap them as "
                 f"kx.DiagonalNoise(variances) to say so (a bare array is read as a dense covariance).")
     raise ValueError(
-        f"{arg} has shape {_shape_str(shape)}, which fits none of the accepted forms of model.{name} "
+        f"{arg} must have shape {_shape_str(shapes[0])} (time-invariant) or {_shape_str(shapes[1])} "
+        f"(time-varying); got {_shape_str(shape)}. The accepted forms of model.{name} "
         f"({k_name} = {k}, {steps_shown}): {forms}.{hint}"
     )
 
