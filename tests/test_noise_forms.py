@@ -225,3 +225,14 @@ def test_shape_errors_name_the_argument_and_the_forms(field, value, words):
         kx.smooth(model, y, mask, method="scan")
     for w in words:
         assert w in str(err.value), str(err.value)
+
+
+def test_a_python_float_variance_keeps_a_float32_problem_float32():
+    """kx.ScalarNoise(0.1) is weakly typed, like a Python scalar in JAX (x64 is on in the suite)."""
+    md, _, rv, y, mask = _problem(11, "scalar", "diag")
+    f32 = lambda a: jnp.asarray(a, jnp.float32)  # noqa: E731
+    model = _model(md, kx.ScalarNoise(0.4), kx.DiagonalNoise(f32(rv)), dtype=np.float32)
+    states = kx.smooth(model, f32(np.where(mask, y, 0.0)), mask, method=BACKENDS[0]).states
+    assert states.dtype == jnp.float32
+    md = dict(md, Q=0.4 * np.eye(N), R=_dense("diag", rv, P))
+    np.testing.assert_allclose(states, ref.rts_smoother(md, np.where(mask, y, 0.0), mask)[0], rtol=1e-3, atol=1e-3)

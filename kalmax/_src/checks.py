@@ -185,7 +185,9 @@ def canonicalize(model: StateSpace, y, mask, *, keep_diagonal_R: bool = False):
                 f"mask must have the same shape as y, {_shape_str(y.shape)}; got {_shape_str(mask.shape)}."
             )
     # Plain Python lists become arrays before dtype promotion looks at them.
-    as_array = lambda x: x if x is None or hasattr(x, "dtype") else np.asarray(x)  # noqa: E731
+    # A Python float (kx.ScalarNoise(0.1)) stays weakly typed: it takes the
+    # problem's dtype instead of promoting a float32 problem to float64.
+    as_array = lambda x: x if x is None or hasattr(x, "dtype") or type(x) is float else np.asarray(x)  # noqa: E731
     model = jax.tree_util.tree_map(as_array, model)
     leaves = jax.tree_util.tree_leaves(model)
     dtype = jnp.result_type(*leaves, y)
