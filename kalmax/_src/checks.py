@@ -188,7 +188,8 @@ def canonicalize(model: StateSpace, y, mask, *, keep_diagonal_R: bool = False):
     # A Python float (kx.ScalarNoise(0.1)) stays weakly typed: it takes the
     # problem's dtype instead of promoting a float32 problem to float64.
     as_array = lambda x: x if x is None or hasattr(x, "dtype") or type(x) is float else np.asarray(x)  # noqa: E731
-    model = jax.tree_util.tree_map(as_array, model)
+    # Lists and tuples are values here, not pytree nodes to descend into.
+    model = jax.tree_util.tree_map(as_array, model, is_leaf=lambda x: isinstance(x, (list, tuple)))
     leaves = jax.tree_util.tree_leaves(model)
     dtype = jnp.result_type(*leaves, y)
     model = jax.tree_util.tree_map(lambda x: _materialised(jnp.asarray(x, dtype)), model)
