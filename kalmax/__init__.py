@@ -2,6 +2,8 @@
 
 from ._src.likelihood import log_likelihood as log_likelihood
 from ._src.model import StateSpace as StateSpace
+from ._src.noise import DiagonalNoise as DiagonalNoise
+from ._src.noise import ScalarNoise as ScalarNoise
 from ._src.smoothing import Smoothed as Smoothed
 from ._src.smoothing import holdout_sums as holdout_sums
 from ._src.smoothing import prediction_error as prediction_error

@@ -14,6 +14,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from .model import StateSpace
+from .noise import DiagonalNoise, ScalarNoise, as_diagonal, dense, is_noise_form
 
 
 class Dims(NamedTuple):
@@ -56,6 +57,39 @@ def _check_field(name: str, x, invariant: tuple, varying: Optional[tuple]) -> No
     raise ValueError(f"model.{name} must have shape {expected}; got {_shape_str(shape)}.")
 
 
+def _noise_forms_str(k: str, steps: str) -> str:
+    return (f"a dense covariance ({k}, {k}) or ({steps}, {k}, {k}), "
+            f"kx.DiagonalNoise(variances) with variances ({k},) or ({steps}, {k}), "
+            f"or kx.ScalarNoise(variance) with variance () or ({steps},)")
+
+
+def _check_noise(name: str, x, k: int, steps: int, k_name: str, steps_name: str) -> None:
+    """Q or R: a dense array, a DiagonalNoise or a ScalarNoise of fitting shape (see noise.py)."""
+    steps_shown = f"{steps_name} = {steps}"
+    forms = _noise_forms_str(k_name, steps_name)
+    if isinstance(x, DiagonalNoise):
+        arg, leaf, shapes = f"model.{name}.variances", x.variances, ((k,), (steps, k))
+    elif isinstance(x, ScalarNoise):
+        arg, leaf, shapes = f"model.{name}.variance", x.variance, ((), (steps,))
+    else:
+        arg, leaf, shapes = f"model.{name}", x, ((k, k), (steps, k, k))
+    if leaf is None:
+        raise ValueError(f"{arg} is required; got None.")
+    _require_float(arg, leaf)
+    shape = tuple(np.shape(leaf))
+    if shape in shapes:
+        return
+    hint = ""
+    if not is_noise_form(x) and shape in ((k,), (steps, k)):
+        hint = (f" A shape {_shape_str(shape)} array looks like variances: wrap them as "
+                f"kx.DiagonalNoise(variances) to say so (a bare array is read as a dense covariance).")
+    raise ValueError(
+        f"{arg} must have shape {_shape_str(shapes[0])} (time-invariant) or {_shape_str(shapes[1])} "
+        f"(time-varying); got {_shape_str(shape)}. The accepted forms of model.{name} "
+        f"({k_name} = {k}, {steps_shown}): {forms}.{hint}"
+    )
+
+
 def dims_of(model: StateSpace, y) -> Dims:
     """Read T, n, p from the shapes of ``y`` and ``model.A``, checking both."""
     y_shape = tuple(np.shape(y))
@@ -87,12 +121,15 @@ def check_model(model: StateSpace, dims: Dims) -> None:
     if not isinstance(model, StateSpace):
         raise TypeError(f"model must be a kalmax.StateSpace; got {type(model).__name__}.")
     T, n, p = dims
+    for name in ("Q", "R"):
+        if getattr(model, name) is None:
+            raise ValueError(f"model.{name} is required; got None.")
+    _check_noise("Q", model.Q, n, T - 1, "n", "T-1")
+    _check_noise("R", model.R, p, T, "p", "T")
     spec = {
         "A": ((n, n), (T - 1, n, n)),
-        "Q": ((n, n), (T - 1, n, n)),
         "b": ((n,), (T - 1, n)),
         "C": ((p, n), (T, p, n)),
-        "R": ((p, p), (T, p, p)),
         "d": ((p,), (T, p)),
         "x0_mean": ((n,), None),
         "x0_cov": ((n, n), None),
@@ -112,10 +149,16 @@ def check_model(model: StateSpace, dims: Dims) -> None:
         )
 
 
-def canonicalize(model: StateSpace, y, mask):
+def canonicalize(model: StateSpace, y, mask, *, keep_diagonal_R: bool = False):
     """Check shapes/dtypes; return (model, y, mask, dims, dtype) with arrays cast to one dtype.
 
     ``mask`` of None means "observed wherever y is not NaN".
+
+    Noise forms (``noise.py``): Q always comes back dense. R comes back dense
+    too, unless ``keep_diagonal_R``: then a diagonal or scalar R comes back as
+    a ``DiagonalNoise`` with variances (p,) or (T, p), which every backend
+    accepts (the compiled kernel keeps it diagonal). Only entry points whose
+    whole path handles that form pass it.
     """
     dims = dims_of(model, y)
     _require_float("y", y)
@@ -142,15 +185,16 @@ def canonicalize(model: StateSpace, y, mask):
                 f"mask must have the same shape as y, {_shape_str(y.shape)}; got {_shape_str(mask.shape)}."
             )
     # Plain Python lists become arrays before dtype promotion looks at them.
-    as_array = lambda x: x if x is None or hasattr(x, "dtype") else np.asarray(x)  # noqa: E731
-    model = StateSpace(**{f: as_array(getattr(model, f)) for f in ("A", "C", "Q", "R", "b", "d", "x0_mean", "x0_cov")})
-    leaves = [getattr(model, f) for f in ("A", "C", "Q", "R", "b", "d", "x0_mean", "x0_cov")]
-    dtype = jnp.result_type(*[x for x in leaves if x is not None], y)
-    cast = {
-        f: (None if getattr(model, f) is None else jnp.asarray(getattr(model, f), dtype))
-        for f in ("A", "C", "Q", "R", "b", "d", "x0_mean", "x0_cov")
-    }
-    model = StateSpace(**{f: _materialised(v) for f, v in cast.items()})
+    # A Python float (kx.ScalarNoise(0.1)) stays weakly typed: it takes the
+    # problem's dtype instead of promoting a float32 problem to float64.
+    as_array = lambda x: x if x is None or hasattr(x, "dtype") or type(x) is float else np.asarray(x)  # noqa: E731
+    # Lists and tuples are values here, not pytree nodes to descend into.
+    model = jax.tree_util.tree_map(as_array, model, is_leaf=lambda x: isinstance(x, (list, tuple)))
+    leaves = jax.tree_util.tree_leaves(model)
+    dtype = jnp.result_type(*leaves, y)
+    model = jax.tree_util.tree_map(lambda x: _materialised(jnp.asarray(x, dtype)), model)
+    R = as_diagonal(model.R, dims.p)
+    model = model.replace(Q=dense(model.Q, dims.n), R=R if keep_diagonal_R else dense(R, dims.p))
     return model, _materialised(y.astype(dtype)), _materialised(mask), dims, dtype
 
 

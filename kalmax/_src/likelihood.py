@@ -152,5 +152,5 @@ def log_likelihood(model: StateSpace, y, mask=None, *, method: str = "auto"):
         >>> y = jnp.array([[0.5], [1.0], [0.7]])
         >>> g = jax.grad(lambda m: kx.log_likelihood(m, y))(m)
     """
-    model, y, mask, _, dtype = canonicalize(model, y, mask)
+    model, y, mask, _, dtype = canonicalize(model, y, mask, keep_diagonal_R=True)
     return _log_likelihood(model, y, jax.lax.stop_gradient(mask.astype(dtype)), resolve_method(method))

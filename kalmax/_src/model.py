@@ -41,6 +41,10 @@ class StateSpace:
     x0_cov    (n, n)            --
     ========  ================  =====================
 
+    ``Q`` and ``R`` may instead be ``kx.DiagonalNoise(variances)`` (variances
+    (n,)/(T-1, n) for Q, (p,)/(T, p) for R) or ``kx.ScalarNoise(variance)``
+    (()/(T-1,) for Q, ()/(T,) for R): see ``noise.py``.
+
     ``b``, ``d`` default to zero. Without ``x0_cov`` the first state has a flat
     (improper) prior; ``x0_mean`` alone means a prior mean with no covariance,
     which is rejected. ``Q``, ``R`` and ``x0_cov`` must be symmetric positive

@@ -36,6 +36,7 @@ import jax.numpy as jnp
 
 from .linalg import chol, cross, gram, lsolve, lsolve_vec, matvec
 from .model import StateSpace
+from .noise import DiagonalNoise
 
 
 class BlockSystem(NamedTuple):
@@ -51,7 +52,13 @@ class BlockSystem(NamedTuple):
 
 
 def masked_measurement_cov(R, w):
-    """R̃_t = (w wᵀ)∘R_t + diag(1 − w): (T, p, p) from R (p,p)|(T,p,p) and w (T, p)."""
+    """R̃_t = (w wᵀ)∘R_t + diag(1 − w): (T, p, p) from R (p,p)|(T,p,p) and w (T, p).
+
+    R may also be a ``DiagonalNoise`` (variances (p,) or (T, p), ``noise.py``):
+    then R̃_t = diag(w∘r_t + 1 − w), formed directly (w² = w for a 0/1 mask).
+    """
+    if isinstance(R, DiagonalNoise):
+        return (w * R.variances + (1 - w))[:, :, None] * jnp.eye(w.shape[-1], dtype=w.dtype)
     ww = w[:, :, None] * w[:, None, :]
     return ww * R + (1 - w)[:, :, None] * jnp.eye(w.shape[-1], dtype=w.dtype)
 

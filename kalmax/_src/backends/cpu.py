@@ -74,7 +74,11 @@ float32 forward went from 0.144 s to 0.241 s and value-and-gradient from
 0.224 s to 0.32 s, against 0.19 s and 0.285 s for float64.
 
 Time-invariant fields are passed once (their rank tells the kernel); absent
-optional fields are passed as zero-size arrays. Every ``ffi_call`` uses
+optional fields are passed as zero-size arrays. A diagonal R
+(``noise.DiagonalNoise``) is passed as its variances, (p,) or (T, p), with
+the attribute ``r_diagonal=1`` (the rank cannot say it: (T, p) and (p, p)
+coincide when T = p); the kernel keeps it diagonal and returns its gradient
+as variances too. Q reaches the kernel dense (``checks.canonicalize``). Every ``ffi_call`` uses
 ``vmap_method="expand_dims"``: under ``jax.vmap`` the kernel receives the
 batched operands with a leading batch axis (size 1 where not batched) and loops
 over the batch itself, so ``vmap``, ``grad`` and ``vmap`` of ``grad`` all reach
@@ -109,6 +113,7 @@ from .. import blocktri, tolerances
 from ..blocktri import BlockFactor
 from ..linalg import lsolve, mT
 from ..model import StateSpace
+from ..noise import DiagonalNoise
 from ..normal_equations import stationarity_pairing
 from .base import Backend, checked_solve
 
@@ -172,13 +177,28 @@ def _operands(model: StateSpace, y, w):
         model.Q,
         opt(model.b),
         model.C,
-        model.R,
+        _r_operand(model.R),
         opt(model.d),
         opt(model.x0_mean),
         opt(model.x0_cov),
         y,
         w,
     )
+
+
+def _r_operand(R):
+    """R as the kernel reads it: the variances of a DiagonalNoise, else the dense blocks."""
+    return R.variances if isinstance(R, DiagonalNoise) else R
+
+
+def _r_attribute(model: StateSpace) -> dict:
+    """The kernel's r_diagonal attribute: 1 when R comes as variances (p,) or (T, p)."""
+    return dict(r_diagonal=np.int32(isinstance(model.R, DiagonalNoise)))
+
+
+def _as_model_form(model: StateSpace, gR):
+    """The kernel's R gradient in the form of model.R (a DiagonalNoise of variances' gradients)."""
+    return DiagonalNoise(gR) if isinstance(model.R, DiagonalNoise) else gR
 
 
 def _sds(shape, dtype):
@@ -250,7 +270,8 @@ def _kernel_forward(model: StateSpace, y, w):
     ) + tuple(_sds(s, dt) for s in _lo_shapes(T, n, m_blocks, dt))
     x, Linv, M, subT, ok, Linv_lo, M_lo, subT_lo, x_lo = jax.ffi.ffi_call(
         "kalmax_cpu_forward", out, vmap_method=_VMAP
-    )(*_operands(model, y, w), **settings_attributes(dt, n, flat_prior=model.x0_cov is None))
+    )(*_operands(model, y, w), **settings_attributes(dt, n, flat_prior=model.x0_cov is None),
+      **_r_attribute(model))
     return x, CpuFactor(Linv=Linv, M=M, subT=subT, ok=ok != 0, Linv_lo=Linv_lo, M_lo=M_lo, subT_lo=subT_lo,
                         x_lo=x_lo)
 
@@ -304,7 +325,7 @@ def _kernel_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
     ops = _operands(model, y, w)
     out = tuple(_sds(o.shape, o.dtype) for o in ops[:9])
     gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = jax.ffi.ffi_call("kalmax_cpu_gradients", out, vmap_method=_VMAP)(
-        *_factor_operands(factor), x, factor.x_lo, x_bar.astype(x.dtype), *ops
+        *_factor_operands(factor), x, factor.x_lo, x_bar.astype(x.dtype), *ops, **_r_attribute(model)
     )
 
     def keep(g, field):
@@ -314,7 +335,7 @@ def _kernel_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
         A=gA,
         C=gC,
         Q=gQ,
-        R=gR,
+        R=_as_model_form(model, gR),
         b=keep(gb, "b"),
         d=keep(gd, "d"),
         x0_mean=keep(gm0, "x0_mean"),
@@ -327,13 +348,13 @@ def _kernel_log_likelihood(model: StateSpace, y, w, x, factor: CpuFactor):
     ops = _operands(model, y, w)
     out = (_sds((), y.dtype),) + tuple(_sds(o.shape, o.dtype) for o in ops[:9])
     val, gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = jax.ffi.ffi_call("kalmax_cpu_loglik", out, vmap_method=_VMAP)(
-        *_factor_operands(factor), x, factor.x_lo, *ops
+        *_factor_operands(factor), x, factor.x_lo, *ops, **_r_attribute(model)
     )
 
     def keep(g, field):
         return None if getattr(model, field) is None else g
 
-    model_bar = StateSpace(A=gA, C=gC, Q=gQ, R=gR, b=keep(gb, "b"), d=keep(gd, "d"),
+    model_bar = StateSpace(A=gA, C=gC, Q=gQ, R=_as_model_form(model, gR), b=keep(gb, "b"), d=keep(gd, "d"),
                            x0_mean=keep(gm0, "x0_mean"), x0_cov=keep(gP0, "x0_cov"))
     return val, model_bar, gy
 

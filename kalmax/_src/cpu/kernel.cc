@@ -29,6 +29,11 @@
 // the batch shape is read from the first output, and every input's leading
 // dimension is either that size or 1 (broadcast, never copied).
 //
+// R has a second form, chosen by the int32 attribute r_diagonal of the
+// forward, gradient and log-likelihood calls: its p variances per block,
+// (p,) or (T, p), for a diagonal R (and R̄ then has that shape too). An
+// attribute, not the rank, because (T, p) and (p, p) look alike when T = p.
+//
 // float32 calls compute in double (widen.h): the operands are converted on
 // entry, every result is rounded to float32 once at the end, and the factor
 // keeps double precision as two float32 arrays, hi and lo, passed after ok
@@ -165,10 +170,13 @@ ffi::Error classify(const Operand& op, const char* name, const std::vector<int64
 struct ModelOperands {
   Operand A, Q, b, C, R, d, m0, P0, y, w;
   Kind kA, kQ, kb, kC, kR, kd, km0, kP0;
+  bool R_diag = false;  // R given by its variances: (p,) or (T, p)
   int T = 0, n = 0, p = 0;
 };
 
-ffi::Error describe_model(const ffi::AnyBuffer* in, const BatchShape& bs, int T, int n,
+// r_diagonal: the r_diagonal attribute of the call (R as variances, (p,) or
+// (T, p)); the rank alone cannot tell (T, p) from (p, p) when T = p.
+ffi::Error describe_model(const ffi::AnyBuffer* in, const BatchShape& bs, int T, int n, int32_t r_diagonal,
                           ModelOperands* mo) {
   const char* names[] = {"A", "Q", "b", "C", "R", "d", "x0_mean", "x0_cov", "y", "w"};
   Operand* ops[] = {&mo->A, &mo->Q, &mo->b, &mo->C, &mo->R, &mo->d, &mo->m0, &mo->P0, &mo->y, &mo->w};
@@ -186,7 +194,11 @@ ffi::Error describe_model(const ffi::AnyBuffer* in, const BatchShape& bs, int T,
   KALMAX_RETURN_IF_ERROR(classify(mo->Q, "Q", {N, N}, {T1, N, N}, false, &mo->kQ));
   KALMAX_RETURN_IF_ERROR(classify(mo->b, "b", {N}, {T1, N}, true, &mo->kb));
   KALMAX_RETURN_IF_ERROR(classify(mo->C, "C", {P, N}, {T, P, N}, false, &mo->kC));
-  KALMAX_RETURN_IF_ERROR(classify(mo->R, "R", {P, P}, {T, P, P}, false, &mo->kR));
+  mo->R_diag = r_diagonal != 0;
+  if (mo->R_diag)
+    KALMAX_RETURN_IF_ERROR(classify(mo->R, "R (diagonal)", {P}, {T, P}, false, &mo->kR));
+  else
+    KALMAX_RETURN_IF_ERROR(classify(mo->R, "R", {P, P}, {T, P, P}, false, &mo->kR));
   KALMAX_RETURN_IF_ERROR(classify(mo->d, "d", {P}, {T, P}, true, &mo->kd));
   KALMAX_RETURN_IF_ERROR(classify(mo->m0, "x0_mean", {N}, {}, true, &mo->km0));
   KALMAX_RETURN_IF_ERROR(classify(mo->P0, "x0_cov", {N, N}, {}, true, &mo->kP0));
@@ -225,6 +237,7 @@ Trajectory<Real> trajectory(const ModelOperands& mo, const BatchShape& bs, int64
   P.b_tv = mo.kb == Kind::kVarying;
   P.C_tv = mo.kC == Kind::kVarying;
   P.R_tv = mo.kR == Kind::kVarying;
+  P.R_diag = mo.R_diag;
   P.d_tv = mo.kd == Kind::kVarying;
   return P;
 }
@@ -236,7 +249,7 @@ template <class Real>
 class PatternCaches {
  public:
   explicit PatternCaches(const ModelOperands& mo)
-      : usable_(mo.kC == Kind::kInvariant && mo.kR == Kind::kInvariant) {}
+      : usable_(mo.kC == Kind::kInvariant && mo.kR == Kind::kInvariant), diag_(mo.R_diag) {}
 
   PatternCache<Real>* get(const Trajectory<Real>& P) { return get(P, P.C, P.R); }
 
@@ -246,7 +259,7 @@ class PatternCaches {
   PatternCache<Real>* get(const Trajectory<Real>& P, const void* keyC, const void* keyR) {
     if (!usable_) return nullptr;
     if (!cache_ || keyC != keyC_ || keyR != keyR_ || P.C != C_ || P.R != R_) {
-      cache_.reset(new PatternCache<Real>(P.C, P.R, P.n, P.p));
+      cache_.reset(new PatternCache<Real>(P.C, P.R, P.n, P.p, diag_));
       C_ = P.C;
       R_ = P.R;
       keyC_ = keyC;
@@ -257,6 +270,7 @@ class PatternCaches {
 
  private:
   bool usable_;
+  bool diag_;
   std::unique_ptr<PatternCache<Real>> cache_;
   const Real* C_ = nullptr;
   const Real* R_ = nullptr;
@@ -364,7 +378,7 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
                        ffi::Result<ffi::AnyBuffer> Linv_lo, ffi::Result<ffi::AnyBuffer> M_lo,
                        ffi::Result<ffi::AnyBuffer> subT_lo, ffi::Result<ffi::AnyBuffer> x_lo,
                        double pivot_tolerance, double trusted_error, int32_t max_refine_steps,
-                       double stall_ratio) {
+                       double stall_ratio, int32_t r_diagonal) {
   const SolveSettings settings{pivot_tolerance, trusted_error, max_refine_steps, stall_ratio};
   if (!(pivot_tolerance >= 0) || !(trusted_error >= 0) || max_refine_steps < 1 || !(stall_ratio > 0))
     return invalid("invalid solve settings");
@@ -375,7 +389,7 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
   const int n = static_cast<int>(xd[xd.size() - 1]);
   const ffi::AnyBuffer in[] = {A, Q, b, C, R, d, m0, P0, y, w};
   ModelOperands mo;
-  KALMAX_RETURN_IF_ERROR(describe_model(in, bs, T, n, &mo));
+  KALMAX_RETURN_IF_ERROR(describe_model(in, bs, T, n, r_diagonal, &mo));
   if (x->element_type() != y.element_type() || Linv->element_type() != y.element_type() ||
       M->element_type() != y.element_type() || subT->element_type() != y.element_type())
     return invalid("outputs must have the dtype of y");
@@ -618,7 +632,7 @@ struct GradientOperands {
 ffi::Error describe_gradient_operands(ffi::AnyBuffer::Dimensions out_dims, const ffi::AnyBuffer& x,
                                       const ffi::AnyBuffer& x_lo, const ffi::AnyBuffer* xbar,
                                       const FactorBuffers& factor, const ffi::AnyBuffer (&model)[10],
-                                      GradientOperands* go) {
+                                      int32_t r_diagonal, GradientOperands* go) {
   KALMAX_RETURN_IF_ERROR(batch_from_output(out_dims, 2, &go->bs));
   KALMAX_RETURN_IF_ERROR(describe(x, "x", go->bs, &go->x));
   if (xbar != nullptr) {
@@ -632,7 +646,7 @@ ffi::Error describe_gradient_operands(ffi::AnyBuffer::Dimensions out_dims, const
   go->T = static_cast<int>(go->x.core[0]);
   go->n = static_cast<int>(go->x.core[1]);
   KALMAX_RETURN_IF_ERROR(describe_factor(factor, go->bs, go->T, go->n, dt, &go->fo));
-  KALMAX_RETURN_IF_ERROR(describe_model(model, go->bs, go->T, go->n, &go->mo));
+  KALMAX_RETURN_IF_ERROR(describe_model(model, go->bs, go->T, go->n, r_diagonal, &go->mo));
   if (go->fo.compact != (go->mo.kA == Kind::kInvariant && go->mo.kQ == Kind::kInvariant) && go->T > 1)
     return invalid("factor form does not match the model");
   return ffi::Error::Success();
@@ -671,7 +685,8 @@ class GradientOutputs {
   GradientOutputs(GradientResults outs, const ModelOperands& mo, int n)
       : kinds_{mo.kA, mo.kQ, mo.kb, mo.kC, mo.kR, mo.kd, mo.km0, mo.kP0} {
     const std::size_t p = mo.p, nn = n;
-    const std::size_t items[] = {nn * nn, nn * nn, nn, p * nn, p * p, p, nn, nn * nn};
+    const std::size_t items[] = {nn * nn, nn * nn, nn, p * nn, mo.R_diag ? p : p * p, p, nn, nn * nn};
+    r_diag_ = mo.R_diag;
     std::copy(items, items + kFields, items_);
     const auto ins = gradient_shapes(mo);
     for (int f = 0; f < kModelGradients; ++f) {
@@ -691,6 +706,7 @@ class GradientOutputs {
       sinks[f]->tv = kinds_[f] == Kind::kVarying;
       sinks[f]->item = items_[f];
     }
+    G.R.diagonal = r_diag_;
     G.y = double_out(dst_[kFields], buf_[kFields], sizes_[kFields]);
     return G;
   }
@@ -706,6 +722,7 @@ class GradientOutputs {
  private:
   static constexpr int kFields = kModelGradients - 1;  // the model's; ȳ last
   Kind kinds_[kFields];
+  bool r_diag_ = false;
   std::size_t items_[kFields];
   Real* base_[kModelGradients];
   int64_t sizes_[kModelGradients];
@@ -723,11 +740,11 @@ ffi::Error GradientsImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer s
                          ffi::Result<ffi::AnyBuffer> gb, ffi::Result<ffi::AnyBuffer> gC,
                          ffi::Result<ffi::AnyBuffer> gR, ffi::Result<ffi::AnyBuffer> gd,
                          ffi::Result<ffi::AnyBuffer> gm0, ffi::Result<ffi::AnyBuffer> gP0,
-                         ffi::Result<ffi::AnyBuffer> gy) {
+                         ffi::Result<ffi::AnyBuffer> gy, int32_t r_diagonal) {
   const ffi::AnyBuffer model[] = {A, Q, b, C, R, d, m0, P0, y, w};
   GradientOperands go;
   KALMAX_RETURN_IF_ERROR(describe_gradient_operands(gy->dimensions(), x, x_lo, &xbar,
-                                                    {Linv, M, subT, ok, Linv_lo, M_lo, subT_lo}, model, &go));
+                                                    {Linv, M, subT, ok, Linv_lo, M_lo, subT_lo}, model, r_diagonal, &go));
   if (x.element_type() != y.element_type() || xbar.element_type() != y.element_type())
     return invalid("operands must share one dtype");
   ffi::Result<ffi::AnyBuffer>* const outs[] = {&gA, &gQ, &gb, &gC, &gR, &gd, &gm0, &gP0, &gy};
@@ -819,11 +836,11 @@ ffi::Error LoglikImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer subT
                       ffi::Result<ffi::AnyBuffer> gQ, ffi::Result<ffi::AnyBuffer> gb,
                       ffi::Result<ffi::AnyBuffer> gC, ffi::Result<ffi::AnyBuffer> gR,
                       ffi::Result<ffi::AnyBuffer> gd, ffi::Result<ffi::AnyBuffer> gm0,
-                      ffi::Result<ffi::AnyBuffer> gP0, ffi::Result<ffi::AnyBuffer> gy) {
+                      ffi::Result<ffi::AnyBuffer> gP0, ffi::Result<ffi::AnyBuffer> gy, int32_t r_diagonal) {
   const ffi::AnyBuffer model[] = {A, Q, b, C, R, d, m0, P0, y, w};
   GradientOperands go;
   KALMAX_RETURN_IF_ERROR(describe_gradient_operands(gy->dimensions(), x, x_lo, nullptr,
-                                                    {Linv, M, subT, ok, Linv_lo, M_lo, subT_lo}, model, &go));
+                                                    {Linv, M, subT, ok, Linv_lo, M_lo, subT_lo}, model, r_diagonal, &go));
   if (x.element_type() != y.element_type() || value->element_type() != y.element_type() ||
       static_cast<int64_t>(value->element_count()) != go.bs.count)
     return invalid("value must be one scalar of y's dtype per trajectory");
@@ -926,7 +943,9 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuForward, kc::ForwardImpl,
                                   .Attr<double>("pivot_tolerance")
                                   .Attr<double>("trusted_error")
                                   .Attr<int32_t>("max_refine_steps")
-                                  .Attr<double>("stall_ratio"));
+                                  .Attr<double>("stall_ratio")
+                                  // R given by its variances ((p,) or (T, p)): set from the model's form.
+                                  .Attr<int32_t>("r_diagonal"));
 
 XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuSolve, kc::SolveImpl,
                               kc::bind_factor(ffi::Ffi::Bind())
@@ -938,7 +957,8 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuGradients, kc::GradientsImpl,
                               kc::bind_model_gradients(kc::bind_model(kc::bind_factor(ffi::Ffi::Bind())
                                                                           .Arg<ffi::AnyBuffer>()      // x
                                                                           .Arg<ffi::AnyBuffer>()      // x_lo
-                                                                          .Arg<ffi::AnyBuffer>())));  // x_bar
+                                                                          .Arg<ffi::AnyBuffer>()))  // x_bar
+                                  .Attr<int32_t>("r_diagonal"));
 
 XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuBand, kc::BandImpl,
                               kc::bind_factor(ffi::Ffi::Bind())
@@ -950,4 +970,5 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuLoglik, kc::LoglikImpl,
                               kc::bind_model_gradients(kc::bind_model(kc::bind_factor(ffi::Ffi::Bind())
                                                                           .Arg<ffi::AnyBuffer>()   // x
                                                                           .Arg<ffi::AnyBuffer>())  // x_lo
-                                                           .Ret<ffi::AnyBuffer>()));               // log p(y)
+                                                           .Ret<ffi::AnyBuffer>())  // log p(y)
+                                  .Attr<int32_t>("r_diagonal"));

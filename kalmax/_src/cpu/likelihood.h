@@ -230,6 +230,14 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
       Sk = m.memo->Rinv;
       Fm = m.memo->F;
       ldR = m.memo->logdet;
+    } else if (k > 0 && m.diag) {  // Lr holds √r_K: R_KK⁻¹ and F by scaling
+      fill(Rinv, std::size_t(k) * k, Real(0));
+      for (int a = 0; a < k; ++a) {
+        const Real ri = Real(1) / (Lr[a] * Lr[a]);
+        ldR += Real(2) * std::log(Lr[a]);
+        Rinv[a * k + a] = ri;
+        for (int j = 0; j < n; ++j) Fk[a * n + j] = ri * m.C_row(a)[j];
+      }
     } else if (k > 0) {  // Lr holds the factor of R_KK
       ldR = cholesky_logdet(Lr, k);
       inverse_from_cholesky<Real, 0>(Rinv, Lr, k, cs);
@@ -243,10 +251,14 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
     if (k > 0) {
       n_obs += k;
       for (int a = 0; a < k; ++a) e[a] = m.residual(a, xt);
-      for (int a = 0; a < k; ++a) {
-        Real s = 0;
-        for (int c = 0; c < k; ++c) s += Sk[a * k + c] * e[c];
-        sigma[a] = s;
+      if (m.diag && m.memo == nullptr) {
+        for (int a = 0; a < k; ++a) sigma[a] = Sk[a * k + a] * e[a];
+      } else {
+        for (int a = 0; a < k; ++a) {
+          Real s = 0;
+          for (int c = 0; c < k; ++c) s += Sk[a * k + c] * e[c];
+          sigma[a] = s;
+        }
       }
       double je = 0;
       for (int a = 0; a < k; ++a) je += double(e[a]) * sigma[a];
@@ -265,7 +277,14 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
           for (int j = 0; j < n; ++j) row[j] += sigma[a] * xt[j] - FS[a * n + j];
         }
       });
-      G.R.add_at(t, [&](auto* g) {
+      if (G.R.diagonal) {  // only R̄_ii (dR = e_i e_iᵀ dr_i)
+        G.R.add_at(t, [&](auto* g) {
+          for (int a = 0; a < k; ++a) {
+            const Real fsf = dot<Real, NK>(FS + std::size_t(a) * n, Fm + std::size_t(a) * n, n);
+            g[K[a]] += Real(0.5) * (sigma[a] * sigma[a] + fsf - Sk[a * k + a]);
+          }
+        });
+      } else G.R.add_at(t, [&](auto* g) {
         for (int a = 0; a < k; ++a)
           for (int c = 0; c < k; ++c) {
             const Real fsf = dot<Real, NK>(FS + std::size_t(a) * n, Fm + std::size_t(c) * n, n);

@@ -13,6 +13,12 @@
 // array) which is the same as the masked R̃_t of the JAX path: R̃_t is a
 // permutation of blockdiag(R_KK, I) and the identity part meets only zero rows.
 //
+// Diagonal R (Trajectory::R_diag, R given by its p variances per step): R_KK
+// is diag(r_K), its Cholesky factor is diag(√r_K), and every product with the
+// factor is a scaling of rows: whitening C_K costs O(k n) instead of
+// O(k² n), S e is e/r, and the R gradient keeps only its diagonal
+// (dℓ/dr_i = R̄_ii, since dR = e_i e_iᵀ dr_i).
+//
 // Every precision-weighted product is a Gram matrix of whitened factors
 // (Lq⁻¹A, Lr⁻¹C_K, ...), so diagonal blocks are positive semi-definite by
 // construction.
@@ -53,12 +59,16 @@ struct Trajectory {
   const Real* y = nullptr;   // (T, p)
   const Real* w = nullptr;   // (T, p) 0/1 observation mask
   bool A_tv = false, Q_tv = false, b_tv = false, C_tv = false, R_tv = false, d_tv = false;
+  bool R_diag = false;  // R holds the p variances of a diagonal R per block, not p×p
+
+  // Elements in one block of R.
+  std::size_t R_item() const { return R_diag ? std::size_t(p) : std::size_t(p) * p; }
 
   const Real* At(int t) const { return A_tv ? A + std::size_t(t) * n * n : A; }
   const Real* Qt(int t) const { return Q_tv ? Q + std::size_t(t) * n * n : Q; }
   const Real* bt(int t) const { return b_tv ? b + std::size_t(t) * n : b; }
   const Real* Ct(int t) const { return C_tv ? C + std::size_t(t) * p * n : C; }
-  const Real* Rt(int t) const { return R_tv ? R + std::size_t(t) * p * p : R; }
+  const Real* Rt(int t) const { return R_tv ? R + std::size_t(t) * R_item() : R; }
   const Real* dt(int t) const { return d_tv ? d + std::size_t(t) * p : d; }
 };
 
@@ -151,7 +161,8 @@ inline int observed(const Real* w, int p, int* idx) {
 // d_K, the rows C_K and the block R_KK, as every pass over time reads them.
 // With a pattern cache (C and R time-invariant) the blocks of K's pattern
 // come memoised (`memo`: R_KK⁻¹, F = R_KK⁻¹C_K, G = C_KᵀR_KK⁻¹C_K, log|R_KK|);
-// otherwise (`memo` null) the caller's Lr holds the Cholesky factor of R_KK.
+// otherwise (`memo` null) the caller's Lr holds the Cholesky factor of R_KK:
+// k×k, or for a diagonal R (`diag`) only its k diagonal entries √r_K.
 // Each pass keeps its own arithmetic for the two cases: the memoised blocks
 // round differently from the per-step factor.
 template <class Real, int NK>
@@ -163,6 +174,7 @@ struct Measurement {
   const Real* y = nullptr;                    // y_t
   const Real* d = nullptr;                    // d_t (nullptr: no offset)
   const Real* C = nullptr;                    // C_t
+  bool diag = false;                          // R diagonal: Lr holds √r_K (k entries)
 
   // Row a of C_K.
   const Real* C_row(int a) const { return C + std::size_t(K[a]) * fixed<NK>(n); }
@@ -192,6 +204,8 @@ inline bool measurement_at(const Trajectory<Real>& P, int t, PatternCache<Real>*
   }
   m->K = idx;
   m->k = observed(w, p, idx);
+  m->diag = P.R_diag;
+  if (P.R_diag) return observed_sd(Lr, P.Rt(t), idx, m->k);
   return m->k == 0 || observed_cov_factor(Lr, P.Rt(t), p, idx, m->k, cs);
 }
 
@@ -379,8 +393,12 @@ bool refine_one(const Trajectory<Real>& P, const FactorView<Real>& F, Real* x, R
       if (m.memo != nullptr) {  // Cᵀ S e = Fᵀe with F = R_KK⁻¹C_K
         add_tmatvec<Real, NK>(rt, m.memo->F, e, m.k, n, Real(1));
       } else if (m.k > 0) {
-        lsolve_vec<Real, 0>(Lr, e, e, m.k);
-        ltsolve_vec_inplace<Real, 0>(Lr, e, m.k);  // S e on the observed entries
+        if (m.diag) {
+          for (int a = 0; a < m.k; ++a) e[a] /= Lr[a] * Lr[a];
+        } else {
+          lsolve_vec<Real, 0>(Lr, e, e, m.k);
+          ltsolve_vec_inplace<Real, 0>(Lr, e, m.k);  // S e on the observed entries
+        }
         for (int a = 0; a < m.k; ++a) {
           const Real* Crow = m.C_row(a);
           for (int j = 0; j < n; ++j) rt[j] += e[a] * Crow[j];
@@ -515,8 +533,13 @@ int forward_one(const Trajectory<Real>& P, Real* x, Real* Li, Real* M, Real* sub
       for (std::size_t i = 0; i < n2; ++i) H[i] += m.memo->G[i];
       add_tmatvec<Real, NK>(g, m.memo->F, ey, m.k, n, Real(1));
     } else if (m.k > 0) {  // with W = Lr⁻¹C_K: H_tt += WᵀW, g_t += Wᵀ(Lr⁻¹(y_K − d_K))
-      whiten_observed_rows<Real, NK>(WC, H, Lr, m.C, m.K, m.k, n);
-      lsolve_vec<Real, 0>(Lr, ey, ey, m.k);
+      if (m.diag) {
+        whiten_observed_rows_diagonal<Real, NK>(WC, H, Lr, m.C, m.K, m.k, n);
+        for (int a = 0; a < m.k; ++a) ey[a] /= Lr[a];
+      } else {
+        whiten_observed_rows<Real, NK>(WC, H, Lr, m.C, m.K, m.k, n);
+        lsolve_vec<Real, 0>(Lr, ey, ey, m.k);
+      }
       add_tmatvec<Real, NK>(g, WC, ey, m.k, n, Real(1));
     }
 
@@ -617,6 +640,7 @@ struct GradSink {
   Real* out = nullptr;    // output buffer (nullptr: field absent)
   double* acc = nullptr;  // accumulator when time-invariant
   bool tv = false;
+  bool diagonal = false;  // the field is a diagonal given by its entries (R only)
   std::size_t item = 0;   // elements per block
 
   bool present() const { return out != nullptr; }
@@ -703,7 +727,7 @@ class GradSinks {
     for (int f = 0; f < kFields; ++f) {
       GradSink<Real>& s = *sinks_[f];
       if (!s.present() || s.tv) continue;
-      if (f == kR || (f == kQ && symmetrise_Q)) {
+      if ((f == kR && !s.diagonal) || (f == kQ && symmetrise_Q)) {
         const int r = f == kQ ? n_ : p_;
         for (int i = 0; i < r; ++i)
           for (int j = 0; j < r; ++j)
@@ -931,7 +955,15 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
         sigma[a] = m.y[K[a]] - sx - (m.d ? m.d[K[a]] : Real(0));
         kappa[a] = su;
       }
-      spd_solve2<Real, 0>(Lr, sigma, kappa, k);
+      if (m.diag) {
+        for (int a = 0; a < k; ++a) {
+          const Real r = Lr[a] * Lr[a];
+          sigma[a] /= r;
+          kappa[a] /= r;
+        }
+      } else {
+        spd_solve2<Real, 0>(Lr, sigma, kappa, k);
+      }
     }
     if (k > 0) {
       Real* gy = G.y + std::size_t(t) * p;
@@ -943,7 +975,11 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
           for (int j = 0; j < n; ++j) row[j] += sa * ut[j] - ka * xt[j];
         }
       });
-      if (G.R.present()) {
+      if (G.R.present() && G.R.diagonal) {  // only R̄_ii = −κ_i σ_i
+        G.R.add_at(t, [&](auto* gR) {
+          for (int a = 0; a < k; ++a) gR[K[a]] -= kappa[a] * sigma[a];
+        });
+      } else if (G.R.present()) {
         if (G.R.tv) {
           Real* gR = G.R.out + std::size_t(t) * p * p;
           for (int a = 0; a < k; ++a)

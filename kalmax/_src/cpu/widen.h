@@ -104,12 +104,13 @@ class WideTrajectory {
     W.b_tv = P.b_tv;
     W.C_tv = P.C_tv;
     W.R_tv = P.R_tv;
+    W.R_diag = P.R_diag;
     W.d_tv = P.d_tv;
     W.A = take(A_, P.A, (P.A_tv ? T1 : 1) * n * n);
     W.Q = take(Q_, P.Q, (P.Q_tv ? T1 : 1) * n * n);
     W.b = take(b_, P.b, (P.b_tv ? T1 : 1) * n);
     W.C = take(C_, P.C, (P.C_tv ? T : 1) * p * n);
-    W.R = take(R_, P.R, (P.R_tv ? T : 1) * p * p);
+    W.R = take(R_, P.R, (P.R_tv ? T : 1) * P.R_item());
     W.d = take(d_, P.d, (P.d_tv ? T : 1) * p);
     W.m0 = take(m0_, P.m0, n);
     W.P0 = take(P0_, P.P0, n * n);
