@@ -185,8 +185,10 @@ def build_parser() -> argparse.ArgumentParser:
         help="fit a model to a table and write the smoothed table, the model file and a report",
         description=(
             "Fit a continuous-time model to DATA, then smooth and impute every measured column.\n\n"
-            "A fraction of the observed cells (--test-fraction) is hidden from the fit and used to\n"
-            "report the held-out error of the starting model and of the fitted model.\n\n"
+            "A fraction (--test-fraction) of blocks of --test-block consecutive rows is hidden from the\n"
+            "fit as gaps and used to report the held-out error of the starting model and of the fitted\n"
+            "model. A fit that makes it worse prints a warning on stderr (also recorded in the model\n"
+            "file); the outputs are written and the exit code stays 0.\n\n"
             "Model kinds (--model):\n" + _kinds_text() + "\n\n" + _components_text() + "\n\n"
             "Each --measure names a column and, after '=', the state it measures; without '=' the\n"
             "k-th such column measures the k-th position/level. Example, positions in two axes plus a\n"
@@ -239,8 +241,9 @@ def build_parser() -> argparse.ArgumentParser:
     h.add_argument("--learning-rate", type=float, default=0.1, metavar="LR",
                    help="Adam step size on the log-parameters (default: %(default)s)")
     h.add_argument("--test-fraction", type=float, default=0.2, metavar="F",
-                   help="fraction of observed cells hidden from the fit and used to report the held-out "
-                        "error, 0 to use everything for fitting (default: %(default)s)")
+                   help="fraction of the --test-block blocks (or of the observed cells, with --test-block "
+                        "cells) hidden from the fit and used to report the held-out error, 0 to use everything "
+                        "for fitting (default: %(default)s)")
     h.add_argument("--test-block", default="10", metavar="ROWS",
                    help="hold out whole blocks of this many consecutive rows (every measured column of them), "
                         "both for the reported held-out error and for the folds of --objective holdout, so the "
