@@ -172,3 +172,19 @@ def test_values_outside_the_transform_are_refused_without_output(tmp_path, capsy
     code, _, err = cli(["apply", "v3.json", "bad.csv"], tmp_path, capsys)
     assert code == 4 and "version 4" in err
     assert snapshot(tmp_path) == dict(before, **{"v3.json": (tmp_path / "v3.json").read_bytes()})
+
+
+def test_transforms_are_their_textbook_functions_and_invert():
+    from kalmax._src.tools import transforms
+
+    y = np.array([[0.02, 0.5, 3.0], [0.5, 0.97, 0.0], [np.nan, 0.3, 12.0]])
+    cols = ("a", "b", "c")
+    pairs = (("a", "log"), ("b", "logit"), ("c", "log1p"))
+    x = transforms.forward(y, cols, pairs)
+    with np.errstate(invalid="ignore"):
+        want = np.stack([np.log(y[:, 0]), np.log(y[:, 1] / (1 - y[:, 1])), np.log(1 + y[:, 2])], axis=1)
+    np.testing.assert_allclose(x, want, rtol=1e-12)
+    np.testing.assert_allclose(transforms.inverse(x, cols, pairs), y, rtol=1e-12)
+    # Monotone: interval ends map to interval ends, inside the range.
+    lo, hi = transforms.inverse(x - 50.0, cols, pairs), transforms.inverse(x + 50.0, cols, pairs)
+    assert np.all(lo[:2, 0] >= 0) and np.all(lo[:, 1] >= 0) and np.all(hi[:, 1] <= 1) and np.all(lo[:, 2] >= -1)
