@@ -91,7 +91,8 @@ def forward(y, columns, transforms: Transforms, *, source="DATA", times=None) ->
         if bad.size:
             i = int(bad[0])
             when = "" if times is None else f" (time {times[i]})"
-            raise DataError(f"{source}: column {col!r} holds {v[i]:g} on data row {i + 1}{when}, but --transform {col}={name} needs values {words}; {bad.size} value(s) "
+            raise DataError(f"{source}: column {col!r} holds {v[i]:g} on data row {i + 1}{when}, but "
+                            f"--transform {col}={name} needs values {words}; {bad.size} value(s) "
                             "are outside. Drop or correct them, or choose another transform.")
         with np.errstate(divide="ignore", invalid="ignore"):
             y[:, j] = np.where(observed, g(np.where(observed, v, 0.5)), np.nan)
