@@ -185,8 +185,10 @@ def build_parser() -> argparse.ArgumentParser:
         help="fit a model to a table and write the smoothed table, the model file and a report",
         description=(
             "Fit a continuous-time model to DATA, then smooth and impute every measured column.\n\n"
-            "A fraction of the observed cells (--test-fraction) is hidden from the fit and used to\n"
-            "report the held-out error of the starting model and of the fitted model.\n\n"
+            "A fraction (--test-fraction) of blocks of --test-block consecutive rows is hidden from the\n"
+            "fit as gaps and used to report the held-out error of the starting model and of the fitted\n"
+            "model. A fit that makes it worse prints a warning on stderr (also recorded in the model\n"
+            "file); the outputs are written and the exit code stays 0.\n\n"
             "Model kinds (--model):\n" + _kinds_text() + "\n\n" + _components_text() + "\n\n"
             "Each --measure names a column and, after '=', the state it measures; without '=' the\n"
             "k-th such column measures the k-th position/level. Example, positions in two axes plus a\n"
@@ -225,6 +227,11 @@ def build_parser() -> argparse.ArgumentParser:
                         "variance)")
     g.add_argument("--fix", action="append", default=[], metavar="NAME",
                    help="keep a parameter at its starting value (a process parameter name, or noise)")
+    g.add_argument("--transform", action="append", default=[], metavar="COL=NAME",
+                   help="model column COL on a transformed scale: log (values > 0), log1p (values > -1) or logit "
+                        "(values in (0, 1)); repeat per column. Intervals and forecasts are transformed back, so "
+                        "they stay in range; COL_smoothed is then the back-transformed median, not the mean. "
+                        "Saved in the model file (kalmax apply uses it)")
     h = fit.add_argument_group("how to fit")
     h.add_argument("--objective", choices=("likelihood", "holdout"), default="likelihood",
                    help="likelihood: maximise the exact likelihood of the training cells (default). "
@@ -234,8 +241,15 @@ def build_parser() -> argparse.ArgumentParser:
     h.add_argument("--learning-rate", type=float, default=0.1, metavar="LR",
                    help="Adam step size on the log-parameters (default: %(default)s)")
     h.add_argument("--test-fraction", type=float, default=0.2, metavar="F",
-                   help="fraction of observed cells hidden from the fit and used to report the held-out "
-                        "error, 0 to use everything for fitting (default: %(default)s)")
+                   help="fraction of the --test-block blocks (or of the observed cells, with --test-block "
+                        "cells) hidden from the fit and used to report the held-out error, 0 to use everything "
+                        "for fitting (default: %(default)s)")
+    h.add_argument("--test-block", default="10", metavar="ROWS",
+                   help="hold out whole blocks of this many consecutive rows (every measured column of them), "
+                        "both for the reported held-out error and for the folds of --objective holdout, so the "
+                        "error is that of bridging a gap of that length; 'cells' holds out random single cells "
+                        "instead, which have measured neighbours on both sides and so mostly test interpolation "
+                        "across one step (default: %(default)s)")
     h.add_argument("--folds", type=int, default=4, metavar="K",
                    help="cross-validation folds for --objective holdout (default: %(default)s)")
     h.add_argument("--seed", type=int, default=0, help="seed of the random held-out choices (default: %(default)s)")
@@ -334,6 +348,34 @@ def _table_for(args, spec, series, smoothing, test_mask=None):
 
     return apply_workflow.output_table(spec, series, smoothing, level=args.level, with_states=args.with_states,
                                        test_mask=test_mask)
+
+
+def _test_block(args):
+    """The --test-block length in rows, or None for 'cells' (UsageError otherwise)."""
+    text = str(args.test_block).strip().lower()
+    if text == "cells":
+        return None
+    try:
+        rows = int(text)
+    except ValueError:
+        rows = 0
+    if rows < 1:
+        raise UsageError(f"--test-block must be a whole number of rows >= 1 or 'cells'; got {args.test_block!r}.")
+    return rows
+
+
+def _transformed(args, natural, columns, stored=()):
+    """(transforms, series on the transformed scale) of ``natural``: --transform, else the ``stored`` ones."""
+    from ._src.tools import transforms
+
+    given = getattr(args, "transform", None)  # a fit option; apply uses the model file's
+    chosen = transforms.parse(given, columns) if given else tuple(stored)
+    if given and stored and chosen != tuple(stored):
+        raise UsageError("--transform contradicts the transforms of the --start model file; drop one of them.")
+    if not chosen:
+        return chosen, natural
+    y = transforms.forward(natural.y, columns, chosen, source=str(args.data), times=natural.times_raw)
+    return chosen, natural._replace(y=y)
 
 
 def _time_pattern(args, stored=None):
@@ -490,6 +532,8 @@ def cmd_fit(args) -> int:
         series = _read(args, start.time_column, start.columns, start.time_format, time_unit=time_unit,
                        numeric_time_unit=numeric_unit, time_pattern=_time_pattern(args, start.time_pattern),
                        inputs=start.input_columns())
+        natural = series
+        chosen, series = _transformed(args, natural, start.columns, start.transforms)
         spec = start
     elif args.components is not None:
         missing = [o for o, v in (("--time", args.time), ("--measure", args.measure)) if not v]
@@ -510,6 +554,8 @@ def cmd_fit(args) -> int:
         series = _read(args, args.time, cols, time_unit=time_unit, numeric_time_unit=numeric_unit,
                        time_pattern=_time_pattern(args), inputs=composed.input_columns(drafts),
                        inputs_option="--components")
+        natural = series
+        chosen, series = _transformed(args, natural, cols)
         try:
             spec = starting_values.composed_spec(drafts, args.time, cols, reads, series)
         except ValueError as e:
@@ -528,8 +574,10 @@ def cmd_fit(args) -> int:
             raise UsageError(f"--measure: {e}") from None
         series = _read(args, args.time, cols, time_unit=time_unit, numeric_time_unit=numeric_unit,
                        time_pattern=_time_pattern(args))
+        natural = series
+        chosen, series = _transformed(args, natural, cols)
         spec = starting_values.default_spec(args.model, dims, args.time, cols, states, series)
-    spec = spec.replace(time_unit=series.unit, time_pattern=series.clock.pattern,
+    spec = spec.replace(transforms=chosen, time_unit=series.unit, time_pattern=series.clock.pattern,
                         numeric_time_unit=numeric_unit if series.time_format == "number" else None)
     if series.time_format == "iso8601" and start is None and args.time_unit is None:
         step = float(np.median(np.diff(series.t)))
@@ -537,7 +585,8 @@ def cmd_fit(args) -> int:
         if hint:
             _say(args, f"Note: the rates are per second; the typical step is {step:.4g} s, so --time-unit {hint} "
                        "may give more readable numbers.")
-    out_series = _with_forecast(args, series, forecast_steps, spec)  # before the fit: a bad step fails fast
+    out_natural = _with_forecast(args, natural, forecast_steps, spec)  # before the fit: a bad step fails fast
+    out_series = out_natural._replace(y=np.concatenate([series.y, out_natural.y[len(series.y):]]))
     spec = apply_settings(spec, args.set)
     allowed = spec.free_names()
     bad = [f for f in args.fix if f not in allowed]
@@ -545,8 +594,11 @@ def cmd_fit(args) -> int:
         raise UsageError(f"--fix {bad[0]}: unknown parameter; this model has {', '.join(sorted(allowed))}.")
 
     mask = series.mask
-    if args.test_fraction > 0:
+    block = _test_block(args)
+    if args.test_fraction > 0 and block is None:
         test = np.asarray(splits.holdout_entries(mask, args.test_fraction, args.seed))
+    elif args.test_fraction > 0:
+        test = np.asarray(splits.holdout_blocks(mask, block, args.test_fraction, args.seed))
     else:
         test = np.zeros_like(mask)
     train = mask & ~test
@@ -560,9 +612,15 @@ def cmd_fit(args) -> int:
     if before is not None:
         _say(args, f"Held-out RMSE of the starting model: {_format_errors(before)}")
     _say(args, f"Fitting {spec.label} (objective: {args.objective}, {args.steps} steps) ...")
+    fold_block = block
+    if block is not None and args.objective == "holdout" and len(series.t) // block < args.folds:
+        # Fewer blocks than folds would leave folds empty and hide most of the record at once.
+        fold_block = max(1, len(series.t) // args.folds)
+        _say(args, f"Note: {len(series.t)} rows hold fewer than --folds {args.folds} blocks of {block} rows; the "
+                   f"cross-validation folds use blocks of {fold_block} rows.")
     outcome = fit_workflow.fit_spec(spec, series, train, objective=args.objective, steps=args.steps,
-                                learning_rate=args.learning_rate, fixed=tuple(args.fix), folds=args.folds,
-                                seed=args.seed, progress=not args.quiet)
+                                    learning_rate=args.learning_rate, fixed=tuple(args.fix), folds=args.folds,
+                                    seed=args.seed, progress=not args.quiet, block_length=fold_block)
     fitted = outcome.spec
     after = apply_workflow.heldout_rmse(fitted, series, test) if test.any() else None
     if after is not None:
@@ -571,20 +629,31 @@ def cmd_fit(args) -> int:
                    f"after {after['all']:.4g}")
     if outcome.history and not math.isfinite(outcome.history[-1]):
         raise FitError("the fit loss became non-finite.")
+    warnings = []
+    if after is not None and math.isfinite(before["all"]) and not after["all"] <= before["all"]:
+        warnings.append(f"fitting made the held-out error worse (RMSE in sd units: start {before['all']:.4g}, "
+                        f"fitted {after['all']:.4g}); the starting values predict the held-out cells better. "
+                        "Check --steps, --learning-rate, --objective and the model; the fitted model was "
+                        "written all the same.")
+    for w in warnings:  # on stderr even with --quiet: it concerns the result, not progress
+        print(f"kalmax: warning: {w}", file=sys.stderr, flush=True)
     fitted = fitted.replace(fit={
         "data": Path(args.data).name, "rows": int(len(series.t)), "objective": args.objective,
         "steps_run": outcome.steps_run, "best_step": outcome.best_step, "stop_reason": outcome.stop_reason,
         "final_loss": outcome.history[outcome.best_step] if outcome.history else None,
         "learning_rate": args.learning_rate, "fixed": list(args.fix), "test_fraction": args.test_fraction,
-        "seed": args.seed, "heldout_rmse_before": before, "heldout_rmse_after": after,
+        "seed": args.seed, "test_block": block if block is not None else "cells",
+        "heldout_rmse_before": before, "heldout_rmse_after": after, "warnings": warnings,
         **({"components": args.components} if args.components is not None else {}),
     })
     smoothing = apply_workflow.smooth_series(fitted, out_series)
-    names, cols = _table_for(args, fitted, out_series, smoothing, test if test.any() else None)
+    names, cols = _table_for(args, fitted, out_natural, smoothing, test if test.any() else None)
     summary = ""
     if after is not None:
         summary = (f"held-out RMSE (sd units): start {before['all']:.3g} -> fitted {after['all']:.3g}; "
                    f"objective {args.objective}, {outcome.steps_run} steps")
+        if warnings:
+            summary += "; WARNING: the fit made the held-out error worse"
     with AtomicOutputs() as out:
         tables.write_table(table_path, names, cols, out)
         model_file.save_model(model_path, fitted, out)
@@ -593,7 +662,8 @@ def cmd_fit(args) -> int:
                          test_mask=test if test.any() else None, history=outcome.history,
                          loss_label=("−log-likelihood per cell" if args.objective == "likelihood"
                                      else "CV squared error (sd units)"),
-                         title=f"kalmax fit: {fitted.label} on {Path(args.data).name}", summary=summary)
+                         title=f"kalmax fit: {fitted.label} on {Path(args.data).name}{_scale_note(fitted)}",
+                         summary=summary)
     def fmt(v):
         return "[" + ", ".join(f"{x:.4g}" for x in v) + "]" if isinstance(v, (list, tuple)) else f"{v:.4g}"
 
@@ -604,7 +674,16 @@ def cmd_fit(args) -> int:
     return EXIT_OK
 
 
+def _scale_note(spec) -> str:
+    """A report title's note of the columns drawn on a transformed scale (empty without transforms)."""
+    if not spec.transforms:
+        return ""
+    return " (drawn on the model's scale: " + ", ".join(f"{n}({c})" for c, n in spec.transforms) + ")"
+
+
 def cmd_apply(args) -> int:
+    import numpy as np
+
     from ._src.tools import apply_workflow, model_file, tables
     from ._src.tools.report import write_report
 
@@ -625,15 +704,17 @@ def cmd_apply(args) -> int:
                    numeric_time_unit=spec.numeric_time_unit, time_pattern=_time_pattern(args, spec.time_pattern),
                    inputs=spec.input_columns())
     _say(args, f"Read {args.data}: {len(series.t)} rows, {int(series.mask.sum())} observed cells.")
-    series = _with_forecast(args, series, forecast_steps, spec)
+    _, transformed = _transformed(args, series, spec.columns, spec.transforms)
+    natural = _with_forecast(args, series, forecast_steps, spec)
+    series = natural._replace(y=np.concatenate([transformed.y, natural.y[len(transformed.y):]]))
     smoothing = apply_workflow.smooth_series(spec, series)
-    names, cols = _table_for(args, spec, series, smoothing)
+    names, cols = _table_for(args, spec, natural, smoothing)
     with AtomicOutputs() as out:
         tables.write_table(table_path, names, cols, out)
         if report_path is not None:
             write_report(out.temp_for(report_path), spec, series, smoothing, level=args.level,
                          title=f"kalmax apply: {spec.label} model {Path(args.model_file).name} on "
-                               f"{Path(args.data).name}")
+                               f"{Path(args.data).name}{_scale_note(spec)}")
     _say(args, f"Wrote {table_path}" + (f", {report_path}" if report_path else ""))
     return EXIT_OK
 

@@ -350,8 +350,8 @@ def test_status_column_marks_the_held_out_cells_of_the_fit(tmp_path, capsys, rng
     those cells (a separate route) gives the held-out RMSE the model file records."""
     _, t, y, _ = _cv_case(tmp_path, rng)
     code, _, err = cli(["fit", "track.csv", "--time", "t", "--model", "constant-velocity", "--measure", "pos",
-                        "--measure", "vel=velocity0", "--steps", "3", "--test-fraction", "0.3", "--no-report",
-                        "-q", "--forecast", "2"], tmp_path, capsys)
+                        "--measure", "vel=velocity0", "--steps", "3", "--test-fraction", "0.3", "--test-block", "cells",
+                        "--no-report", "-q", "--forecast", "2"], tmp_path, capsys)
     assert code == 0, err
     header, rows = read_csv(tmp_path / "track_smoothed.csv")
     status = np.array([[row[5], row[10]] for row in rows])

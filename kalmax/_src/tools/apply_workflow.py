@@ -14,6 +14,7 @@ from ..smoothing import smooth
 from .errors import DataError, FitError
 from .series import Series, column_scales
 from .spec import ModelSpec
+from .transforms import inverse
 
 
 # One compiled function for every call (a new lambda per call would recompile each time).
@@ -49,11 +50,19 @@ def smooth_series(spec: ModelSpec, series: Series, mask=None) -> Smoothing:
 def heldout_rmse(spec: ModelSpec, series: Series, test_mask) -> Dict[str, float]:
     """Root mean squared error on the test entries, per column and overall ("all", in sd units).
 
-    The smoother sees every observed entry except the test entries.
+    The smoother sees every observed entry except the test entries. For a
+    model with column transforms (``series`` then on the transformed scale)
+    the errors are on the natural scale: measured value minus the
+    back-transformed smoothed median, and "all" divides them by the natural
+    scale's column sds.
     """
     mask = series.mask
     sm = smooth_series(spec, series, mask & ~test_mask)
-    err = np.where(test_mask, series.y - sm.mean, np.nan)
+    mean, y = sm.mean, series.y
+    if spec.transforms:
+        mean, y = inverse(mean, spec.columns, spec.transforms), inverse(y, spec.columns, spec.transforms)
+        series = series._replace(y=y)
+    err = np.where(test_mask, y - mean, np.nan)
     out = {}
     for j, c in enumerate(spec.columns):
         e = err[:, j][test_mask[:, j]]
@@ -100,16 +109,21 @@ def output_table(spec: ModelSpec, series: Series, sm: Smoothing, *, level: float
     """(names, columns) of the result table: time, then per measurement column
     the observed value, ``_smoothed`` mean, ``_lower``/``_upper`` interval bounds
     and ``_status`` (observed, imputed, held-out or forecast; see :func:`cell_status`).
-    Forecast rows (``series.forecast``) come last, with blank measurements."""
+    Forecast rows (``series.forecast``) come last, with blank measurements.
+
+    With column transforms, ``series`` holds the values as read and ``sm``
+    the smoothing on the transformed scale: the ends of the interval and the
+    mean (the median on that scale) are transformed back, see
+    ``tools/transforms.py``."""
     z = statistics.NormalDist().inv_cdf(0.5 + level / 2)
     names = [spec.time_column]
     cols = {spec.time_column: series.times_raw}
     status = cell_status(series, test_mask)
+    back = (lambda x: inverse(x, spec.columns, spec.transforms)) if spec.transforms else (lambda x: x)
+    lower, upper, centre = back(sm.mean - z * sm.sd), back(sm.mean + z * sm.sd), back(sm.mean)
     for j, c in enumerate(spec.columns):
-        lo = sm.mean[:, j] - z * sm.sd[:, j]
-        hi = sm.mean[:, j] + z * sm.sd[:, j]
-        for suffix, values in (("", series.y[:, j]), ("_smoothed", sm.mean[:, j]),
-                               ("_lower", lo), ("_upper", hi)):
+        for suffix, values in (("", series.y[:, j]), ("_smoothed", centre[:, j]),
+                               ("_lower", lower[:, j]), ("_upper", upper[:, j])):
             names.append(c + suffix)
             cols[c + suffix] = np.asarray(values, dtype=np.float64).tolist()
         names.append(c + "_status")

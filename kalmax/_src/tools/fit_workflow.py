@@ -25,14 +25,18 @@ class FitOutcome(NamedTuple):
 
 def fit_spec(spec: ModelSpec, series: Series, train_mask, *, objective: str = "likelihood",
              steps: int = 300, learning_rate: float = 0.05, fixed=(), folds: int = 4, seed: int = 0,
-             progress: bool = True) -> FitOutcome:
-    """Fit the free parameters of ``spec`` (in log space, Adam) to the training entries."""
+             progress: bool = True, block_length=None) -> FitOutcome:
+    """Fit the free parameters of ``spec`` (in log space, Adam) to the training entries.
+
+    ``block_length``: for objective "holdout", deal the cross-validation folds
+    as blocks of that many rows (None: single cells)."""
     import optax
 
     theta0 = {k: jnp.asarray(v) for k, v in spec.to_unconstrained(fixed).items()}
     if not theta0:  # everything fixed: nothing to fit
         return FitOutcome(spec, [], 0, 0)
-    loss, data = make_loss(spec, series, train_mask, objective, fixed=fixed, folds=folds, seed=seed)
+    loss, data = make_loss(spec, series, train_mask, objective, fixed=fixed, folds=folds, seed=seed,
+                           block_length=block_length)
     result = fit(loss, theta0, optax.adam(learning_rate), steps=steps, progress=progress, args=data)
     first = float(result.history["loss"][0])
     if not math.isfinite(first):
@@ -43,6 +47,7 @@ def fit_spec(spec: ModelSpec, series: Series, train_mask, *, objective: str = "l
     theta = {k: np.asarray(v) for k, v in result.params.items()}
     fitted = spec.with_unconstrained(theta)
     if objective == "holdout":
-        fitted = calibrate_scale(fitted, series, train_mask, folds=folds, seed=seed)
+        fitted = calibrate_scale(fitted, series, train_mask, folds=folds, seed=seed,
+                                 block_length=block_length)
     history = [float(h) for h in np.asarray(result.history["loss"])]
     return FitOutcome(fitted, history, int(result.best_step), int(result.steps_run), str(result.stop_reason))

@@ -25,8 +25,14 @@ Format versions:
    ``state``. The named kinds are written as in version 2 (no
    ``components`` entry).
 
-:func:`save_model` writes version 3; version-1 and version-2 files still
-load, with the units above (:func:`spec_to_dict` can still write them, for
+4. adds, in ``model``, ``transforms``: an object column → transform name
+   (``log``, ``log1p`` or ``logit``; ``kalmax fit --transform``), the
+   columns that the model describes on that scale. Written only for a model
+   with a transform; every other model is still written as version 3, so
+   readers of version 3 keep reading it.
+
+:func:`save_model` writes version 3, or 4 for a model with a transform;
+version-1 and version-2 files still load, with the units above (:func:`spec_to_dict` can still write them, for
 models they can hold).
 """
 
@@ -44,10 +50,12 @@ from .spec import COMPOSED, KINDS, ModelSpec
 from .time_units import MAX_PATTERN_CHARS, UNITS, unit_names
 
 FORMAT_NAME = "kalmax-model"
-FORMAT_VERSION = 3
-READABLE_VERSIONS = (1, 2, 3)
+FORMAT_VERSION = 3  # written for every model without a transform
+TRANSFORM_VERSION = 4  # written for a model with a transform
+READABLE_VERSIONS = (1, 2, 3, 4)
 V2_ENTRIES = ("time_unit", "numeric_time_unit", "time_pattern")  # model entries new in version 2
 V3_ENTRIES = ("components",)  # model entries new in version 3
+V4_ENTRIES = ("transforms",)  # model entries new in version 4
 PART_ENTRIES = ("name", "kind", "columns", "period", "harmonics", "inputs")
 MAX_MODEL_FILE_BYTES = 1 << 20  # 1 MiB: a model file holds a few hundred numbers
 MAX_DIMS = 16
@@ -65,7 +73,7 @@ def _part_to_dict(p: composed.Part) -> dict:
     return entry
 
 
-def spec_to_dict(spec: ModelSpec, version: int = FORMAT_VERSION) -> dict:
+def spec_to_dict(spec: ModelSpec, version: int = None) -> dict:
     """The JSON document of a :class:`ModelSpec` (see :func:`save_model`) in format ``version``.
 
     Versions 1 and 2 are written for the models they can hold (ValueError
@@ -74,8 +82,12 @@ def spec_to_dict(spec: ModelSpec, version: int = FORMAT_VERSION) -> dict:
     """
     from ..version import __version__
 
+    if version is None:
+        version = TRANSFORM_VERSION if spec.transforms else FORMAT_VERSION
     if version not in READABLE_VERSIONS:
         raise ValueError(f"version must be one of {READABLE_VERSIONS}; got {version!r}.")
+    if spec.transforms and version < 4:
+        raise ValueError(f"format version {version} cannot hold a column transform (version 4 and later).")
     if spec.is_composed and version < 3:
         raise ValueError(f"format version {version} cannot hold a composed model (version 3 and later).")
     v1_units = dict(time_unit="s" if spec.time_format == "iso8601" else None, numeric_time_unit=None,
@@ -118,6 +130,8 @@ def spec_to_dict(spec: ModelSpec, version: int = FORMAT_VERSION) -> dict:
         at = list(m).index("parameters")
         doc["model"] = dict(list(m.items())[:at] + [("components", [_part_to_dict(p) for p in spec.components])]
                             + list(m.items())[at:])
+    if spec.transforms:
+        doc["model"]["transforms"] = dict(spec.transforms)
     if version == 1:
         for k in V2_ENTRIES:
             del doc["model"][k]
@@ -220,6 +234,13 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
     _require(is_composed or "components" not in m,
              f"'components' belongs to kind {COMPOSED!r}, not to kind {kind!r}.", path)
     parts = _parts_from_doc(m.get("components"), path) if is_composed else ()
+    _require(version >= 4 or "transforms" not in m, f"'transforms' is an entry of format version 4, but the file "
+                                                    f"says format_version {version} (a reader of that version "
+                                                    "would ignore it).", path)
+    transforms = m.get("transforms", {})
+    _require(isinstance(transforms, dict) and len(transforms) <= MAX_COLUMNS
+             and all(isinstance(v, str) and len(v) <= MAX_NAME_CHARS for v in transforms.values()),
+             "'transforms' must be an object: measured column -> transform name.", path)
     if version == 1:
         extra = [k for k in V2_ENTRIES if k in m]
         _require(not extra, f"'{extra[0] if extra else ''}' is an entry of format version 2, but the file says "
@@ -252,6 +273,7 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
             jitter=float(jitter),
             fit=fit,
             components=parts,
+            transforms=tuple(transforms.items()),
             **units,
         )
         if is_composed and "states" in m:  # written for readers; if present, the components' states

@@ -106,7 +106,7 @@ def _axis_likelihood_loss(spec: ModelSpec, t, axes, y, mask, n_obs):
 
 
 def make_loss(spec: ModelSpec, series: Series, train_mask, objective: str, *,
-              fixed=(), folds: int = 4, seed: int = 0):
+              fixed=(), folds: int = 4, seed: int = 0, block_length=None):
     """(loss, data): loss(theta, *data) for ``theta`` = spec.to_unconstrained(fixed).
 
     The measurements and masks are returned separately so that they reach
@@ -117,7 +117,9 @@ def make_loss(spec: ModelSpec, series: Series, train_mask, objective: str, *,
     objective "likelihood": −log p(y_train) / N_train (exact, diffuse prior).
     objective "holdout": pooled K-fold cross-validated squared error of the
     smoother on the training entries, each column in units of its standard
-    deviation (so columns in different units weigh alike).
+    deviation (so columns in different units weigh alike). With
+    ``block_length`` the folds are dealt as whole blocks of that many rows
+    (``splits.holdout_folds``), so the error is that of bridging gaps.
     """
     t = np.asarray(series.t)
     y = jnp.asarray(np.where(train_mask, series.y, 0.0))
@@ -135,7 +137,7 @@ def make_loss(spec: ModelSpec, series: Series, train_mask, objective: str, *,
         return loss, (y, mask, inputs)
     if objective == "holdout":
         s = jnp.asarray(column_scales(series, train_mask))
-        holds = splits.holdout_folds(mask, folds, seed)
+        holds = splits.holdout_folds(mask, folds, seed, block_length=block_length)
 
         def loss(theta, y, mask, s, holds, inputs):
             model, ys = _scaled(spec.state_space(t, theta, inputs=inputs), y, s)
@@ -145,7 +147,8 @@ def make_loss(spec: ModelSpec, series: Series, train_mask, objective: str, *,
     raise ValueError(f"objective must be 'likelihood' or 'holdout'; got {objective!r}.")
 
 
-def calibrate_scale(spec: ModelSpec, series: Series, train_mask, *, folds: int = 4, seed: int = 0) -> ModelSpec:
+def calibrate_scale(spec: ModelSpec, series: Series, train_mask, *, folds: int = 4, seed: int = 0,
+                    block_length=None) -> ModelSpec:
     """Rescale every variance so that cross-validated standardised errors average 1.
 
     The smoothed means depend only on the *ratios* of the variances, so the
@@ -158,7 +161,7 @@ def calibrate_scale(spec: ModelSpec, series: Series, train_mask, *, folds: int =
     t = jnp.asarray(series.t)
     y = jnp.asarray(np.where(train_mask, series.y, 0.0))
     mask = jnp.asarray(train_mask)
-    holds = splits.holdout_folds(mask, folds, seed)
+    holds = splits.holdout_folds(mask, folds, seed, block_length=block_length)
     model = spec.state_space(t, inputs=series.inputs)
     R = np.diag(np.asarray(model.R))
 

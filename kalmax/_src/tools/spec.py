@@ -124,6 +124,9 @@ class ModelSpec:
         components: for kind ``"composed"``, the components
             (:class:`composed.Part`, each with the columns that read it);
             then ``measured`` holds what each column reads, ``NAME+NAME``.
+        transforms: ((column, name), ...): columns modelled on a transformed
+            scale (``log``, ``log1p``, ``logit``; see ``tools/transforms.py``).
+            The model's measurements, noise and parameters are on that scale.
     """
 
     kind: str
@@ -140,11 +143,15 @@ class ModelSpec:
     numeric_time_unit: Optional[str] = None
     time_pattern: Optional[str] = None
     components: Tuple[composed.Part, ...] = ()
+    transforms: Tuple[Tuple[str, str], ...] = ()
 
     def __post_init__(self):
         if self.time_format == "iso8601" and self.time_unit is None:
             object.__setattr__(self, "time_unit", "s")  # date-times: rates per second unless told otherwise
         check_spec(self)
+        from . import transforms as _transforms  # ValueError for a bad entry, like check_spec
+
+        object.__setattr__(self, "transforms", _transforms.check(self.transforms, self.columns))
 
     @property
     def kind_info(self) -> Kind:
