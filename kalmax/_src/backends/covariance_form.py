@@ -74,6 +74,7 @@ import jax
 import jax.numpy as jnp
 from jax import lax
 
+from .. import manual_axes
 from ..linalg import chol, lsolve, lsolve_vec, mT
 from ..model import StateSpace
 from ..normal_equations import masked_measurement_cov
@@ -157,7 +158,9 @@ def sweep(model: StateSpace, y, w):
         half_logdet_S = jnp.sum(jnp.log(jnp.diagonal(Ls)))
         return (m, P), (m, P, m_pred, P_pred, Kt, half_logdet_S, jnp.sum(z * z))
 
-    _, (m, P, m_pred, P_pred, Kt, half_ld_S, quad) = lax.scan(forward_step, (m0, P0), (A, b, Q, Ct, Rt, ey))
+    inputs = (A, b, Q, Ct, Rt, ey)
+    init = manual_axes.like((m0, P0), inputs)  # typed like the data under shard_map
+    _, (m, P, m_pred, P_pred, Kt, half_ld_S, quad) = lax.scan(forward_step, init, inputs)
 
     def backward_step(carry, xs):
         x_next, S_next = carry

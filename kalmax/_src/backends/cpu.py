@@ -74,11 +74,13 @@ float32 forward went from 0.144 s to 0.241 s and value-and-gradient from
 0.224 s to 0.32 s, against 0.19 s and 0.285 s for float64.
 
 Time-invariant fields are passed once (their rank tells the kernel); absent
-optional fields are passed as zero-size arrays. Every ``ffi_call`` uses
-``vmap_method="expand_dims"``: under ``jax.vmap`` the kernel receives the
-batched operands with a leading batch axis (size 1 where not batched) and loops
-over the batch itself, so ``vmap``, ``grad`` and ``vmap`` of ``grad`` all reach
-one kernel call.
+optional fields are passed as zero-size arrays. Every call goes through
+``kernel_calls.call``: under ``jax.vmap`` the kernel receives the batched
+operands with a leading batch axis (size 1 where not batched) and loops over
+the batch itself, so ``vmap``, ``grad`` and ``vmap`` of ``grad`` all reach one
+kernel call; on a batch sharded over devices each device runs its own
+trajectories; and under ``jax.shard_map`` the results are typed as varying
+like the operands.
 
 If the library is missing or refused (e.g. built against a newer XLA FFI than
 the installed jaxlib), ``LOAD_ERROR`` says why, the backend is registered as
@@ -102,15 +104,15 @@ from typing import NamedTuple, Optional
 
 import jax
 import jax.numpy as jnp
-
 import numpy as np
 
-from .. import blocktri, tolerances
+from .. import blocktri, manual_axes, tolerances
 from ..blocktri import BlockFactor
 from ..linalg import lsolve, mT
 from ..model import StateSpace
 from ..normal_equations import stationarity_pairing
 from .base import Backend, checked_solve
+from .kernel_calls import call as _call
 
 LIBRARY_STEM = "_cpu_kernel"
 # Where the build puts the library: kalmax/_src (setup.py, ``kalmax._src._cpu_kernel``).
@@ -124,9 +126,6 @@ _TARGETS = {
     "kalmax_cpu_band": "KalmaxCpuBand",
     "kalmax_cpu_loglik": "KalmaxCpuLoglik",
 }
-
-_VMAP = "expand_dims"  # the kernel loops over leading batch axes itself
-
 
 def library_path() -> Optional[str]:
     """Path of the compiled kernel library (in :data:`LIBRARY_DIR`), or None."""
@@ -248,9 +247,8 @@ def _kernel_forward(model: StateSpace, y, w):
         _sds((n, n), dt),
         _sds((), jnp.int32),
     ) + tuple(_sds(s, dt) for s in _lo_shapes(T, n, m_blocks, dt))
-    x, Linv, M, subT, ok, Linv_lo, M_lo, subT_lo, x_lo = jax.ffi.ffi_call(
-        "kalmax_cpu_forward", out, vmap_method=_VMAP
-    )(*_operands(model, y, w), **settings_attributes(dt, n, flat_prior=model.x0_cov is None))
+    x, Linv, M, subT, ok, Linv_lo, M_lo, subT_lo, x_lo = _call(
+        "kalmax_cpu_forward", out, *_operands(model, y, w), **settings_attributes(dt, n, flat_prior=model.x0_cov is None))
     return x, CpuFactor(Linv=Linv, M=M, subT=subT, ok=ok != 0, Linv_lo=Linv_lo, M_lo=M_lo, subT_lo=subT_lo,
                         x_lo=x_lo)
 
@@ -261,9 +259,8 @@ def _factor_operands(factor: CpuFactor):
 
 
 def _kernel_adjoint(factor: CpuFactor, v):
-    return jax.ffi.ffi_call("kalmax_cpu_solve", _sds(v.shape, v.dtype), vmap_method=_VMAP)(
-        *_factor_operands(factor), v
-    )
+    (x,) = _call("kalmax_cpu_solve", (_sds(v.shape, v.dtype),), *_factor_operands(factor), v)
+    return x
 
 
 def block_factor(factor: CpuFactor) -> BlockFactor:
@@ -293,7 +290,7 @@ def _kernel_band(factor: CpuFactor):
     T, n = factor.Linv.shape[-3], factor.Linv.shape[-1]
     dt = factor.Linv.dtype
     out = (_sds((T, n, n), dt), _sds((max(T - 1, 0), n, n), dt))
-    return jax.ffi.ffi_call("kalmax_cpu_band", out, vmap_method=_VMAP)(*_factor_operands(factor))
+    return _call("kalmax_cpu_band", out, *_factor_operands(factor))
 
 
 def _jax_band(factor: CpuFactor):
@@ -303,8 +300,8 @@ def _jax_band(factor: CpuFactor):
 def _kernel_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
     ops = _operands(model, y, w)
     out = tuple(_sds(o.shape, o.dtype) for o in ops[:9])
-    gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = jax.ffi.ffi_call("kalmax_cpu_gradients", out, vmap_method=_VMAP)(
-        *_factor_operands(factor), x, factor.x_lo, x_bar.astype(x.dtype), *ops
+    gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = _call(
+        "kalmax_cpu_gradients", out, *_factor_operands(factor), x, factor.x_lo, x_bar.astype(x.dtype), *ops
     )
 
     def keep(g, field):
@@ -326,8 +323,8 @@ def _kernel_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
 def _kernel_log_likelihood(model: StateSpace, y, w, x, factor: CpuFactor):
     ops = _operands(model, y, w)
     out = (_sds((), y.dtype),) + tuple(_sds(o.shape, o.dtype) for o in ops[:9])
-    val, gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = jax.ffi.ffi_call("kalmax_cpu_loglik", out, vmap_method=_VMAP)(
-        *_factor_operands(factor), x, factor.x_lo, *ops
+    val, gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = _call(
+        "kalmax_cpu_loglik", out, *_factor_operands(factor), x, factor.x_lo, *ops
     )
 
     def keep(g, field):
@@ -366,7 +363,7 @@ def _jax_adjoint(factor: CpuFactor, v):
 def _jax_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
     u = _jax_adjoint(factor, x_bar)
     _, pull = jax.vjp(lambda m, yy: stationarity_pairing(m, yy, w, x, u), model, y)
-    return pull(-jnp.ones((), x.dtype))
+    return pull(manual_axes.like(-jnp.ones((), x.dtype), x))
 
 
 def _differentiable(kernel_fn, jax_fn):
