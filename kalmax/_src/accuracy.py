@@ -38,7 +38,7 @@ from __future__ import annotations
 import jax
 import jax.numpy as jnp
 
-from . import tolerances
+from . import manual_axes, tolerances
 from .normal_equations import weighted_residuals
 from .tolerances import trusted_error  # noqa: F401  (re-exported: callers ask accuracy for the bar)
 
@@ -111,7 +111,9 @@ def refine(model, y, w, x, ok, factor, solve):
         return x_next, d_next, est_next, k + 1, jnp.logical_not(est_next < stall * est)
 
     d, est = correction(x)
-    x, d, est, _, _ = jax.lax.while_loop(more, step, (x, d, est, jnp.int32(1), jnp.bool_(False)))
+    # The constant parts of the carry are typed like the data (shard_map: manual_axes.py).
+    init = (x, d, est) + manual_axes.like((jnp.int32(1), jnp.bool_(False)), est)
+    x, d, est, _, _ = jax.lax.while_loop(more, step, init)
     good = ok & (est <= tol)  # a NaN estimate fails as well
     x_out = x_in + jax.lax.stop_gradient(x + d - x_in)
     return jnp.where(good, x_out, jnp.nan), good

@@ -37,6 +37,7 @@ from functools import partial
 import jax
 import jax.numpy as jnp
 
+from . import manual_axes
 from .checks import canonicalize
 from .linalg import chol
 from .model import StateSpace
@@ -105,7 +106,7 @@ def _log_likelihood_bwd(method, res, g):
     if backend.log_likelihood is not None:  # the forward pass already holds the gradient
         model_bar, y_bar = res
         model_bar = jax.tree_util.tree_map(lambda a: g * a, model_bar)
-        return model_bar, g * y_bar, jnp.zeros(y_bar.shape, y_bar.dtype)
+        return model_bar, g * y_bar, jnp.zeros_like(y_bar)  # w's (unused) cotangent, typed like y
     model, y, w, x, factor = res
     _, pull = jax.vjp(lambda m, yy: _explicit_terms(m, yy, w, x), model, y)
     model_bar, y_bar = pull(g)
@@ -153,4 +154,6 @@ def log_likelihood(model: StateSpace, y, mask=None, *, method: str = "auto"):
         >>> g = jax.grad(lambda m: kx.log_likelihood(m, y))(m)
     """
     model, y, mask, _, dtype = canonicalize(model, y, mask, keep_diagonal_R=True)
-    return _log_likelihood(model, y, jax.lax.stop_gradient(mask.astype(dtype)), resolve_method(method))
+    # One varying-axes type for all inputs under shard_map (manual_axes.py).
+    model, y, w = manual_axes.like((model, y, jax.lax.stop_gradient(mask.astype(dtype))))
+    return _log_likelihood(model, y, w, resolve_method(method))

@@ -80,6 +80,8 @@ from jax import core, lax
 from jax.extend.core import Primitive
 from jax.interpreters import ad, batching, mlir
 
+from . import manual_axes
+
 # Blocks up to this size are factorised and solved by the elementwise code
 # below: a loop over the k columns (rows), or straight-line code for one small
 # block (STRAIGHT_MAX). Larger blocks (rare) stay on LAPACK, in chunks.
@@ -200,7 +202,7 @@ def _chol_loop(S):
         L = lax.dynamic_update_index_in_dim(L, jnp.where(rows == j, d[..., None], c), j, axis=L.ndim - 1)
         return A, L, good
 
-    good = jnp.ones(S.shape[:-2], bool)
+    good = manual_axes.like(jnp.ones(S.shape[:-2], bool), A)  # typed like the data under shard_map
     _, L, good = lax.fori_loop(0, k, step, (A, jnp.zeros_like(A), good))
     return jnp.where(good[..., None, None], L, jnp.nan)
 
@@ -249,7 +251,7 @@ def _lsolve_loop(L, B, transpose):
     k = L.shape[-1]
     rows = jnp.arange(k)
     batch = jnp.broadcast_shapes(L.shape[:-2], B.shape[:-2])
-    B = jnp.broadcast_to(B, batch + B.shape[-2:])
+    B = manual_axes.like(jnp.broadcast_to(B, batch + B.shape[-2:]), L)  # the carry is typed like L
 
     def step(s, carry):
         B, X = carry

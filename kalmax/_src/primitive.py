@@ -42,7 +42,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from . import accuracy, blocktri
+from . import accuracy, blocktri, manual_axes
 from .backends.base import Backend, arithmetic_dtype
 from .backends.registry import get_backend, resolve_method
 from .model import StateSpace
@@ -79,7 +79,7 @@ def _means_bwd(method, res, x_bar):
         return stationarity_pairing(model_, y_, w, x, u)
 
     _, pull = jax.vjp(pairing, model, y)
-    model_bar, y_bar = pull(-jnp.ones((), x.dtype))
+    model_bar, y_bar = pull(manual_axes.like(-jnp.ones((), x.dtype), x))
     return model_bar, y_bar, jnp.zeros_like(w)
 
 
@@ -110,4 +110,7 @@ def smoothed_means(model: StateSpace, y, w, method: str = "auto"):
         w: (T, p) 0/1 mask in the float dtype (1 = observed); not differentiated.
         method: backend name ("auto" picks the default for the platform).
     """
-    return _means(model, y, jax.lax.stop_gradient(w), resolve_method(method))
+    # One varying-axes type for all inputs under shard_map, so that the VJP's
+    # cotangents can be typed like them (manual_axes.py).
+    model, y, w = manual_axes.like((model, y, jax.lax.stop_gradient(w)))
+    return _means(model, y, w, resolve_method(method))

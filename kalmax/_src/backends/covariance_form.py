@@ -98,6 +98,7 @@ import jax
 import jax.numpy as jnp
 from jax import lax
 
+from .. import manual_axes
 from ..linalg import chol, lsolve, lsolve_vec, mT
 from ..model import StateSpace
 from ..normal_equations import masked_measurement_cov
@@ -182,7 +183,9 @@ def sweep(model: StateSpace, y, w):
         half_logdet_S = jnp.sum(jnp.log(jnp.diagonal(Ls)))
         return (m, P), (m, P, m_pred, P_pred, Kt, Ls, v, half_logdet_S, jnp.sum(z * z))
 
-    _, (m, P, m_pred, P_pred, Kt, Ls, v, half_ld_S, quad) = lax.scan(forward_step, (m0, P0), (A, b, Q, Ct, Rt, ey))
+    inputs = (A, b, Q, Ct, Rt, ey)
+    init = manual_axes.like((m0, P0), inputs)  # typed like the data under shard_map
+    _, (m, P, m_pred, P_pred, Kt, Ls, v, half_ld_S, quad) = lax.scan(forward_step, init, inputs)
 
     # Backward pass in adjoint form (module docstring, "Smoother"): it needs
     # S_t⁻¹ only, never (P⁻_{t+1})⁻¹, so a singular prediction (singular Q
@@ -203,9 +206,9 @@ def sweep(model: StateSpace, y, w):
         left = (jnp.eye(n, dtype=dtype) - P_t @ Lam_hat) @ IKC_t
         return (mT(A_t) @ lam_tilde, sym(mT(A_t) @ Lam_tilde @ A_t)), (x_t, S_t, left)
 
-    zero_n = jnp.zeros((n,), dtype)
-    _, (x, cov, left) = lax.scan(backward_step, (zero_n, jnp.zeros((n, n), dtype)),
-                                 (m, P, IKC, info_here, score_here, A), reverse=True)
+    back_inputs = (m, P, IKC, info_here, score_here, A)
+    back_init = manual_axes.like((jnp.zeros((n,), dtype), jnp.zeros((n, n), dtype)), back_inputs)
+    _, (x, cov, left) = lax.scan(backward_step, back_init, back_inputs, reverse=True)
     if T > 1:
         cross = left[1:] @ A[1:] @ P[:-1]   # Σ_{t+1,t} = (I − P_{t+1}Λ̂_{t+1})(I − K C̃)_{t+1} A P_t
     else:
@@ -263,7 +266,8 @@ def adjoint(factor: CovarianceFactor, v):
         x_t = m_t - P_t @ lam_hat
         return mT(A_t) @ (score_t + mT(IKC_t) @ lam_hat), x_t
 
-    _, x = lax.scan(smooth_step, jnp.zeros((n,), v.dtype), (m, factor.P, IKC, score, A), reverse=True)
+    smooth_inputs = (m, factor.P, IKC, score, A)
+    _, x = lax.scan(smooth_step, manual_axes.like(jnp.zeros((n,), v.dtype), smooth_inputs), smooth_inputs, reverse=True)
     return jnp.where(factor.ok, x, jnp.nan)
 
 

@@ -78,11 +78,13 @@ optional fields are passed as zero-size arrays. A diagonal R
 (``noise.DiagonalNoise``) is passed as its variances, (p,) or (T, p), with
 the attribute ``r_diagonal=1`` (the rank cannot say it: (T, p) and (p, p)
 coincide when T = p); the kernel keeps it diagonal and returns its gradient
-as variances too. Q reaches the kernel dense (``checks.canonicalize``). Every ``ffi_call`` uses
-``vmap_method="expand_dims"``: under ``jax.vmap`` the kernel receives the
-batched operands with a leading batch axis (size 1 where not batched) and loops
-over the batch itself, so ``vmap``, ``grad`` and ``vmap`` of ``grad`` all reach
-one kernel call.
+as variances too. Q reaches the kernel dense (``checks.canonicalize``). Every
+call goes through ``kernel_calls.call``: under ``jax.vmap`` the kernel
+receives the batched operands with a leading batch axis (size 1 where not
+batched) and loops over the batch itself, so ``vmap``, ``grad`` and ``vmap``
+of ``grad`` all reach one kernel call; on a batch sharded over devices each
+device runs its own trajectories; and under ``jax.shard_map`` the results are
+typed as varying like the operands.
 
 If the library is missing or refused (e.g. built against a newer XLA FFI than
 the installed jaxlib), ``LOAD_ERROR`` says why, the backend is registered as
@@ -106,16 +108,16 @@ from typing import NamedTuple, Optional
 
 import jax
 import jax.numpy as jnp
-
 import numpy as np
 
-from .. import blocktri, tolerances
+from .. import blocktri, manual_axes, tolerances
 from ..blocktri import BlockFactor
 from ..linalg import lsolve, mT
 from ..model import StateSpace
 from ..noise import DiagonalNoise
 from ..normal_equations import stationarity_pairing
 from .base import Backend, checked_solve
+from .kernel_calls import call as _call
 
 LIBRARY_STEM = "_cpu_kernel"
 # Where the build puts the library: kalmax/_src (setup.py, ``kalmax._src._cpu_kernel``).
@@ -129,9 +131,6 @@ _TARGETS = {
     "kalmax_cpu_band": "KalmaxCpuBand",
     "kalmax_cpu_loglik": "KalmaxCpuLoglik",
 }
-
-_VMAP = "expand_dims"  # the kernel loops over leading batch axes itself
-
 
 def library_path() -> Optional[str]:
     """Path of the compiled kernel library (in :data:`LIBRARY_DIR`), or None."""
@@ -268,10 +267,9 @@ def _kernel_forward(model: StateSpace, y, w):
         _sds((n, n), dt),
         _sds((), jnp.int32),
     ) + tuple(_sds(s, dt) for s in _lo_shapes(T, n, m_blocks, dt))
-    x, Linv, M, subT, ok, Linv_lo, M_lo, subT_lo, x_lo = jax.ffi.ffi_call(
-        "kalmax_cpu_forward", out, vmap_method=_VMAP
-    )(*_operands(model, y, w), **settings_attributes(dt, n, flat_prior=model.x0_cov is None),
-      **_r_attribute(model))
+    x, Linv, M, subT, ok, Linv_lo, M_lo, subT_lo, x_lo = _call(
+        "kalmax_cpu_forward", out, *_operands(model, y, w),
+        **settings_attributes(dt, n, flat_prior=model.x0_cov is None), **_r_attribute(model))
     return x, CpuFactor(Linv=Linv, M=M, subT=subT, ok=ok != 0, Linv_lo=Linv_lo, M_lo=M_lo, subT_lo=subT_lo,
                         x_lo=x_lo)
 
@@ -282,9 +280,8 @@ def _factor_operands(factor: CpuFactor):
 
 
 def _kernel_adjoint(factor: CpuFactor, v):
-    return jax.ffi.ffi_call("kalmax_cpu_solve", _sds(v.shape, v.dtype), vmap_method=_VMAP)(
-        *_factor_operands(factor), v
-    )
+    (x,) = _call("kalmax_cpu_solve", (_sds(v.shape, v.dtype),), *_factor_operands(factor), v)
+    return x
 
 
 def block_factor(factor: CpuFactor) -> BlockFactor:
@@ -314,7 +311,7 @@ def _kernel_band(factor: CpuFactor):
     T, n = factor.Linv.shape[-3], factor.Linv.shape[-1]
     dt = factor.Linv.dtype
     out = (_sds((T, n, n), dt), _sds((max(T - 1, 0), n, n), dt))
-    return jax.ffi.ffi_call("kalmax_cpu_band", out, vmap_method=_VMAP)(*_factor_operands(factor))
+    return _call("kalmax_cpu_band", out, *_factor_operands(factor))
 
 
 def _jax_band(factor: CpuFactor):
@@ -324,8 +321,9 @@ def _jax_band(factor: CpuFactor):
 def _kernel_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
     ops = _operands(model, y, w)
     out = tuple(_sds(o.shape, o.dtype) for o in ops[:9])
-    gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = jax.ffi.ffi_call("kalmax_cpu_gradients", out, vmap_method=_VMAP)(
-        *_factor_operands(factor), x, factor.x_lo, x_bar.astype(x.dtype), *ops, **_r_attribute(model)
+    gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = _call(
+        "kalmax_cpu_gradients", out, *_factor_operands(factor), x, factor.x_lo, x_bar.astype(x.dtype), *ops,
+        **_r_attribute(model)
     )
 
     def keep(g, field):
@@ -347,8 +345,8 @@ def _kernel_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
 def _kernel_log_likelihood(model: StateSpace, y, w, x, factor: CpuFactor):
     ops = _operands(model, y, w)
     out = (_sds((), y.dtype),) + tuple(_sds(o.shape, o.dtype) for o in ops[:9])
-    val, gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = jax.ffi.ffi_call("kalmax_cpu_loglik", out, vmap_method=_VMAP)(
-        *_factor_operands(factor), x, factor.x_lo, *ops, **_r_attribute(model)
+    val, gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = _call(
+        "kalmax_cpu_loglik", out, *_factor_operands(factor), x, factor.x_lo, *ops, **_r_attribute(model)
     )
 
     def keep(g, field):
@@ -387,7 +385,7 @@ def _jax_adjoint(factor: CpuFactor, v):
 def _jax_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
     u = _jax_adjoint(factor, x_bar)
     _, pull = jax.vjp(lambda m, yy: stationarity_pairing(m, yy, w, x, u), model, y)
-    return pull(-jnp.ones((), x.dtype))
+    return pull(manual_axes.like(-jnp.ones((), x.dtype), x))
 
 
 def _differentiable(kernel_fn, jax_fn):

@@ -33,7 +33,7 @@ from typing import NamedTuple
 import jax.numpy as jnp
 from jax import lax
 
-from .. import blocktri
+from .. import blocktri, manual_axes
 from ..linalg import chol, lsolve, lsolve_vec, mT
 from ..normal_equations import assemble
 from ..tolerances import pivot_tolerance
@@ -115,6 +115,7 @@ def checkpointed_solve(diag, sub, rhs, chunk: int | None = None, pivot_tol=None)
         return carry, (checkpoint, zs)
 
     init = (jnp.eye(n, dtype=dtype), jnp.zeros((n,), dtype), jnp.zeros((), dtype), jnp.asarray(jnp.inf, dtype))
+    init = manual_axes.like(init, diag, sub, rhs)  # typed like the data under shard_map
     (_, _, ld, ratio), (checkpoints, zs) = lax.scan(fwd_chunk, init, jnp.arange(C))
 
     def bwd_chunk(v_next, xs):
@@ -140,7 +141,8 @@ def checkpointed_solve(diag, sub, rhs, chunk: int | None = None, pivot_tol=None)
         v, xs_chunk = lax.scan(back, v_next, (jnp.arange(K), Ls, z_chunk), reverse=True)
         return v, xs_chunk
 
-    _, xs = lax.scan(bwd_chunk, jnp.zeros((n,), dtype), (jnp.arange(C), checkpoints, zs), reverse=True)
+    v_last = manual_axes.like(jnp.zeros((n,), dtype), zs)
+    _, xs = lax.scan(bwd_chunk, v_last, (jnp.arange(C), checkpoints, zs), reverse=True)
     x = xs.reshape(C * K, n)[:T]
     ok = ratio > tol
     return jnp.where(ok, x, jnp.nan), ld, ok
