@@ -19,7 +19,7 @@ $(PY):
 KERNEL_SRC = setup.py $(wildcard kalmax/_src/cpu/*.cc kalmax/_src/cpu/*.h)
 
 $(STAMP): $(PY) pyproject.toml $(KERNEL_SRC)
-	$(PIP) install -q --upgrade pip "setuptools>=68"
+	$(PIP) install -q --upgrade pip "setuptools>=77"
 	$(PIP) install -q --no-build-isolation -e ".[test]"
 	touch $(STAMP)
 
@@ -29,7 +29,7 @@ demo: $(STAMP)
 	$(PY) -m kalmax.demo
 
 test: $(STAMP)
-	$(PY) -m pytest -q tests
+	$(PY) -m pytest -q --durations=20 tests
 
 bench: $(STAMP)
 	$(PY) benchmarks/run.py
