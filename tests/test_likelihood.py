@@ -101,7 +101,8 @@ def test_local_level_steady_state_from_smoother_covariances():
     T = 400
     model = kx.StateSpace(A=jnp.eye(1), C=jnp.eye(1), Q=jnp.full((1, 1), q), R=jnp.full((1, 1), r))
     y = jnp.zeros((T, 1))
-    hess_last = jax.hessian(lambda v: kx.log_likelihood(model, y.at[-1, 0].set(v)))(0.0)
+    # Compiled: op by op, the Hessian through 400 steps costs most of a minute of dispatch.
+    hess_last = jax.jit(jax.hessian(lambda v: kx.log_likelihood(model, y.at[-1, 0].set(v))))(0.0)
     assert np.isclose(-1.0 / float(hess_last), P + r, rtol=1e-9)
-    dx = jax.grad(lambda v: kx.smooth(model, y.at[-1, 0].set(v)).states[-1, 0])(0.0)
+    dx = jax.jit(jax.grad(lambda v: kx.smooth(model, y.at[-1, 0].set(v)).states[-1, 0]))(0.0)
     assert np.isclose(float(dx), K, rtol=1e-9)
