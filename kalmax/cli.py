@@ -176,6 +176,16 @@ def build_parser() -> argparse.ArgumentParser:
                          "DATA; its rows are the forecast rows (--forecast N: the first N of them; no "
                          "--forecast-step). Without it, --forecast is refused for such a model: the inputs at "
                          "the forecast rows would be unknown")
+    grp = common.add_argument_group("many series in one table")
+    grp.add_argument("--group", metavar="COL",
+                     help="the table holds several series, one per value of column COL (e.g. station), each "
+                          "with its own strictly increasing times: fit smooths each group on its own (see "
+                          "--group-fit) in one batched run; the outputs keep COL as their first column. apply: "
+                          "a model fitted per group reads its group column from the model file (each group "
+                          "with its own parameters; a group it does not know is an error); any other model is "
+                          "applied to every group of COL")
+    grp.add_argument("--report-group", metavar="VALUE",
+                     help="with --group: the group drawn in the report (default: the first in the table)")
     misc = common.add_argument_group("other")
     misc.add_argument("--quiet", "-q", action="store_true", help="print errors only (no progress, no summary)")
     misc.add_argument("--debug", action="store_true", help="show the Python traceback of an internal error")
@@ -250,6 +260,12 @@ def build_parser() -> argparse.ArgumentParser:
                         "error is that of bridging a gap of that length; 'cells' holds out random single cells "
                         "instead, which have measured neighbours on both sides and so mostly test interpolation "
                         "across one step (default: %(default)s)")
+    h.add_argument("--group-fit", choices=("separate", "shared"), default="separate",
+                   help="with --group: 'separate' fits one set of parameters per group (default: groups such "
+                        "as stations usually differ; it is the same as fitting each group's rows alone, run as "
+                        "one batch), saved per group in the model file (format version 5); 'shared' fits one "
+                        "set of parameters to all groups (the likelihood summed over groups), saved as an "
+                        "ordinary model file")
     h.add_argument("--folds", type=int, default=4, metavar="K",
                    help="cross-validation folds for --objective holdout (default: %(default)s)")
     h.add_argument("--seed", type=int, default=0, help="seed of the random held-out choices (default: %(default)s)")
@@ -502,6 +518,10 @@ def cmd_fit(args) -> int:
     table_path, report_path, model_path = _outputs(args, model_file=True, inputs=[
         ("DATA", args.data), ("--start", args.start), ("--future-inputs", args.future_inputs)])
 
+    if args.group is not None:
+        return _fit_groups(args, forecast_steps, table_path, report_path, model_path)
+    if args.report_group is not None:
+        raise UsageError("--report-group needs --group COL.")
     start = model_file.load_model(args.start) if args.start else None
     time_unit, numeric_unit = args.time_unit, args.numeric_time_unit
     if args.components is not None and (args.model is not None or start is not None):
@@ -672,6 +692,259 @@ def cmd_fit(args) -> int:
          + "; noise sd " + ", ".join(f"{c} {math.sqrt(r):.4g}" for c, r in zip(fitted.columns, fitted.noise)))
     _say(args, f"Wrote {table_path}, {model_path}" + (f", {report_path}" if report_path else ""))
     return EXIT_OK
+
+
+def _read_groups(args, time_column, columns, *, time_format=None, time_unit=None, numeric_time_unit=None,
+                 time_pattern=None, inputs=(), forbidden=()):
+    """[(group value, series)] of DATA split by --group (see ``tools/groups.py``)."""
+    from ._src.tools import groups, series, tables
+
+    names, table = tables.read_table(args.data)
+    split = groups.split_rows(names, table, args.group, str(args.data),
+                              forbidden=[("--time", time_column)] + [("--measure", c) for c in columns]
+                              + [("regression input", c) for c in inputs] + list(forbidden))
+    groups.check_group_rows(split, args.group, str(args.data))
+    if args.report_group is not None and args.report_group not in [v for v, _ in split]:
+        raise UsageError(f"--report-group {args.report_group!r}: no such group in column {args.group!r} of "
+                         f"{args.data}; the first groups are {', '.join(repr(v) for v, _ in split[:5])}.")
+    out = []
+    for value, rows in split:
+        s = series.series_from_table(names, groups.sub_table(table, rows), time_column, columns,
+                                     source=f"{args.data} (group {args.group}={value})", time_format=time_format,
+                                     missing=args.missing, time_unit=time_unit, numeric_time_unit=numeric_time_unit,
+                                     time_pattern=time_pattern, inputs=inputs)
+        out.append((value, s))
+    kinds = {s.time_format for _, s in out}
+    if len(kinds) > 1:
+        raise DataError(f"{args.data}: some groups of {args.group!r} have numeric times and others date-times; "
+                        "one table needs one kind of time.")
+    return out
+
+
+def _grouped_table(args, specs, values, naturals, smoothings, tests):
+    """(names, columns) of the result table of every group, the group column first."""
+    from ._src.tools import apply_workflow
+
+    names, cols = None, None
+    for spec, value, natural, sm, test in zip(specs, values, naturals, smoothings, tests):
+        n, c = apply_workflow.output_table(spec, natural, sm, level=args.level, with_states=args.with_states,
+                                           test_mask=test)
+        if args.group in n:
+            raise DataError(f"the output column names collide: --group {args.group!r} is also an output column.")
+        if names is None:
+            names, cols = [args.group] + n, {args.group: [], **{k: [] for k in n}}
+        cols[args.group].extend([value] * len(natural.times_raw))
+        for k in n:
+            cols[k].extend(c[k])
+    return names, cols
+
+
+def _fit_groups(args, forecast_steps, table_path, report_path, model_path) -> int:
+    """``kalmax fit --group COL``: the groups of DATA fitted in one batched run (``tools/groups.py``)."""
+    import numpy as np
+
+    from ._src import splits
+    from ._src.tools import composed, groups, horizon, model_file, starting_values, tables
+    from ._src.tools import apply_workflow
+    from ._src.tools.report import write_report
+    from ._src.tools.settings import apply_settings, parse_measures
+    from ._src.tools.spec import KINDS, check_columns
+
+    for opt, given in (("--start", args.start), ("--future-inputs", args.future_inputs)):
+        if given is not None:
+            raise UsageError(f"{opt} does not go with --group: fit the groups from their own starting values, "
+                             "or fit each group's rows alone.")
+    if args.objective != "likelihood":
+        raise UsageError("--objective holdout does not go with --group; the groups are fitted by likelihood.")
+    inputs, drafts = (), None
+    if args.components is not None:
+        if args.model is not None:
+            raise UsageError("--components gives the model, and so does --model; drop one of them.")
+        missing = [o for o, v in (("--time", args.time), ("--measure", args.measure)) if not v]
+        if missing:
+            raise UsageError(f"fit needs {', '.join(missing)}.")
+        drafts = composed.parse_components(args.components)
+        cols, reads = composed.parse_reads(args.measure, [d.name for d in drafts])
+        inputs = composed.input_columns(drafts)
+    else:
+        missing = [o for o, v in (("--time", args.time), ("--model", args.model), ("--measure", args.measure))
+                   if not v]
+        if missing:
+            raise UsageError(f"fit needs {', '.join(missing)} (or --components TEXT).")
+        if args.model not in KINDS:
+            raise UsageError(f"--model {args.model!r} is not a model kind; choose one of {', '.join(KINDS)}.")
+        cols, states, dims = parse_measures(args.measure, args.model, args.dims)
+    try:
+        check_columns(args.time, cols)
+    except ValueError as e:
+        raise UsageError(f"--measure: {e}") from None
+    read = _read_groups(args, args.time, cols, time_unit=args.time_unit, numeric_time_unit=args.numeric_time_unit,
+                        time_pattern=_time_pattern(args), inputs=inputs)
+    values = [v for v, _ in read]
+    naturals, series_list, specs = [], [], []
+    for value, natural in read:
+        chosen, s = _transformed(args, natural, cols)
+        try:
+            spec = (starting_values.composed_spec(drafts, args.time, cols, reads, s) if drafts is not None
+                    else starting_values.default_spec(args.model, dims, args.time, cols, states, s))
+        except ValueError as e:
+            raise UsageError(f"--components (group {args.group}={value}): {e}") from None
+        spec = spec.replace(transforms=chosen, time_unit=s.unit, time_pattern=s.clock.pattern,
+                            numeric_time_unit=args.numeric_time_unit if s.time_format == "number" else None)
+        specs.append(apply_settings(spec, args.set))
+        naturals.append(natural)
+        series_list.append(s)
+    allowed = specs[0].free_names()
+    bad = [f for f in args.fix if f not in allowed]
+    if bad:
+        raise UsageError(f"--fix {bad[0]}: unknown parameter; this model has {', '.join(sorted(allowed))}.")
+    block = _test_block(args)
+    tests, trains = [], []
+    for value, s in zip(values, series_list):
+        mask = s.mask
+        if args.test_fraction > 0:
+            test = np.asarray(splits.holdout_entries(mask, args.test_fraction, args.seed) if block is None
+                              else splits.holdout_blocks(mask, block, args.test_fraction, args.seed))
+        else:
+            test = np.zeros_like(mask)
+        train = mask & ~test
+        empty = [c for j, c in enumerate(cols) if not train[:, j].any()]
+        if empty:
+            raise DataError(f"{args.data}: group {args.group}={value!r} (--group) has no training observation of "
+                            f"{', '.join(empty)} after holding out test cells; lower --test-fraction, or drop "
+                            "that group.")
+        tests.append(test)
+        trains.append(train)
+    rows = sum(len(s.t) for s in series_list)
+    _say(args, f"Read {args.data}: {rows} rows in {len(values)} groups of {args.group!r} "
+               f"({min(len(s.t) for s in series_list)} to {max(len(s.t) for s in series_list)} rows each).")
+    have_test = any(t.any() for t in tests)
+
+    def pooled(errors_list):
+        """Held-out RMSE in sd units over every group's held-out cells."""
+        n = [int(t.sum()) for t in tests]
+        total = sum(k for k, e in zip(n, errors_list) if k and math.isfinite(e["all"]))
+        ss = sum(k * e["all"] ** 2 for k, e in zip(n, errors_list) if k and math.isfinite(e["all"]))
+        return math.sqrt(ss / total) if total else math.nan
+
+    before = [apply_workflow.heldout_rmse(sp, s, t) for sp, s, t in zip(specs, series_list, tests)] \
+        if have_test else None
+    _say(args, f"Fitting {specs[0].label} to {len(values)} groups ({args.group_fit} parameters, {args.steps} "
+               "steps) ...")
+    batch = groups.pad_groups(series_list, trains)
+    fitted, history, result, ses = groups.fit_groups(
+        specs, batch, mode=args.group_fit, steps=args.steps, learning_rate=args.learning_rate,
+        fixed=tuple(args.fix), progress=not args.quiet, standard_errors=True)
+    after = [apply_workflow.heldout_rmse(sp, s, t) for sp, s, t in zip(fitted, series_list, tests)] \
+        if have_test else None
+    warnings = []
+    if have_test:
+        b, a = pooled(before), pooled(after)
+        _say(args, f"Held-out RMSE over all groups, in units of each column's sd: before {b:.4g}, after {a:.4g}")
+        if math.isfinite(b) and not a <= b:
+            warnings.append(f"fitting made the held-out error worse (RMSE in sd units over all groups: start "
+                            f"{b:.4g}, fitted {a:.4g}). Check --steps, --learning-rate and the model; the fitted "
+                            "model was written all the same.")
+    for w in warnings:
+        print(f"kalmax: warning: {w}", file=sys.stderr, flush=True)
+    out_naturals, out_series = [], []
+    for natural, s, spec in zip(naturals, series_list, fitted):
+        ext = natural if forecast_steps is None else horizon.extend(natural, forecast_steps, args.forecast_step)
+        out_naturals.append(ext)
+        out_series.append(ext._replace(y=np.concatenate([s.y, ext.y[len(s.y):]])))
+    if forecast_steps is not None:
+        _say(args, f"Forecast: {forecast_steps} rows after the last time of each group.")
+    smoothings = groups.smooth_groups(fitted, out_series)
+    natural_ses = [_natural_standard_errors(f, se) for f, se in zip(fitted, ses)]
+    record = {
+        "data": Path(args.data).name, "rows": rows, "objective": "likelihood", "group_column": args.group,
+        "group_fit": args.group_fit, "groups": len(values), "steps_run": int(result.steps_run),
+        "best_step": int(result.best_step), "stop_reason": str(result.stop_reason),
+        "final_loss": history[result.best_step] if history else None, "learning_rate": args.learning_rate,
+        "fixed": list(args.fix), "test_fraction": args.test_fraction, "seed": args.seed,
+        "test_block": block if block is not None else "cells",
+        "heldout_rmse_before": None if before is None else dict(zip(values, before)),
+        "heldout_rmse_after": None if after is None else dict(zip(values, after)),
+        "warnings": warnings,
+        **({"components": args.components} if args.components is not None else {}),
+    }
+    if args.group_fit == "separate":
+        record["standard_errors"] = {v: se for v, se in zip(values, natural_ses)}
+        saved = fitted[0].replace(fit=record, group_column=args.group, groups=tuple(
+            (v, dict(f.params), tuple(f.noise)) for v, f in zip(values, fitted)))
+    else:
+        record["standard_errors"] = natural_ses[0]
+        saved = fitted[0].replace(fit=record)
+    names, table = _grouped_table(args, fitted, values, out_naturals, smoothings, tests)
+    shown = values.index(args.report_group) if args.report_group is not None else 0
+    with AtomicOutputs() as out:
+        tables.write_table(table_path, names, table, out)
+        model_file.save_model(model_path, saved, out)
+        if report_path is not None:
+            g = shown
+            write_report(out.temp_for(report_path), fitted[g], out_series[g], smoothings[g], level=args.level,
+                         test_mask=tests[g] if tests[g].any() else None, history=history,
+                         loss_label="−log-likelihood per cell" + (", summed over groups"
+                                                                   if args.group_fit == "separate" else ""),
+                         title=f"kalmax fit: {fitted[g].label} on {Path(args.data).name}, group "
+                               f"{args.group}={values[g]} ({g + 1} of {len(values)}){_scale_note(fitted[g])}")
+    per = f" (rates per {fitted[0].time_unit})" if fitted[0].time_unit else ""
+    if args.group_fit == "shared":
+        _say(args, f"Fitted parameters, shared by all groups{per}: {_parameter_text(fitted[0], natural_ses[0])}")
+    else:
+        for v, f, se in list(zip(values, fitted, natural_ses))[:10]:
+            _say(args, f"Fitted parameters of {args.group}={v}{per}: {_parameter_text(f, se)}")
+        if len(values) > 10:
+            _say(args, f"... and {len(values) - 10} more groups (all in {model_path}).")
+    _say(args, f"Wrote {table_path}, {model_path}" + (f", {report_path}" if report_path else ""))
+    return EXIT_OK
+
+
+def _natural_standard_errors(spec, se_log):
+    """Standard errors of the fitted parameters in their natural units, by the delta method.
+
+    The fit works in log-parameters θ = log v (a regression coefficient as it
+    is), and ``se_log`` holds the standard errors of θ from the observed
+    information (``kx.standard_errors``). For v = exp(θ), dv/dθ = v, so to
+    first order SE(v) ≈ v · SE(θ) (the delta method: Casella & Berger,
+    Statistical Inference, 2nd ed., §5.5.4). For a small SE(θ) this is the
+    half-width of the log-scale interval mapped back, divided by z; for
+    SE(θ) ≳ 0.5 the log-scale interval exp(θ ± z SE(θ)) is the better summary
+    (asymmetric). None when the information is not positive definite.
+    """
+    import numpy as np
+
+    if se_log is None:
+        return None
+    out = {}
+    for name, s in se_log.items():
+        s = np.asarray(s, dtype=np.float64)
+        value = np.asarray(spec.noise if name == "noise" else spec.params[name], dtype=np.float64)
+        nat = value * s if spec.is_positive(name) else s
+        out[name] = [float(x) for x in nat] if nat.ndim else float(nat)
+    return out
+
+
+def _parameter_text(spec, ses=None) -> str:
+    """``name=value ± SE`` for every parameter, then the noise sds (each column's)."""
+    def fmt(v, e=None):
+        if isinstance(v, (list, tuple)):
+            es = e if isinstance(e, (list, tuple)) else [None] * len(v)
+            return "[" + ", ".join(fmt(x, y) for x, y in zip(v, es)) + "]"
+        if e is None or not math.isfinite(e):
+            return f"{v:.4g}"
+        return f"{v:.4g} ± {e:.2g}"
+
+    ses = ses or {}
+    text = ", ".join(f"{k}={fmt(v, ses.get(k))}" for k, v in spec.params.items())
+    noise_se = ses.get("noise")
+    parts = []
+    for j, (c, r) in enumerate(zip(spec.columns, spec.noise)):
+        sd = math.sqrt(r)
+        # sd = sqrt(r): d sd / d r = 1 / (2 sd), so SE(sd) ≈ SE(r) / (2 sd) (delta method).
+        e = None if noise_se is None else noise_se[j] / (2 * sd)
+        parts.append(f"{c} {fmt(sd, e)}")
+    return text + "; noise sd " + ", ".join(parts)
 
 
 def _scale_note(spec) -> str:
