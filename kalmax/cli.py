@@ -666,6 +666,11 @@ def cmd_fit(args) -> int:
         "heldout_rmse_before": before, "heldout_rmse_after": after, "warnings": warnings,
         **({"components": args.components} if args.components is not None else {}),
     })
+    natural_ses = None
+    if args.objective == "likelihood" and outcome.steps_run > 0:
+        natural_ses = _natural_standard_errors(fitted, fit_workflow.log_standard_errors(
+            fitted, series, train, fixed=tuple(args.fix)))
+        fitted = fitted.replace(fit={**fitted.fit, "standard_errors": natural_ses})
     smoothing = apply_workflow.smooth_series(fitted, out_series)
     names, cols = _table_for(args, fitted, out_natural, smoothing, test if test.any() else None)
     summary = ""
@@ -684,12 +689,9 @@ def cmd_fit(args) -> int:
                                      else "CV squared error (sd units)"),
                          title=f"kalmax fit: {fitted.label} on {Path(args.data).name}{_scale_note(fitted)}",
                          summary=summary)
-    def fmt(v):
-        return "[" + ", ".join(f"{x:.4g}" for x in v) + "]" if isinstance(v, (list, tuple)) else f"{v:.4g}"
-
     per = f" (rates per {fitted.time_unit})" if fitted.time_unit else ""
-    _say(args, f"Fitted parameters{per}: " + ", ".join(f"{k}={fmt(v)}" for k, v in fitted.params.items())
-         + "; noise sd " + ", ".join(f"{c} {math.sqrt(r):.4g}" for c, r in zip(fitted.columns, fitted.noise)))
+    _say(args, f"Fitted parameters{per}: {_parameter_text(fitted, natural_ses)}"
+         + (" (± standard error)" if natural_ses else ""))
     _say(args, f"Wrote {table_path}, {model_path}" + (f", {report_path}" if report_path else ""))
     return EXIT_OK
 
@@ -855,7 +857,8 @@ def _fit_groups(args, forecast_steps, table_path, report_path, model_path) -> in
     if forecast_steps is not None:
         _say(args, f"Forecast: {forecast_steps} rows after the last time of each group.")
     smoothings = groups.smooth_groups(fitted, out_series)
-    natural_ses = [_natural_standard_errors(f, se) for f, se in zip(fitted, ses)]
+    finite = [se if all(np.all(np.isfinite(v)) for v in se.values()) else None for se in ses]
+    natural_ses = [_natural_standard_errors(f, se) for f, se in zip(fitted, finite)]
     record = {
         "data": Path(args.data).name, "rows": rows, "objective": "likelihood", "group_column": args.group,
         "group_fit": args.group_fit, "groups": len(values), "steps_run": int(result.steps_run),
@@ -967,6 +970,13 @@ def cmd_apply(args) -> int:
     table_path, report_path, _ = _outputs(args, model_file=False, inputs=[
         ("DATA", args.data), ("MODEL.json", args.model_file), ("--future-inputs", args.future_inputs)])
     spec = model_file.load_model(args.model_file)
+    if spec.groups and args.group is not None and args.group != spec.group_column:
+        raise UsageError(f"--group {args.group}: the model file was fitted per group of {spec.group_column!r}; "
+                         "drop --group (the model file names its group column) or give that column.")
+    if spec.groups or args.group is not None:
+        return _apply_groups(args, spec, forecast_steps, table_path, report_path)
+    if args.report_group is not None:
+        raise UsageError("--report-group needs --group COL (or a model file fitted per group).")
     _check_future_inputs(args, spec)
     if horizon.step_needs_unit(args.forecast_step, spec.time_format, spec.time_unit):
         raise ModelFileError(f"{args.model_file}: the model names no time unit (numeric times fitted without "
@@ -988,6 +998,57 @@ def cmd_apply(args) -> int:
             write_report(out.temp_for(report_path), spec, series, smoothing, level=args.level,
                          title=f"kalmax apply: {spec.label} model {Path(args.model_file).name} on "
                                f"{Path(args.data).name}{_scale_note(spec)}")
+    _say(args, f"Wrote {table_path}" + (f", {report_path}" if report_path else ""))
+    return EXIT_OK
+
+
+def _apply_groups(args, spec, forecast_steps, table_path, report_path) -> int:
+    """``kalmax apply`` on a table of groups: each group with its own parameters (a model fitted per group)
+    or all with the one model."""
+    import numpy as np
+
+    from ._src.tools import groups, horizon, tables
+    from ._src.tools.report import write_report
+
+    column = spec.group_column or args.group
+    if args.future_inputs is not None:
+        raise UsageError("--future-inputs does not go with groups; add the future rows to DATA instead.")
+    _check_future_inputs(args, spec)
+    if horizon.step_needs_unit(args.forecast_step, spec.time_format, spec.time_unit):
+        raise ModelFileError(f"{args.model_file}: the model names no time unit, so --forecast-step "
+                             f"{args.forecast_step} cannot be converted; give the step as a plain number.")
+    args.group = column
+    read = _read_groups(args, spec.time_column, spec.columns, time_format=spec.time_format,
+                        time_unit=spec.time_unit, numeric_time_unit=spec.numeric_time_unit,
+                        time_pattern=_time_pattern(args, spec.time_pattern), inputs=spec.input_columns())
+    values = [v for v, _ in read]
+    if spec.groups:
+        unknown = [v for v in values if v not in spec.group_values()]
+        if unknown:
+            raise DataError(f"{args.data}: group {column}={unknown[0]!r} is not one of the model file's groups "
+                            f"({', '.join(repr(v) for v in spec.group_values()[:10])}"
+                            f"{', ...' if len(spec.groups) > 10 else ''}); a model fitted per group has no "
+                            "parameters for it. Fit it, or fit with --group-fit shared.")
+        specs = [spec.for_group(v) for v in values]
+    else:
+        specs = [spec] * len(values)
+    naturals, out_series = [], []
+    for (value, natural), sp in zip(read, specs):
+        _, transformed = _transformed(args, natural, sp.columns, sp.transforms)
+        ext = natural if forecast_steps is None else horizon.extend(natural, forecast_steps, args.forecast_step)
+        naturals.append(ext)
+        out_series.append(ext._replace(y=np.concatenate([transformed.y, ext.y[len(transformed.y):]])))
+    _say(args, f"Read {args.data}: {sum(len(s.t) for _, s in read)} rows in {len(values)} groups of {column!r}.")
+    smoothings = groups.smooth_groups(specs, out_series)
+    names, table = _grouped_table(args, specs, values, naturals, smoothings, [None] * len(values))
+    g = values.index(args.report_group) if args.report_group is not None else 0
+    with AtomicOutputs() as out:
+        tables.write_table(table_path, names, table, out)
+        if report_path is not None:
+            write_report(out.temp_for(report_path), specs[g], out_series[g], smoothings[g], level=args.level,
+                         title=f"kalmax apply: {spec.label} model {Path(args.model_file).name} on "
+                               f"{Path(args.data).name}, group {column}={values[g]} ({g + 1} of {len(values)})"
+                               f"{_scale_note(spec)}")
     _say(args, f"Wrote {table_path}" + (f", {report_path}" if report_path else ""))
     return EXIT_OK
 
