@@ -254,8 +254,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="fraction of the --test-block blocks (or of the observed cells, with --test-block "
                         "cells) hidden from the fit and used to report the held-out error, 0 to use everything "
                         "for fitting (default: %(default)s)")
-    h.add_argument("--test-block", default="10", metavar="ROWS",
+    h.add_argument("--test-block", default="10", metavar="ROWS|DURATION",
                    help="hold out whole blocks of this many consecutive rows (every measured column of them), "
+                        "or of this duration when given with a time unit (6h, 2day: the rows it spans at "
+                        "the data's typical step; numeric times need --time-unit), "
                         "both for the reported held-out error and for the folds of --objective holdout, so the "
                         "error is that of bridging a gap of that length; 'cells' holds out random single cells "
                         "instead, which have measured neighbours on both sides and so mostly test interpolation "
@@ -366,17 +368,26 @@ def _table_for(args, spec, series, smoothing, test_mask=None):
                                        test_mask=test_mask)
 
 
-def _test_block(args):
-    """The --test-block length in rows, or None for 'cells' (UsageError otherwise)."""
+def _test_block(args, series=None):
+    """The --test-block length in rows, or None for 'cells' (UsageError otherwise).
+
+    A plain whole number is rows; a number with a time unit (6h, 2day) is a
+    duration, turned into rows of ``series`` at its typical step
+    (``horizon.duration_rows``)."""
+    from ._src.tools import horizon
+
     text = str(args.test_block).strip().lower()
     if text == "cells":
         return None
     try:
         rows = int(text)
     except ValueError:
+        if series is not None and any(ch.isalpha() for ch in text):
+            return horizon.duration_rows(series, str(args.test_block).strip(), "--test-block")
         rows = 0
     if rows < 1:
-        raise UsageError(f"--test-block must be a whole number of rows >= 1 or 'cells'; got {args.test_block!r}.")
+        raise UsageError(f"--test-block must be a whole number of rows >= 1, a duration with a time unit "
+                         f"(e.g. 6h) or 'cells'; got {args.test_block!r}.")
     return rows
 
 
@@ -614,7 +625,9 @@ def cmd_fit(args) -> int:
         raise UsageError(f"--fix {bad[0]}: unknown parameter; this model has {', '.join(sorted(allowed))}.")
 
     mask = series.mask
-    block = _test_block(args)
+    block = _test_block(args, series)
+    if block is not None and not str(args.test_block).strip().isdigit():
+        _say(args, f"Held-out blocks: --test-block {args.test_block} is {block} rows at the typical step.")
     if args.test_fraction > 0 and block is None:
         test = np.asarray(splits.holdout_entries(mask, args.test_fraction, args.seed))
     elif args.test_fraction > 0:
@@ -663,6 +676,8 @@ def cmd_fit(args) -> int:
         "final_loss": outcome.history[outcome.best_step] if outcome.history else None,
         "learning_rate": args.learning_rate, "fixed": list(args.fix), "test_fraction": args.test_fraction,
         "seed": args.seed, "test_block": block if block is not None else "cells",
+        **({"test_block_given": str(args.test_block)} if block is not None
+           and not str(args.test_block).strip().isdigit() else {}),
         "heldout_rmse_before": before, "heldout_rmse_after": after, "warnings": warnings,
         **({"components": args.components} if args.components is not None else {}),
     })
@@ -800,9 +815,10 @@ def _fit_groups(args, forecast_steps, table_path, report_path, model_path) -> in
     bad = [f for f in args.fix if f not in allowed]
     if bad:
         raise UsageError(f"--fix {bad[0]}: unknown parameter; this model has {', '.join(sorted(allowed))}.")
-    block = _test_block(args)
-    tests, trains = [], []
+    tests, trains, blocks = [], [], []
     for value, s in zip(values, series_list):
+        block = _test_block(args, s)  # a duration: rows at each group's own typical step
+        blocks.append(block)
         mask = s.mask
         if args.test_fraction > 0:
             test = np.asarray(splits.holdout_entries(mask, args.test_fraction, args.seed) if block is None
@@ -865,7 +881,8 @@ def _fit_groups(args, forecast_steps, table_path, report_path, model_path) -> in
         "best_step": int(result.best_step), "stop_reason": str(result.stop_reason),
         "final_loss": history[result.best_step] if history else None, "learning_rate": args.learning_rate,
         "fixed": list(args.fix), "test_fraction": args.test_fraction, "seed": args.seed,
-        "test_block": block if block is not None else "cells",
+        "test_block": (str(args.test_block) if not str(args.test_block).strip().isdigit() else blocks[0])
+        if blocks[0] is not None else "cells",
         "heldout_rmse_before": None if before is None else dict(zip(values, before)),
         "heldout_rmse_after": None if after is None else dict(zip(values, after)),
         "warnings": warnings,
@@ -954,7 +971,7 @@ def _scale_note(spec) -> str:
     """A report title's note of the columns drawn on a transformed scale (empty without transforms)."""
     if not spec.transforms:
         return ""
-    return " (drawn on the model's scale: " + ", ".join(f"{n}({c})" for c, n in spec.transforms) + ")"
+    return " (modelled as " + ", ".join(f"{n}({c})" for c, n in spec.transforms) + ", drawn back-transformed)"
 
 
 def cmd_apply(args) -> int:

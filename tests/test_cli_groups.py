@@ -196,3 +196,57 @@ def test_natural_standard_errors_follow_the_delta_method():
     text = _parameter_text(spec, got)
     d_sqrt = (math.sqrt(4.0 + 1e-6) - math.sqrt(4.0 - 1e-6)) / 2e-6
     assert f"b 2 ± {d_sqrt * got['noise'][1]:.2g}" in text
+
+
+def test_test_block_as_a_duration_holds_out_that_many_hours(tmp_path, capsys, rng):
+    T = 60  # hourly ISO timestamps: --test-block 6h is 6 rows
+    y = np.exp(0.1 * np.cumsum(rng.normal(size=T)))
+    write_csv(tmp_path / "hourly.csv", ["time", "level"],
+              [[f"2024-03-{1 + i // 24:02d}T{i % 24:02d}:00:00Z", f"{y[i]:.6f}"] for i in range(T)])
+    code, out, err = cli(["fit", "hourly.csv", "--time", "time", "--model", "random-walk", "--measure", "level",
+                          "--time-unit", "h", "--no-report", "--steps", "0", "--test-block", "6h",
+                          "--test-fraction", "0.3", "--transform", "level=log"], tmp_path, capsys)
+    assert code == 0, err
+    assert "6 rows" in out
+    status = _columns(tmp_path / "hourly_smoothed.csv")["level_status"]
+    held = np.array([s == "held-out" for s in status])
+    starts = [i for i in range(T) if held[i] and (i == 0 or not held[i - 1])]
+    ends = [i + 1 for i in range(T) if held[i] and (i == T - 1 or not held[i + 1])]
+    assert starts and all(s % 6 == 0 and (e - s) % 6 == 0 for s, e in zip(starts, ends))
+    assert kx.load_model(tmp_path / "hourly_model.json").fit["test_block"] == 6
+    # A duration on numbers without a named unit cannot be converted: the error names the option.
+    write_csv(tmp_path / "plain.csv", ["time", "level"], [[i, f"{y[i]:.6f}"] for i in range(T)])
+    code, _, err = cli(["fit", "plain.csv", "--time", "time", "--model", "random-walk", "--measure", "level",
+                        "--no-report", "--test-block", "6h"], tmp_path, capsys)
+    assert code == 2 and "--test-block '6h'" in err and "--time-unit" in err
+
+
+def test_report_draws_transformed_columns_back_on_the_natural_scale():
+    from kalmax._src.tools.apply_workflow import Smoothing
+    from kalmax._src.tools.report import draw_report
+    from kalmax._src.tools.series import Series
+
+    import matplotlib.pyplot as plt
+
+    T = 12
+    t = np.arange(T, dtype=float)
+    y_log = np.log(np.linspace(1.0, 3.0, T))[:, None]
+    mean, sd = y_log + 0.01, np.full((T, 1), 0.2)
+    spec = kx.ModelSpec(kind="random-walk", dims=1, time_column="t", columns=("ozone",), measured=("level0",),
+                        params={"q": [0.1]}, noise=(0.01,), transforms=(("ozone", "log"),))
+    series = Series(times_raw=list(t), t=t, y=y_log, time_format="number")
+    fig = draw_report(spec, series, Smoothing(mean=mean, sd=sd, states=mean), level=0.95)
+    try:
+        ax = fig.axes[0]
+        smoothed = [ln for ln in ax.lines if ln.get_label() == "smoothed"][0]
+        measured = [ln for ln in ax.lines if ln.get_label() == "measured"][0]
+        np.testing.assert_allclose(smoothed.get_ydata(), np.exp(mean[:, 0]), rtol=1e-12)
+        np.testing.assert_allclose(measured.get_ydata(), np.exp(y_log[:, 0]), rtol=1e-12)
+        band = ax.collections[0].get_paths()[0].vertices[:, 1]  # the interval band's outline
+        z = 1.959963984540054
+        assert band.min() == pytest.approx(np.exp(mean[:, 0] - z * sd[:, 0]).min(), rel=1e-9)
+        assert band.max() == pytest.approx(np.exp(mean[:, 0] + z * sd[:, 0]).max(), rel=1e-9)
+        resid = fig.axes[1].lines[0].get_ydata()  # residuals stay on the model's scale
+        np.testing.assert_allclose(resid, (y_log[:, 0] - mean[:, 0]) / sd[:, 0], rtol=1e-12)
+    finally:
+        plt.close(fig)
