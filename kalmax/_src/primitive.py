@@ -75,8 +75,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from . import accuracy, blocktri, manual_axes
-from .backends.base import Backend, arithmetic_dtype
+from . import blocktri, implicit, manual_axes
+from .backends.base import Backend
 from .backends.registry import get_backend, resolve_method
 from .model import StateSpace
 
@@ -111,45 +111,8 @@ def _solution_jvp(method, primals, tangents):
     model_dot, y_dot, _ = tangents
     # The primitive itself, so that a tangent of x* at the next order comes from this rule too.
     x, factor = _solution(model, y, w, method)
-    # r = −∂_θ(∇ₓJ)·dθ: the JVP of the residual g − Hx in θ at fixed x.
-    _, rhs = jax.jvp(lambda m, yy: accuracy.residual(m, yy, w, x), (model, y), (model_dot, y_dot))
-    x_dot = solve_with_factor(get_backend(method), model, w, factor, rhs)
+    x_dot = implicit.tangent(method, model, y, w, x, factor, model_dot, y_dot)
     return (x, factor), (x_dot, _zero_tangents(factor))
-
-
-def solve_with_factor(backend: Backend, model: StateSpace, w, factor, v):
-    """H⁻¹ v with the stored factor, differentiable (module docstring, "Higher derivatives").
-
-    A ``lax.custom_linear_solve`` whose matvec is H v from the model's
-    whitened blocks: JAX transposes it into the same solve (H symmetric) and
-    differentiates it into more solves with the factor.
-    """
-    bare = model.replace(b=None, d=None, x0_mean=None)
-    zeros = jnp.zeros(w.shape, v.dtype)
-
-    def matvec(u):  # H u = −(the residual of the problem with no data and no offsets, at u)
-        return -accuracy.residual(bare, zeros, w, u)
-
-    def solve(_, b):
-        return _adjoint(backend, model, w, factor, b)
-
-    return jax.lax.custom_linear_solve(matvec, v, solve, symmetric=True)
-
-
-ADJOINT_CORRECTIONS = 2
-
-
-def _adjoint(backend: Backend, model: StateSpace, w, factor, v):
-    """u = H⁻¹ v with the stored factor; refined when the factor is float32 (module docstring)."""
-    u = backend.adjoint(factor, v)
-    if arithmetic_dtype(backend, v.dtype) != np.float32:
-        return u
-    # H u = −(the residual of the problem with no data and no offsets at u).
-    bare = model.replace(b=None, d=None, x0_mean=None)
-    zeros = jnp.zeros(w.shape, v.dtype)
-    for _ in range(ADJOINT_CORRECTIONS):
-        u = u + backend.adjoint(factor, v + accuracy.residual(bare, zeros, w, u))
-    return u
 
 
 def _means(model: StateSpace, y, w, method: str):
