@@ -26,6 +26,13 @@ Gradient, from the same factor and no tape through the recursion:
   twice in the trace); pulling it back through the (vectorised, scan-free)
   assembly of H gives the gradient for every model field.
 - the log-determinants of Q, R̃ and P_0: ordinary AD of per-step Cholesky factors.
+
+Derivative rules: a ``custom_jvp`` whose tangent is ⟨∇ log p, dθ⟩, the
+gradient coming from the same pass as the value (one compiled call on the
+kernel). JAX transposes that into reverse mode (the cotangent times the
+gradient: no extra work), and forward mode (jvp, jacfwd) costs one gradient.
+Second derivatives differentiate ``value_and_gradient``: plain JAX on a
+pure-JAX backend's factor, and the portable route for the fused kernel.
 """
 
 from __future__ import annotations
