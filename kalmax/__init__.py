@@ -10,6 +10,7 @@ from ._src.smoothing import prediction_error as prediction_error
 from ._src.smoothing import smooth as smooth
 from ._src.validation import condition_estimate as condition_estimate
 from ._src.validation import validate as validate
+from ._src.exporting import kernel_export_checks as kernel_export_checks
 
 # Filtering, forecasting and posterior sampling.
 from ._src.filtering import Filtered as Filtered

@@ -26,6 +26,13 @@ Gradient, from the same factor and no tape through the recursion:
   twice in the trace); pulling it back through the (vectorised, scan-free)
   assembly of H gives the gradient for every model field.
 - the log-determinants of Q, R̃ and P_0: ordinary AD of per-step Cholesky factors.
+
+Derivative rules: a ``custom_jvp`` whose tangent is ⟨∇ log p, dθ⟩, the
+gradient coming from the same pass as the value (one compiled call on the
+kernel). JAX transposes that into reverse mode (the cotangent times the
+gradient: no extra work), and forward mode (jvp, jacfwd) costs one gradient.
+Second derivatives differentiate ``value_and_gradient``: plain JAX on a
+pure-JAX backend's factor, and the portable route for the fused kernel.
 """
 
 from __future__ import annotations
@@ -66,15 +73,28 @@ def _explicit_terms(model: StateSpace, y, w, x):
     return val - 0.5 * (jnp.sum(w) - n_flat) * math.log(2 * math.pi)
 
 
-@partial(jax.custom_vjp, nondiff_argnums=(3,))
+@partial(jax.custom_jvp, nondiff_argnums=(3,))
 def _log_likelihood(model, y, w, method):
-    return _log_likelihood_fwd(model, y, w, method)[0]
+    return value_and_gradient(model, y, w, method)[0]
+
+
+@_log_likelihood.defjvp
+def _log_likelihood_jvp(method, primals, tangents):
+    # d log p = ⟨∇ log p, dθ⟩ with the gradient of the same pass (module
+    # docstring): linear in the tangents, so reverse mode is its transpose,
+    # the gradient scaled by the cotangent. A fused backend therefore keeps
+    # its one-call value and gradient in reverse mode; the gradient's own
+    # derivatives (Hessians) come from value_and_gradient.
+    model, y, w = primals
+    model_dot, y_dot, _ = tangents
+    val, model_bar, y_bar = value_and_gradient(model, y, w, method)
+    pairs = jax.tree_util.tree_leaves(jax.tree_util.tree_map(lambda g, d: jnp.sum(g * d), model_bar, model_dot))
+    return val, sum(pairs, jnp.sum(y_bar * y_dot))
 
 
 def _portable_value_and_grad(model, y, w):
     """log p(y) and its gradient by the pure-JAX route (the oracle of compiled ones)."""
-    val, (model_bar, y_bar) = jax.value_and_grad(_log_likelihood, argnums=(0, 1))(model, y, w, "scan")
-    return val, model_bar, y_bar
+    return value_and_gradient(model, y, w, "scan")
 
 
 @functools.lru_cache(maxsize=None)  # one wrapper per backend, not one per trace
@@ -89,39 +109,33 @@ def _fused(backend):
     return fn
 
 
-def _log_likelihood_fwd(model, y, w, method):
+def value_and_gradient(model, y, w, method):
+    """(log p(y), model_bar, y_bar): the value and its gradient, differentiable again.
+
+    A backend with a fused ``log_likelihood`` (the compiled kernel) returns
+    both from one pass over its factor. Otherwise the gradient is formed as in
+    the module docstring (envelope theorem for −J, selected inversion for
+    −½ log|H|) from plain JAX operations on the backend's factor; those are
+    differentiated directly for second derivatives (the forward pass of a
+    pure-JAX backend, and so its factor, is differentiable: ``accuracy.refine``).
+    """
     backend = get_backend(method)
     x, factor = backend.forward(model, y, w)
     if backend.log_likelihood is not None:
-        # Value and gradient in one compiled pass; the backward pass only scales.
-        val, model_bar, y_bar = _fused(backend)(model, y, w, x, factor)
-        return val, (model_bar, y_bar)
-    val = _explicit_terms(model, y, w, x) - 0.5 * backend.logdet(factor)
+        return _fused(backend)(model, y, w, x, factor)
+    explicit, pull = jax.vjp(lambda m, yy: _explicit_terms(m, yy, w, x), model, y)
+    val = explicit - 0.5 * backend.logdet(factor)
     val = jnp.where(jnp.all(jnp.isfinite(x)), val, jnp.nan)
-    return val, (model, y, w, x, factor)
+    model_bar, y_bar = pull(jnp.ones_like(val))
 
-
-def _log_likelihood_bwd(method, res, g):
-    backend = get_backend(method)
-    if backend.log_likelihood is not None:  # the forward pass already holds the gradient
-        model_bar, y_bar = res
-        model_bar = jax.tree_util.tree_map(lambda a: g * a, model_bar)
-        return model_bar, g * y_bar, jnp.zeros_like(y_bar)  # w's (unused) cotangent, typed like y
-    model, y, w, x, factor = res
-    _, pull = jax.vjp(lambda m, yy: _explicit_terms(m, yy, w, x), model, y)
-    model_bar, y_bar = pull(g)
-
+    # −½ log|H|: the cotangent −½ Σ on H's band, pulled back through the assembly.
     S_diag, S_sub = band_inverse(backend, factor)
-    diag_bar = -0.5 * g * S_diag
     blocks = lambda m: assemble(m, y, w)[:2]  # noqa: E731  (diag, sub) of H; y does not enter H
     (diag, sub), pull_h = jax.vjp(blocks, model)
-    sub_bar = -g * (S_sub if sub.ndim == 3 else jnp.sum(S_sub, axis=0))
-    (model_bar_h,) = pull_h((diag_bar, sub_bar.astype(sub.dtype)))
+    sub_bar = -(S_sub if sub.ndim == 3 else jnp.sum(S_sub, axis=0))
+    (model_bar_h,) = pull_h((-0.5 * S_diag, sub_bar.astype(sub.dtype)))
     model_bar = jax.tree_util.tree_map(jnp.add, model_bar, model_bar_h)
-    return model_bar, y_bar, jnp.zeros_like(w)
-
-
-_log_likelihood.defvjp(_log_likelihood_fwd, _log_likelihood_bwd)
+    return val, model_bar, y_bar
 
 
 def log_likelihood(model: StateSpace, y, mask=None, *, method: str = "auto"):

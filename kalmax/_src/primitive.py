@@ -1,52 +1,84 @@
-r"""The smoothing primitive: x* = argmin_x J(x; θ), with an implicit-function VJP.
+r"""The smoothing primitive: x* = argmin_x J(x; θ), with an implicit-function JVP.
 
 Forward: assemble the block-tridiagonal normal equations H x = g and solve them
-with a block Cholesky factorisation; keep the factor as the residual.
+with a block Cholesky factorisation (the backend's; ``backends/``); keep the
+factor.
 
-Backward (for a cotangent x̄ = ∂ℓ/∂x*): differentiate the optimality condition
-∇ₓJ(x*(θ); θ) = 0,
+Tangent (forward mode). Differentiate the optimality condition
+∇ₓJ(x*(θ); θ) = 0:
 
-    H dx* + ∂_θ(∇ₓJ) dθ = 0   ⇒   dx* = −H⁻¹ ∂_θ(∇ₓJ) dθ,
+    H dx* + ∂_θ(∇ₓJ) dθ = 0   ⇒   dx* = H⁻¹ r,   r = −∂_θ(∇ₓJ)·dθ,
 
-so with the adjoint u = H⁻¹ x̄ (one more solve with the *stored* factor; H is
-symmetric) the gradient is
+where r is the JVP in θ of the model's residual −∇ₓJ(x; θ) = g − H x at
+fixed x = x* (``accuracy.residual``: per-step, vectorised, no recursion over
+time), and H⁻¹ r is one more solve with the *stored* factor.
 
-    θ̄ = −∂_θ [uᵀ ∇ₓJ(x; θ)]  evaluated at x = x*, with u and x* held fixed.
+Reverse mode is the transpose of that tangent map, which JAX derives: the
+solve is a ``lax.custom_linear_solve`` with ``symmetric=True`` (H is
+symmetric), so its transpose is the same solve with the stored factor,
+u = H⁻¹ x̄, and the transpose of r(dθ) is the VJP of θ ↦ −uᵀ∇ₓJ(x; θ) (the
+"stationarity pairing" of ``normal_equations.py``):
 
-That scalar is a sum of per-step terms (``stationarity_pairing``), so its
-gradient is formed by ordinary reverse-mode AD over vectorised per-step
-operations: no tape through the time recursion, and every input (A, C, Q, R,
-b, d, the prior and the measurements y) gets its gradient from the same
-expression.
+    θ̄ = −∂_θ [uᵀ ∇ₓJ(x; θ)]  at x = x*, with u and x* held fixed,
 
-Adjoint refinement (float32 arithmetic): the adjoint solve uses the stored
-factor of H, which in float32 carries the same rounding as the forward
-solve's first answer (up to κ(H)·eps32 relative; ~1e-2 on the constant-
-velocity tracking model of tests/test_float32_ordinary.py). The forward
-answer is refined (``accuracy.refine``); the adjoint gets the same treatment
-without a verdict: two corrections u ← u + H̃⁻¹(x̄ − H u), with H u formed from
-the model's whitened blocks like the forward residual (−∇J of the problem
-with zero data and offsets), so H is never formed. Each correction multiplies
-the error by about κ(H)·eps, as in the forward pass. Backends that compute
-in double (the compiled kernel) and float64 problems skip it.
+exactly the implicit-function VJP. One rule therefore serves jvp, vjp,
+jacfwd, jacrev, linearize and every composition.
 
-Backends: the solve itself is pluggable so that compiled kernels and
-parallel-in-time variants can sit behind the same VJP (``backends/``: what a
-backend is in ``base.py``, the table in ``registry.py``).
+Higher derivatives. ``custom_linear_solve`` differentiates a solve through
+its matvec only, d(H⁻¹b) = H⁻¹(db − dH·H⁻¹b), never through the solver: so
+every tangent of a solve is more solves with the same stored factor, and the
+matvec H v is formed from the model's whitened blocks (−residual of the
+problem with zero data and offsets, so H is never formed). The rule computes
+x* by calling the primitive itself, so a second-order tangent of x* comes from
+the same rule. The compiled kernel, whose FFI calls have no derivative rules,
+is thus differentiated to any order with kernel solves alone; forward-over-
+reverse Hessians cost a few solves and vectorised per-step work per
+direction. The factor is an internal output whose tangent is declared zero:
+it is consumed only as the solver of ``custom_linear_solve``, which is never
+differentiated (the likelihood, which does differentiate log|H| and the band
+of H⁻¹, has its own rule in ``likelihood.py``).
+
+Why this design. The alternative was to keep a ``custom_vjp`` (which JAX
+refuses to differentiate in forward mode) and add a linear tangent map with a
+hand-written transpose (the old backward pass). JAX 0.10 has no public
+``custom_transpose``, and a hand-made primitive would need its own batching,
+lowering, sharding and shard_map typing rules. The transpose that JAX derives
+here is the same computation as the old backward pass (one adjoint solve plus
+the VJP of the pairing) for every pure-JAX backend. For the compiled kernel
+it replaces the fused C++ backward pass (``kalmax_cpu_gradients``) by the
+kernel's adjoint solve plus the vectorised JAX pairing VJP; that costs
+measured time on the smoothing-loss path only (``benchmarks/RESULTS.md``,
+"Forward mode"), while the likelihood keeps its fused kernel gradient
+(``likelihood.py``: its tangent is ⟨∇ log p, dθ⟩, which JAX transposes into
+the gradient the kernel already computed).
+
+Backends whose ``implicit_derivatives`` is False (the covariance-form filter)
+are differentiated through their own forward recursions instead: their
+point is to avoid Q⁻¹, which the residual r contains.
+
+Adjoint refinement (float32 arithmetic): solves use the stored factor of H,
+which in float32 carries the same rounding as the forward solve's first
+answer (up to κ(H)·eps32 relative; ~1e-2 on the constant-velocity tracking
+model of tests/test_float32_ordinary.py). The forward answer is refined
+(``accuracy.refine``); every later solve gets the same treatment without a
+verdict: two corrections u ← u + H̃⁻¹(v − H u), with H u formed from the
+model's whitened blocks like the forward residual. Each correction
+multiplies the error by about κ(H)·eps, as in the forward pass. Backends that
+compute in double (the compiled kernel) and float64 problems skip it.
 """
 
 from __future__ import annotations
 
 from functools import partial
+
 import jax
 import jax.numpy as jnp
 import numpy as np
 
-from . import accuracy, blocktri, manual_axes
-from .backends.base import Backend, arithmetic_dtype
+from . import blocktri, implicit, manual_axes
+from .backends.base import Backend
 from .backends.registry import get_backend, resolve_method
 from .model import StateSpace
-from .normal_equations import stationarity_pairing
 
 
 def band_inverse(backend: Backend, factor):
@@ -56,53 +88,42 @@ def band_inverse(backend: Backend, factor):
     return blocktri.selected_inverse(factor)
 
 
-@partial(jax.custom_vjp, nondiff_argnums=(3,))
+def _zero_tangents(tree):
+    """Zero tangents shaped like ``tree`` (float0 for integer and boolean leaves)."""
+    def zero(a):
+        a = jnp.asarray(a)
+        if jnp.issubdtype(a.dtype, jnp.inexact):
+            return jnp.zeros_like(a)
+        return np.zeros(a.shape, jax.dtypes.float0)
+
+    return jax.tree_util.tree_map(zero, tree)
+
+
+@partial(jax.custom_jvp, nondiff_argnums=(3,))
+def _solution(model: StateSpace, y, w, method: str):
+    """(x*, factor); the factor's tangent is declared zero (module docstring)."""
+    return get_backend(method).forward(model, y, w)
+
+
+@_solution.defjvp
+def _solution_jvp(method, primals, tangents):
+    model, y, w = primals
+    model_dot, y_dot, _ = tangents
+    # The primitive itself, so that a tangent of x* at the next order comes from this rule too.
+    x, factor = _solution(model, y, w, method)
+    x_dot = implicit.tangent(method, model, y, w, x, factor, model_dot, y_dot)
+    return (x, factor), (x_dot, _zero_tangents(factor))
+
+
 def _means(model: StateSpace, y, w, method: str):
-    x, _ = get_backend(method).forward(model, y, w)
-    return x
-
-
-def _means_fwd(model, y, w, method):
-    x, factor = get_backend(method).forward(model, y, w)
-    return x, (model, y, w, x, factor)
-
-
-def _means_bwd(method, res, x_bar):
-    model, y, w, x, factor = res
     backend = get_backend(method)
-    if backend.gradients is not None:
-        model_bar, y_bar = backend.gradients(model, y, w, x, factor, x_bar)
-        return model_bar, y_bar, jnp.zeros_like(w)
-    u = _adjoint(backend, model, w, factor, x_bar)
-
-    def pairing(model_, y_):
-        return stationarity_pairing(model_, y_, w, x, u)
-
-    _, pull = jax.vjp(pairing, model, y)
-    model_bar, y_bar = pull(manual_axes.like(-jnp.ones((), x.dtype), x))
-    return model_bar, y_bar, jnp.zeros_like(w)
-
-
-_means.defvjp(_means_fwd, _means_bwd)
-
-ADJOINT_CORRECTIONS = 2
-
-
-def _adjoint(backend: Backend, model: StateSpace, w, factor, v):
-    """u = H⁻¹ v with the stored factor; refined when the factor is float32 (module docstring)."""
-    u = backend.adjoint(factor, v)
-    if arithmetic_dtype(backend, v.dtype) != np.float32:
-        return u
-    # H u = −(the residual of the problem with no data and no offsets at u).
-    bare = model.replace(b=None, d=None, x0_mean=None)
-    zeros = jnp.zeros(w.shape, v.dtype)
-    for _ in range(ADJOINT_CORRECTIONS):
-        u = u + backend.adjoint(factor, v + accuracy.residual(bare, zeros, w, u))
-    return u
+    if not backend.implicit_derivatives:  # differentiated through its own recursions
+        return backend.forward(model, y, w)[0]
+    return _solution(model, y, w, method)[0]
 
 
 def smoothed_means(model: StateSpace, y, w, method: str = "auto"):
-    """x* (T, n) for a canonicalised problem; differentiable in model and y.
+    """x* (T, n) for a canonicalised problem; differentiable in model and y, in any mode and order.
 
     Args:
         model: canonicalised StateSpace (one float dtype).
@@ -110,7 +131,7 @@ def smoothed_means(model: StateSpace, y, w, method: str = "auto"):
         w: (T, p) 0/1 mask in the float dtype (1 = observed); not differentiated.
         method: backend name ("auto" picks the default for the platform).
     """
-    # One varying-axes type for all inputs under shard_map, so that the VJP's
-    # cotangents can be typed like them (manual_axes.py).
+    # One varying-axes type for all inputs under shard_map, so that tangents
+    # and cotangents can be typed like them (manual_axes.py).
     model, y, w = manual_axes.like((model, y, jax.lax.stop_gradient(w)))
     return _means(model, y, w, resolve_method(method))

@@ -43,14 +43,21 @@ class Backend(NamedTuple):
         the band of H⁻¹. None: the factor is a ``blocktri.BlockFactor`` and
         ``blocktri.selected_inverse`` applies.
     gradients: ``(model, y, w, x, factor, x_bar) -> (model_bar, y_bar)``,
-        the whole backward pass in one call (a fused compiled kernel). None:
-        the adjoint solve plus JAX autodiff of ``stationarity_pairing``.
+        the whole implicit-function backward pass in one call (a fused
+        compiled kernel), kept as a reference and for callers that want it;
+        the primitive's derivatives do not use it (``primitive.py``: they are
+        one tangent rule that JAX transposes).
     log_likelihood: ``(model, y, w, x, factor) -> (value, model_bar, y_bar)``,
         log p(y) and its gradient w.r.t. every model field and y from the
         stored factor, in one pass (a compiled kernel). None: the JAX route
         of ``likelihood.py`` (band of H⁻¹, then autodiff of per-step terms).
     float32_in_double: True when float32 problems are factored and solved
         in double precision (the compiled kernel); False: in float32.
+    implicit_derivatives: True when derivatives of x* come from the
+        implicit function of the normal equations (``primitive.py``: one
+        solve with the stored factor per tangent or cotangent). False: JAX
+        differentiates ``forward`` itself (the covariance-form filter, whose
+        recursions avoid Q⁻¹, which the implicit function needs).
     refined: True when the answer is certified by refinement with the
         normal equations' residual ("accurate or NaN", ``accuracy.py``);
         False for the covariance-form filter (``covariance_form.py``), which
@@ -65,6 +72,7 @@ class Backend(NamedTuple):
     log_likelihood: Optional[Callable] = None
     float32_in_double: bool = False
     refined: bool = True
+    implicit_derivatives: bool = True
 
 
 def arithmetic_dtype(backend: Backend, dtype):

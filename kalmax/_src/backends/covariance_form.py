@@ -297,4 +297,5 @@ def log_likelihood(model, y, w, x, factor):
 
 
 COVARIANCE = Backend(forward=forward, adjoint=adjoint, logdet=logdet, band_inverse=band_inverse,
-                     gradients=gradients, log_likelihood=log_likelihood, refined=False)
+                     gradients=gradients, log_likelihood=log_likelihood, refined=False,
+                     implicit_derivatives=False)

@@ -131,6 +131,8 @@ _TARGETS = {
     "kalmax_cpu_band": "KalmaxCpuBand",
     "kalmax_cpu_loglik": "KalmaxCpuLoglik",
 }
+# The custom-call targets an exported program names (``exporting.kernel_export_checks``).
+FFI_TARGETS = tuple(_TARGETS)
 
 def library_path() -> Optional[str]:
     """Path of the compiled kernel library (in :data:`LIBRARY_DIR`), or None."""
