@@ -29,7 +29,7 @@ demo: $(STAMP)
 	$(PY) -m kalmax.demo
 
 test: $(STAMP)
-	$(PY) -m pytest -q --durations=20 tests
+	$(PY) -m pytest -q -n auto --durations=20 tests
 
 bench: $(STAMP)
 	$(PY) benchmarks/run.py

@@ -18,9 +18,10 @@ Gaussian, common practice). Every step is observed; small sizes (T = 5,
 n = p = 2) keep the dense reference cheap and exact.
 
 A new backend is picked up through ``registry.available()`` and cannot skip
-an entry. The default run covers a core row per backend and dtype (jit, grad
-in θ and y, jvp, jacfwd, vmap of grad, forward-over-reverse hessian, AOT);
-``KALMAX_SLOW=1`` runs the whole table (minutes: one large program per
+an entry. The default run covers a core row (jit, grad in θ and y, jvp,
+jacfwd, vmap of grad, forward-over-reverse hessian, AOT) for the kernel in
+both dtypes and "scan" and "covariance" in float64;
+``KALMAX_SLOW=1`` runs the whole table for every backend and dtype (minutes: one large program per
 backend and dtype). float32 is compared at 2e-3 relative (float32 rounding of the
 inputs times κ of these small problems), float64 at 1e-7.
 """
@@ -178,8 +179,16 @@ def _reference():
     return _REFERENCE
 
 
-@pytest.mark.parametrize("dtype", [np.float64, np.float32])
-@pytest.mark.parametrize("method", BACKENDS)
+# Default run: the compiled kernel in both dtypes and the two portable solvers
+# users reach first in float64 (each case compiles one large program, 10-50 s
+# here); KALMAX_SLOW=1 runs every registered backend in both dtypes.
+_DEFAULT = {("cpu", np.float64), ("cpu", np.float32), ("scan", np.float64), ("covariance", np.float64)}
+CASES = [pytest.param(m, d, id=f"{m}-{np.dtype(d).name}",
+                      marks=[] if FULL or (m, d) in _DEFAULT else pytest.mark.skip("KALMAX_SLOW=1 runs it"))
+         for m in BACKENDS for d in (np.float64, np.float32)]
+
+
+@pytest.mark.parametrize("method, dtype", CASES)
 def test_transformation_table(method, dtype):
     b = _base(dtype)
     states, loglik = kalmax_functions(method, b["A0"], b["C0"], b["weights"])

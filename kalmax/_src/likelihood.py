@@ -168,6 +168,12 @@ def log_likelihood(model: StateSpace, y, mask=None, *, method: str = "auto"):
         >>> g = jax.grad(lambda m: kx.log_likelihood(m, y))(m)
     """
     model, y, mask, _, dtype = canonicalize(model, y, mask, keep_diagonal_R=True)
+    return _log_likelihood_checked(model, y, mask, resolve_method(method))
+
+
+# Compiled once per shape and method, after the checks (smoothing._smooth_checked says why).
+@partial(jax.jit, static_argnums=(3,))
+def _log_likelihood_checked(model: StateSpace, y, mask, method: str):
     # One varying-axes type for all inputs under shard_map (manual_axes.py).
-    model, y, w = manual_axes.like((model, y, jax.lax.stop_gradient(mask.astype(dtype))))
-    return _log_likelihood(model, y, w, resolve_method(method))
+    model, y, w = manual_axes.like((model, y, jax.lax.stop_gradient(mask.astype(y.dtype))))
+    return _log_likelihood(model, y, w, method)

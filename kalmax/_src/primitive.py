@@ -73,6 +73,7 @@ from functools import partial
 
 import jax
 import jax.numpy as jnp
+from jax.custom_derivatives import SymbolicZero
 import numpy as np
 
 from . import blocktri, implicit, manual_axes
@@ -89,14 +90,14 @@ def band_inverse(backend: Backend, factor):
 
 
 def _zero_tangents(tree):
-    """Zero tangents shaped like ``tree`` (float0 for integer and boolean leaves)."""
-    def zero(a):
-        a = jnp.asarray(a)
-        if jnp.issubdtype(a.dtype, jnp.inexact):
-            return jnp.zeros_like(a)
-        return np.zeros(a.shape, jax.dtypes.float0)
+    """Symbolic zero tangents typed like ``tree``'s leaves.
 
-    return jax.tree_util.tree_map(zero, tree)
+    Typed from each leaf's own type, so that under ``shard_map`` they carry
+    its varying axes too (a NumPy float0 zero for the boolean ``ok`` flag
+    does not, and JAX then rejects the rule); symbolic, so no zero array is
+    ever formed.
+    """
+    return jax.tree_util.tree_map(lambda a: SymbolicZero(jax.typeof(a).to_tangent_aval()), tree)
 
 
 @partial(jax.custom_jvp, nondiff_argnums=(3,))
@@ -105,10 +106,17 @@ def _solution(model: StateSpace, y, w, method: str):
     return get_backend(method).forward(model, y, w)
 
 
-@_solution.defjvp
+def _instantiate(tangent, primal):
+    """A tangent the rule was handed as a symbolic zero, as zeros typed like its primal."""
+    return jax.tree_util.tree_map(lambda t, p: jnp.zeros_like(p) if type(t) is SymbolicZero else t,
+                                  tangent, primal, is_leaf=lambda t: type(t) is SymbolicZero)
+
+
+# symbolic_zeros: so that the factor's zero tangent can be returned symbolically (_zero_tangents).
+@partial(_solution.defjvp, symbolic_zeros=True)
 def _solution_jvp(method, primals, tangents):
     model, y, w = primals
-    model_dot, y_dot, _ = tangents
+    model_dot, y_dot = _instantiate(tangents[0], model), _instantiate(tangents[1], y)
     # The primitive itself, so that a tangent of x* at the next order comes from this rule too.
     x, factor = _solution(model, y, w, method)
     x_dot = implicit.tangent(method, model, y, w, x, factor, model_dot, y_dot)

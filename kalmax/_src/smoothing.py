@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+from functools import partial
 from typing import NamedTuple, Optional
 
+import jax
 import jax.numpy as jnp
 
 from .checks import canonicalize
@@ -84,7 +86,18 @@ def smooth(model: StateSpace, y, mask=None, *, covariances: bool = False, method
         (3, 1)
     """
     model, y, mask, _, dtype = canonicalize(model, y, mask, keep_diagonal_R=True)
-    w = mask.astype(dtype)
+    return _smooth_checked(model, y, mask, covariances=covariances, method=method)
+
+
+# Compiled once per shape, method and flag. The checks above stay outside,
+# where they see concrete arrays and name the argument; inside a caller's own
+# jit/vmap/grad this is an ordinary nested jit (inlined). Called op by op
+# instead, the portable backends re-trace and re-compile every scan on every
+# call (measured: a second eager call of a T = 9 problem took 2.6 s on
+# "covariance" and 6.5 s on "scan"; compiled, a few milliseconds).
+@partial(jax.jit, static_argnames=("covariances", "method"))
+def _smooth_checked(model: StateSpace, y, mask, *, covariances: bool, method: str) -> Smoothed:
+    w = mask.astype(y.dtype)
     x = smoothed_means(model, y, w, method)
     out = Smoothed(states=x, measurements=predict_measurements(model, x))
     if covariances:
@@ -157,6 +170,12 @@ def holdout_sums(model: StateSpace, y, mask, holdout, *, method: str = "auto"):
         raise TypeError(f"holdout must be a boolean array (True = held out); got dtype {holdout.dtype}.")
     if holdout.shape != y.shape:
         raise ValueError(f"holdout must have the same shape as y, {tuple(y.shape)}; got {tuple(holdout.shape)}.")
+    return _holdout_sums_checked(model, y, mask, holdout, method=method)
+
+
+@partial(jax.jit, static_argnames=("method",))  # compiled once, as _smooth_checked
+def _holdout_sums_checked(model: StateSpace, y, mask, holdout, *, method: str):
+    dtype = y.dtype
     fit_mask = mask & ~holdout
     scored = mask & holdout
     x = smoothed_means(model, y, fit_mask.astype(dtype), method)
