@@ -1,0 +1,3 @@
+"""placeholder"""
+def laplace_log_likelihood(*a, **k):
+    raise NotImplementedError
