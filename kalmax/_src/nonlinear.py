@@ -268,7 +268,14 @@ def smooth_nonlinear(model, y, mask=None, *, loss=None, init=None, tol: Optional
     loss = SquaredLoss() if loss is None else loss
     model, loss, y, w, init = prepare(model, y, mask, loss, init)
     tol = default_tolerance(y.dtype) if tol is None else float(tol)
-    x, iterations, converged = _solve(model, loss, y, jax.lax.stop_gradient(w), init,
-                                      resolve_method(method), tol, int(max_iterations))
+    return _smooth_canonical(model, loss, y, jax.lax.stop_gradient(w), init, resolve_method(method), tol,
+                             int(max_iterations))
+
+
+@partial(jax.jit, static_argnums=(5, 6, 7))
+def _smooth_canonical(model, loss, y, w, init, method, tol, max_iterations):
+    # Compiled once per model structure (its functions), shapes and settings:
+    # an eager call would trace and compile the iteration loop on every call.
+    x, iterations, converged = _solve(model, loss, y, w, init, method, tol, max_iterations)
     return NonlinearSmoothed(states=x, measurements=_map_h(model, x), iterations=iterations,
                              converged=converged)
