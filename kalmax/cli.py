@@ -176,6 +176,16 @@ def build_parser() -> argparse.ArgumentParser:
                          "DATA; its rows are the forecast rows (--forecast N: the first N of them; no "
                          "--forecast-step). Without it, --forecast is refused for such a model: the inputs at "
                          "the forecast rows would be unknown")
+    grp = common.add_argument_group("many series in one table")
+    grp.add_argument("--group", metavar="COL",
+                     help="the table holds several series, one per value of column COL (e.g. station), each "
+                          "with its own strictly increasing times: fit smooths each group on its own (see "
+                          "--group-fit) in one batched run; the outputs keep COL as their first column. apply: "
+                          "a model fitted per group reads its group column from the model file (each group "
+                          "with its own parameters; a group it does not know is an error); any other model is "
+                          "applied to every group of COL")
+    grp.add_argument("--report-group", metavar="VALUE",
+                     help="with --group: the group drawn in the report (default: the first in the table)")
     misc = common.add_argument_group("other")
     misc.add_argument("--quiet", "-q", action="store_true", help="print errors only (no progress, no summary)")
     misc.add_argument("--debug", action="store_true", help="show the Python traceback of an internal error")
@@ -188,7 +198,14 @@ def build_parser() -> argparse.ArgumentParser:
             "A fraction (--test-fraction) of blocks of --test-block consecutive rows is hidden from the\n"
             "fit as gaps and used to report the held-out error of the starting model and of the fitted\n"
             "model. A fit that makes it worse prints a warning on stderr (also recorded in the model\n"
-            "file); the outputs are written and the exit code stays 0.\n\n"
+            "file); the outputs are written and the exit code stays 0. With --objective likelihood\n"
+            "the summary gives each parameter with its standard error in natural units (observed\n"
+            "information of the log-parameters, mapped by the delta method: SE(v) = v SE(log v)).\n\n"
+            "Many series: --group station splits a long table (one row per station and time) by\n"
+            "station and fits every group in one batched run: one parameter set per group\n"
+            "(--group-fit separate, the default; the same as fitting each group alone) or one for\n"
+            "all (--group-fit shared). Example:\n"
+            "  kalmax fit stations.csv --time time --model random-walk --measure temp --group station\n\n"
             "Model kinds (--model):\n" + _kinds_text() + "\n\n" + _components_text() + "\n\n"
             "Each --measure names a column and, after '=', the state it measures; without '=' the\n"
             "k-th such column measures the k-th position/level. Example, positions in two axes plus a\n"
@@ -244,12 +261,20 @@ def build_parser() -> argparse.ArgumentParser:
                    help="fraction of the --test-block blocks (or of the observed cells, with --test-block "
                         "cells) hidden from the fit and used to report the held-out error, 0 to use everything "
                         "for fitting (default: %(default)s)")
-    h.add_argument("--test-block", default="10", metavar="ROWS",
+    h.add_argument("--test-block", default="10", metavar="ROWS|DURATION",
                    help="hold out whole blocks of this many consecutive rows (every measured column of them), "
+                        "or of this duration when given with a time unit (6h, 2day: the rows it spans at "
+                        "the data's typical step; numeric times need --time-unit), "
                         "both for the reported held-out error and for the folds of --objective holdout, so the "
                         "error is that of bridging a gap of that length; 'cells' holds out random single cells "
                         "instead, which have measured neighbours on both sides and so mostly test interpolation "
                         "across one step (default: %(default)s)")
+    h.add_argument("--group-fit", choices=("separate", "shared"), default="separate",
+                   help="with --group: 'separate' fits one set of parameters per group (default: groups such "
+                        "as stations usually differ; it is the same as fitting each group's rows alone, run as "
+                        "one batch), saved per group in the model file (format version 5); 'shared' fits one "
+                        "set of parameters to all groups (the likelihood summed over groups), saved as an "
+                        "ordinary model file")
     h.add_argument("--folds", type=int, default=4, metavar="K",
                    help="cross-validation folds for --objective holdout (default: %(default)s)")
     h.add_argument("--seed", type=int, default=0, help="seed of the random held-out choices (default: %(default)s)")
@@ -350,17 +375,26 @@ def _table_for(args, spec, series, smoothing, test_mask=None):
                                        test_mask=test_mask)
 
 
-def _test_block(args):
-    """The --test-block length in rows, or None for 'cells' (UsageError otherwise)."""
+def _test_block(args, series=None):
+    """The --test-block length in rows, or None for 'cells' (UsageError otherwise).
+
+    A plain whole number is rows; a number with a time unit (6h, 2day) is a
+    duration, turned into rows of ``series`` at its typical step
+    (``horizon.duration_rows``)."""
+    from ._src.tools import horizon
+
     text = str(args.test_block).strip().lower()
     if text == "cells":
         return None
     try:
         rows = int(text)
     except ValueError:
+        if series is not None and any(ch.isalpha() for ch in text):
+            return horizon.duration_rows(series, str(args.test_block).strip(), "--test-block")
         rows = 0
     if rows < 1:
-        raise UsageError(f"--test-block must be a whole number of rows >= 1 or 'cells'; got {args.test_block!r}.")
+        raise UsageError(f"--test-block must be a whole number of rows >= 1, a duration with a time unit "
+                         f"(e.g. 6h) or 'cells'; got {args.test_block!r}.")
     return rows
 
 
@@ -502,6 +536,10 @@ def cmd_fit(args) -> int:
     table_path, report_path, model_path = _outputs(args, model_file=True, inputs=[
         ("DATA", args.data), ("--start", args.start), ("--future-inputs", args.future_inputs)])
 
+    if args.group is not None:
+        return _fit_groups(args, forecast_steps, table_path, report_path, model_path)
+    if args.report_group is not None:
+        raise UsageError("--report-group needs --group COL.")
     start = model_file.load_model(args.start) if args.start else None
     time_unit, numeric_unit = args.time_unit, args.numeric_time_unit
     if args.components is not None and (args.model is not None or start is not None):
@@ -594,7 +632,9 @@ def cmd_fit(args) -> int:
         raise UsageError(f"--fix {bad[0]}: unknown parameter; this model has {', '.join(sorted(allowed))}.")
 
     mask = series.mask
-    block = _test_block(args)
+    block = _test_block(args, series)
+    if block is not None and not str(args.test_block).strip().isdigit():
+        _say(args, f"Held-out blocks: --test-block {args.test_block} is {block} rows at the typical step.")
     if args.test_fraction > 0 and block is None:
         test = np.asarray(splits.holdout_entries(mask, args.test_fraction, args.seed))
     elif args.test_fraction > 0:
@@ -643,9 +683,16 @@ def cmd_fit(args) -> int:
         "final_loss": outcome.history[outcome.best_step] if outcome.history else None,
         "learning_rate": args.learning_rate, "fixed": list(args.fix), "test_fraction": args.test_fraction,
         "seed": args.seed, "test_block": block if block is not None else "cells",
+        **({"test_block_given": str(args.test_block)} if block is not None
+           and not str(args.test_block).strip().isdigit() else {}),
         "heldout_rmse_before": before, "heldout_rmse_after": after, "warnings": warnings,
         **({"components": args.components} if args.components is not None else {}),
     })
+    natural_ses = None
+    if args.objective == "likelihood" and outcome.steps_run > 0:
+        natural_ses = _natural_standard_errors(fitted, fit_workflow.log_standard_errors(
+            fitted, series, train, fixed=tuple(args.fix)))
+        fitted = fitted.replace(fit={**fitted.fit, "standard_errors": natural_ses})
     smoothing = apply_workflow.smooth_series(fitted, out_series)
     names, cols = _table_for(args, fitted, out_natural, smoothing, test if test.any() else None)
     summary = ""
@@ -664,21 +711,274 @@ def cmd_fit(args) -> int:
                                      else "CV squared error (sd units)"),
                          title=f"kalmax fit: {fitted.label} on {Path(args.data).name}{_scale_note(fitted)}",
                          summary=summary)
-    def fmt(v):
-        return "[" + ", ".join(f"{x:.4g}" for x in v) + "]" if isinstance(v, (list, tuple)) else f"{v:.4g}"
-
     per = f" (rates per {fitted.time_unit})" if fitted.time_unit else ""
-    _say(args, f"Fitted parameters{per}: " + ", ".join(f"{k}={fmt(v)}" for k, v in fitted.params.items())
-         + "; noise sd " + ", ".join(f"{c} {math.sqrt(r):.4g}" for c, r in zip(fitted.columns, fitted.noise)))
+    _say(args, f"Fitted parameters{per}: {_parameter_text(fitted, natural_ses)}"
+         + (" (± standard error)" if natural_ses else ""))
     _say(args, f"Wrote {table_path}, {model_path}" + (f", {report_path}" if report_path else ""))
     return EXIT_OK
+
+
+def _read_groups(args, time_column, columns, *, time_format=None, time_unit=None, numeric_time_unit=None,
+                 time_pattern=None, inputs=(), forbidden=()):
+    """[(group value, series)] of DATA split by --group (see ``tools/groups.py``)."""
+    from ._src.tools import groups, series, tables
+
+    names, table = tables.read_table(args.data)
+    split = groups.split_rows(names, table, args.group, str(args.data),
+                              forbidden=[("--time", time_column)] + [("--measure", c) for c in columns]
+                              + [("regression input", c) for c in inputs] + list(forbidden))
+    groups.check_group_rows(split, args.group, str(args.data))
+    if args.report_group is not None and args.report_group not in [v for v, _ in split]:
+        raise UsageError(f"--report-group {args.report_group!r}: no such group in column {args.group!r} of "
+                         f"{args.data}; the first groups are {', '.join(repr(v) for v, _ in split[:5])}.")
+    out = []
+    for value, rows in split:
+        s = series.series_from_table(names, groups.sub_table(table, rows), time_column, columns,
+                                     source=f"{args.data} (group {args.group}={value})", time_format=time_format,
+                                     missing=args.missing, time_unit=time_unit, numeric_time_unit=numeric_time_unit,
+                                     time_pattern=time_pattern, inputs=inputs)
+        out.append((value, s))
+    kinds = {s.time_format for _, s in out}
+    if len(kinds) > 1:
+        raise DataError(f"{args.data}: some groups of {args.group!r} have numeric times and others date-times; "
+                        "one table needs one kind of time.")
+    return out
+
+
+def _grouped_table(args, specs, values, naturals, smoothings, tests):
+    """(names, columns) of the result table of every group, the group column first."""
+    from ._src.tools import apply_workflow
+
+    names, cols = None, None
+    for spec, value, natural, sm, test in zip(specs, values, naturals, smoothings, tests):
+        n, c = apply_workflow.output_table(spec, natural, sm, level=args.level, with_states=args.with_states,
+                                           test_mask=test)
+        if args.group in n:
+            raise DataError(f"the output column names collide: --group {args.group!r} is also an output column.")
+        if names is None:
+            names, cols = [args.group] + n, {args.group: [], **{k: [] for k in n}}
+        cols[args.group].extend([value] * len(natural.times_raw))
+        for k in n:
+            cols[k].extend(c[k])
+    return names, cols
+
+
+def _fit_groups(args, forecast_steps, table_path, report_path, model_path) -> int:
+    """``kalmax fit --group COL``: the groups of DATA fitted in one batched run (``tools/groups.py``)."""
+    import numpy as np
+
+    from ._src import splits
+    from ._src.tools import composed, groups, horizon, model_file, starting_values, tables
+    from ._src.tools import apply_workflow
+    from ._src.tools.report import write_report
+    from ._src.tools.settings import apply_settings, parse_measures
+    from ._src.tools.spec import KINDS, check_columns
+
+    for opt, given in (("--start", args.start), ("--future-inputs", args.future_inputs)):
+        if given is not None:
+            raise UsageError(f"{opt} does not go with --group: fit the groups from their own starting values, "
+                             "or fit each group's rows alone.")
+    if args.objective != "likelihood":
+        raise UsageError("--objective holdout does not go with --group; the groups are fitted by likelihood.")
+    inputs, drafts = (), None
+    if args.components is not None:
+        if args.model is not None:
+            raise UsageError("--components gives the model, and so does --model; drop one of them.")
+        missing = [o for o, v in (("--time", args.time), ("--measure", args.measure)) if not v]
+        if missing:
+            raise UsageError(f"fit needs {', '.join(missing)}.")
+        drafts = composed.parse_components(args.components)
+        cols, reads = composed.parse_reads(args.measure, [d.name for d in drafts])
+        inputs = composed.input_columns(drafts)
+    else:
+        missing = [o for o, v in (("--time", args.time), ("--model", args.model), ("--measure", args.measure))
+                   if not v]
+        if missing:
+            raise UsageError(f"fit needs {', '.join(missing)} (or --components TEXT).")
+        if args.model not in KINDS:
+            raise UsageError(f"--model {args.model!r} is not a model kind; choose one of {', '.join(KINDS)}.")
+        cols, states, dims = parse_measures(args.measure, args.model, args.dims)
+    try:
+        check_columns(args.time, cols)
+    except ValueError as e:
+        raise UsageError(f"--measure: {e}") from None
+    read = _read_groups(args, args.time, cols, time_unit=args.time_unit, numeric_time_unit=args.numeric_time_unit,
+                        time_pattern=_time_pattern(args), inputs=inputs)
+    values = [v for v, _ in read]
+    naturals, series_list, specs = [], [], []
+    for value, natural in read:
+        chosen, s = _transformed(args, natural, cols)
+        try:
+            spec = (starting_values.composed_spec(drafts, args.time, cols, reads, s) if drafts is not None
+                    else starting_values.default_spec(args.model, dims, args.time, cols, states, s))
+        except ValueError as e:
+            raise UsageError(f"--components (group {args.group}={value}): {e}") from None
+        spec = spec.replace(transforms=chosen, time_unit=s.unit, time_pattern=s.clock.pattern,
+                            numeric_time_unit=args.numeric_time_unit if s.time_format == "number" else None)
+        specs.append(apply_settings(spec, args.set))
+        naturals.append(natural)
+        series_list.append(s)
+    allowed = specs[0].free_names()
+    bad = [f for f in args.fix if f not in allowed]
+    if bad:
+        raise UsageError(f"--fix {bad[0]}: unknown parameter; this model has {', '.join(sorted(allowed))}.")
+    tests, trains, blocks = [], [], []
+    for value, s in zip(values, series_list):
+        block = _test_block(args, s)  # a duration: rows at each group's own typical step
+        blocks.append(block)
+        mask = s.mask
+        if args.test_fraction > 0:
+            test = np.asarray(splits.holdout_entries(mask, args.test_fraction, args.seed) if block is None
+                              else splits.holdout_blocks(mask, block, args.test_fraction, args.seed))
+        else:
+            test = np.zeros_like(mask)
+        train = mask & ~test
+        empty = [c for j, c in enumerate(cols) if not train[:, j].any()]
+        if empty:
+            raise DataError(f"{args.data}: group {args.group}={value!r} (--group) has no training observation of "
+                            f"{', '.join(empty)} after holding out test cells; lower --test-fraction, or drop "
+                            "that group.")
+        tests.append(test)
+        trains.append(train)
+    rows = sum(len(s.t) for s in series_list)
+    _say(args, f"Read {args.data}: {rows} rows in {len(values)} groups of {args.group!r} "
+               f"({min(len(s.t) for s in series_list)} to {max(len(s.t) for s in series_list)} rows each).")
+    have_test = any(t.any() for t in tests)
+
+    def pooled(errors_list):
+        """Held-out RMSE in sd units over every group's held-out cells."""
+        n = [int(t.sum()) for t in tests]
+        total = sum(k for k, e in zip(n, errors_list) if k and math.isfinite(e["all"]))
+        ss = sum(k * e["all"] ** 2 for k, e in zip(n, errors_list) if k and math.isfinite(e["all"]))
+        return math.sqrt(ss / total) if total else math.nan
+
+    before = [apply_workflow.heldout_rmse(sp, s, t) for sp, s, t in zip(specs, series_list, tests)] \
+        if have_test else None
+    _say(args, f"Fitting {specs[0].label} to {len(values)} groups ({args.group_fit} parameters, {args.steps} "
+               "steps) ...")
+    batch = groups.pad_groups(series_list, trains)
+    fitted, history, result, ses = groups.fit_groups(
+        specs, batch, mode=args.group_fit, steps=args.steps, learning_rate=args.learning_rate,
+        fixed=tuple(args.fix), progress=not args.quiet, standard_errors=True)
+    after = [apply_workflow.heldout_rmse(sp, s, t) for sp, s, t in zip(fitted, series_list, tests)] \
+        if have_test else None
+    warnings = []
+    if have_test:
+        b, a = pooled(before), pooled(after)
+        _say(args, f"Held-out RMSE over all groups, in units of each column's sd: before {b:.4g}, after {a:.4g}")
+        if math.isfinite(b) and not a <= b:
+            warnings.append(f"fitting made the held-out error worse (RMSE in sd units over all groups: start "
+                            f"{b:.4g}, fitted {a:.4g}). Check --steps, --learning-rate and the model; the fitted "
+                            "model was written all the same.")
+    for w in warnings:
+        print(f"kalmax: warning: {w}", file=sys.stderr, flush=True)
+    out_naturals, out_series = [], []
+    for natural, s, spec in zip(naturals, series_list, fitted):
+        ext = natural if forecast_steps is None else horizon.extend(natural, forecast_steps, args.forecast_step)
+        out_naturals.append(ext)
+        out_series.append(ext._replace(y=np.concatenate([s.y, ext.y[len(s.y):]])))
+    if forecast_steps is not None:
+        _say(args, f"Forecast: {forecast_steps} rows after the last time of each group.")
+    smoothings = groups.smooth_groups(fitted, out_series)
+    finite = [se if all(np.all(np.isfinite(v)) for v in se.values()) else None for se in ses]
+    natural_ses = [_natural_standard_errors(f, se) for f, se in zip(fitted, finite)]
+    record = {
+        "data": Path(args.data).name, "rows": rows, "objective": "likelihood", "group_column": args.group,
+        "group_fit": args.group_fit, "groups": len(values), "steps_run": int(result.steps_run),
+        "best_step": int(result.best_step), "stop_reason": str(result.stop_reason),
+        "final_loss": history[result.best_step] if history else None, "learning_rate": args.learning_rate,
+        "fixed": list(args.fix), "test_fraction": args.test_fraction, "seed": args.seed,
+        "test_block": (str(args.test_block) if not str(args.test_block).strip().isdigit() else blocks[0])
+        if blocks[0] is not None else "cells",
+        "heldout_rmse_before": None if before is None else dict(zip(values, before)),
+        "heldout_rmse_after": None if after is None else dict(zip(values, after)),
+        "warnings": warnings,
+        **({"components": args.components} if args.components is not None else {}),
+    }
+    if args.group_fit == "separate":
+        record["standard_errors"] = {v: se for v, se in zip(values, natural_ses)}
+        saved = fitted[0].replace(fit=record, group_column=args.group, groups=tuple(
+            (v, dict(f.params), tuple(f.noise)) for v, f in zip(values, fitted)))
+    else:
+        record["standard_errors"] = natural_ses[0]
+        saved = fitted[0].replace(fit=record)
+    names, table = _grouped_table(args, fitted, values, out_naturals, smoothings, tests)
+    shown = values.index(args.report_group) if args.report_group is not None else 0
+    with AtomicOutputs() as out:
+        tables.write_table(table_path, names, table, out)
+        model_file.save_model(model_path, saved, out)
+        if report_path is not None:
+            g = shown
+            write_report(out.temp_for(report_path), fitted[g], out_series[g], smoothings[g], level=args.level,
+                         test_mask=tests[g] if tests[g].any() else None, history=history,
+                         loss_label="−log-likelihood per cell" + (", summed over groups"
+                                                                   if args.group_fit == "separate" else ""),
+                         title=f"kalmax fit: {fitted[g].label} on {Path(args.data).name}, group "
+                               f"{args.group}={values[g]} ({g + 1} of {len(values)}){_scale_note(fitted[g])}")
+    per = f" (rates per {fitted[0].time_unit})" if fitted[0].time_unit else ""
+    if args.group_fit == "shared":
+        _say(args, f"Fitted parameters, shared by all groups{per}: {_parameter_text(fitted[0], natural_ses[0])}")
+    else:
+        for v, f, se in list(zip(values, fitted, natural_ses))[:10]:
+            _say(args, f"Fitted parameters of {args.group}={v}{per}: {_parameter_text(f, se)}")
+        if len(values) > 10:
+            _say(args, f"... and {len(values) - 10} more groups (all in {model_path}).")
+    _say(args, f"Wrote {table_path}, {model_path}" + (f", {report_path}" if report_path else ""))
+    return EXIT_OK
+
+
+def _natural_standard_errors(spec, se_log):
+    """Standard errors of the fitted parameters in their natural units, by the delta method.
+
+    The fit works in log-parameters θ = log v (a regression coefficient as it
+    is), and ``se_log`` holds the standard errors of θ from the observed
+    information (``kx.standard_errors``). For v = exp(θ), dv/dθ = v, so to
+    first order SE(v) ≈ v · SE(θ) (the delta method: Casella & Berger,
+    Statistical Inference, 2nd ed., §5.5.4). For a small SE(θ) this is the
+    half-width of the log-scale interval mapped back, divided by z; for
+    SE(θ) ≳ 0.5 the log-scale interval exp(θ ± z SE(θ)) is the better summary
+    (asymmetric). None when the information is not positive definite.
+    """
+    import numpy as np
+
+    if se_log is None:
+        return None
+    out = {}
+    for name, s in se_log.items():
+        s = np.asarray(s, dtype=np.float64)
+        value = np.asarray(spec.noise if name == "noise" else spec.params[name], dtype=np.float64)
+        nat = value * s if spec.is_positive(name) else s
+        out[name] = [float(x) for x in nat] if nat.ndim else float(nat)
+    return out
+
+
+def _parameter_text(spec, ses=None) -> str:
+    """``name=value ± SE`` for every parameter, then the noise sds (each column's)."""
+    def fmt(v, e=None):
+        if isinstance(v, (list, tuple)):
+            es = e if isinstance(e, (list, tuple)) else [None] * len(v)
+            return "[" + ", ".join(fmt(x, y) for x, y in zip(v, es)) + "]"
+        if e is None or not math.isfinite(e):
+            return f"{v:.4g}"
+        return f"{v:.4g} ± {e:.2g}"
+
+    ses = ses or {}
+    text = ", ".join(f"{k}={fmt(v, ses.get(k))}" for k, v in spec.params.items())
+    noise_se = ses.get("noise")
+    parts = []
+    for j, (c, r) in enumerate(zip(spec.columns, spec.noise)):
+        sd = math.sqrt(r)
+        # sd = sqrt(r): d sd / d r = 1 / (2 sd), so SE(sd) ≈ SE(r) / (2 sd) (delta method).
+        e = None if noise_se is None else noise_se[j] / (2 * sd)
+        parts.append(f"{c} {fmt(sd, e)}")
+    return text + "; noise sd " + ", ".join(parts)
 
 
 def _scale_note(spec) -> str:
     """A report title's note of the columns drawn on a transformed scale (empty without transforms)."""
     if not spec.transforms:
         return ""
-    return " (drawn on the model's scale: " + ", ".join(f"{n}({c})" for c, n in spec.transforms) + ")"
+    return " (modelled as " + ", ".join(f"{n}({c})" for c, n in spec.transforms) + ", drawn back-transformed)"
 
 
 def cmd_apply(args) -> int:
@@ -694,6 +994,13 @@ def cmd_apply(args) -> int:
     table_path, report_path, _ = _outputs(args, model_file=False, inputs=[
         ("DATA", args.data), ("MODEL.json", args.model_file), ("--future-inputs", args.future_inputs)])
     spec = model_file.load_model(args.model_file)
+    if spec.groups and args.group is not None and args.group != spec.group_column:
+        raise UsageError(f"--group {args.group}: the model file was fitted per group of {spec.group_column!r}; "
+                         "drop --group (the model file names its group column) or give that column.")
+    if spec.groups or args.group is not None:
+        return _apply_groups(args, spec, forecast_steps, table_path, report_path)
+    if args.report_group is not None:
+        raise UsageError("--report-group needs --group COL (or a model file fitted per group).")
     _check_future_inputs(args, spec)
     if horizon.step_needs_unit(args.forecast_step, spec.time_format, spec.time_unit):
         raise ModelFileError(f"{args.model_file}: the model names no time unit (numeric times fitted without "
@@ -715,6 +1022,57 @@ def cmd_apply(args) -> int:
             write_report(out.temp_for(report_path), spec, series, smoothing, level=args.level,
                          title=f"kalmax apply: {spec.label} model {Path(args.model_file).name} on "
                                f"{Path(args.data).name}{_scale_note(spec)}")
+    _say(args, f"Wrote {table_path}" + (f", {report_path}" if report_path else ""))
+    return EXIT_OK
+
+
+def _apply_groups(args, spec, forecast_steps, table_path, report_path) -> int:
+    """``kalmax apply`` on a table of groups: each group with its own parameters (a model fitted per group)
+    or all with the one model."""
+    import numpy as np
+
+    from ._src.tools import groups, horizon, tables
+    from ._src.tools.report import write_report
+
+    column = spec.group_column or args.group
+    if args.future_inputs is not None:
+        raise UsageError("--future-inputs does not go with groups; add the future rows to DATA instead.")
+    _check_future_inputs(args, spec)
+    if horizon.step_needs_unit(args.forecast_step, spec.time_format, spec.time_unit):
+        raise ModelFileError(f"{args.model_file}: the model names no time unit, so --forecast-step "
+                             f"{args.forecast_step} cannot be converted; give the step as a plain number.")
+    args.group = column
+    read = _read_groups(args, spec.time_column, spec.columns, time_format=spec.time_format,
+                        time_unit=spec.time_unit, numeric_time_unit=spec.numeric_time_unit,
+                        time_pattern=_time_pattern(args, spec.time_pattern), inputs=spec.input_columns())
+    values = [v for v, _ in read]
+    if spec.groups:
+        unknown = [v for v in values if v not in spec.group_values()]
+        if unknown:
+            raise DataError(f"{args.data}: group {column}={unknown[0]!r} is not one of the model file's groups "
+                            f"({', '.join(repr(v) for v in spec.group_values()[:10])}"
+                            f"{', ...' if len(spec.groups) > 10 else ''}); a model fitted per group has no "
+                            "parameters for it. Fit it, or fit with --group-fit shared.")
+        specs = [spec.for_group(v) for v in values]
+    else:
+        specs = [spec] * len(values)
+    naturals, out_series = [], []
+    for (value, natural), sp in zip(read, specs):
+        _, transformed = _transformed(args, natural, sp.columns, sp.transforms)
+        ext = natural if forecast_steps is None else horizon.extend(natural, forecast_steps, args.forecast_step)
+        naturals.append(ext)
+        out_series.append(ext._replace(y=np.concatenate([transformed.y, ext.y[len(transformed.y):]])))
+    _say(args, f"Read {args.data}: {sum(len(s.t) for _, s in read)} rows in {len(values)} groups of {column!r}.")
+    smoothings = groups.smooth_groups(specs, out_series)
+    names, table = _grouped_table(args, specs, values, naturals, smoothings, [None] * len(values))
+    g = values.index(args.report_group) if args.report_group is not None else 0
+    with AtomicOutputs() as out:
+        tables.write_table(table_path, names, table, out)
+        if report_path is not None:
+            write_report(out.temp_for(report_path), specs[g], out_series[g], smoothings[g], level=args.level,
+                         title=f"kalmax apply: {spec.label} model {Path(args.model_file).name} on "
+                               f"{Path(args.data).name}, group {column}={values[g]} ({g + 1} of {len(values)})"
+                               f"{_scale_note(spec)}")
     _say(args, f"Wrote {table_path}" + (f", {report_path}" if report_path else ""))
     return EXIT_OK
 

@@ -174,8 +174,8 @@ def _bad_inputs(folder: Path):
                                         columns=("pos", "vel"), measured=("position0", "velocity0"),
                                         params={"q": [0.1]}, noise=(0.1, 0.01)))
     (folder / "good.json").write_text(json.dumps(doc))
-    doc["format_version"] = 5
-    (folder / "v5.json").write_text(json.dumps(doc))
+    doc["format_version"] = 6
+    (folder / "v6.json").write_text(json.dumps(doc))
     doc["format_version"] = 2
     doc["model"]["measurements"][0]["noise_variance"] = -1.0
     (folder / "negative.json").write_text(json.dumps(doc))
@@ -204,8 +204,8 @@ def _bad_inputs(folder: Path):
         ("parquet without pyarrow", S, ["apply", "iso.json", "bad.parquet"], 3,
          ["pyarrow", "not installed"], no_pyarrow),
         ("report path is a folder", P, fit + ["ok.csv", *FIT_ARGS, "--report", "a_folder"], 3, ["is a folder"]),
-        ("model from another version", S, ["apply", "v5.json", "ok.csv"], 4,
-         ["format version 5", "reads format versions 1, 2, 3 and 4"]),
+        ("model from another version", S, ["apply", "v6.json", "ok.csv"], 4,
+         ["format version 6", "reads format versions 1, 2, 3, 4 and 5"]),
         ("model file missing", P, ["apply", "none.json", "ok.csv"], 4, ["no such file"]),
         ("missing options", S, fit + ["ok.csv", "--measure", "pos"], 2, ["--time", "--model"]),
         ("axis never measured", S, fit + ["ok.csv", "--time", "t", "--model", "constant-velocity", "--dims", "2",
@@ -222,8 +222,8 @@ def _bad_inputs(folder: Path):
         ("empty file", P, fit + ["blank.csv", *FIT_ARGS], 3, ["empty"]),
         ("output folder missing", P, fit + ["ok.csv", *FIT_ARGS, "-o", "no/such/dir/out.csv"], 3,
          ["does not exist"]),
-        ("start from another version", P, fit + ["ok.csv", "--start", "v5.json", "--quiet"], 4,
-         ["format version 5"]),
+        ("start from another version", P, fit + ["ok.csv", "--start", "v6.json", "--quiet"], 4,
+         ["format version 6"]),
         ("invalid model values", P, ["apply", "negative.json", "ok.csv"], 4, ["noise", "> 0"]),
         ("NaN in model file", P, ["apply", "nan.json", "ok.csv"], 4, ["invalid JSON"]),
         ("model not json", P, ["apply", "notjson.json", "ok.csv"], 4, ["invalid JSON"]),

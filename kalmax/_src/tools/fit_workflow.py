@@ -51,3 +51,20 @@ def fit_spec(spec: ModelSpec, series: Series, train_mask, *, objective: str = "l
                                  block_length=block_length)
     history = [float(h) for h in np.asarray(result.history["loss"])]
     return FitOutcome(fitted, history, int(result.best_step), int(result.steps_run), str(result.stop_reason))
+
+
+def log_standard_errors(spec: ModelSpec, series: Series, train_mask, *, fixed=()):
+    """Standard errors of the free log-parameters of ``spec`` (a regression coefficient: of itself) from the
+    observed information of the training cells' likelihood (``kx.standard_errors``); None when it is not
+    positive definite (the estimate is not a strict local maximum: too few steps, a parameter not identified).
+    """
+    from ..fitting import standard_errors
+
+    theta = {k: jnp.asarray(v) for k, v in spec.to_unconstrained(fixed).items()}
+    if not theta:
+        return None
+    loss, data = make_loss(spec, series, train_mask, "likelihood", fixed=fixed)
+    n_obs = float(np.sum(train_mask))
+    se = standard_errors(lambda th: loss(th, *data) * n_obs, theta)
+    se = {k: np.asarray(v) for k, v in se.items()}
+    return se if all(np.all(np.isfinite(v)) for v in se.values()) else None

@@ -106,6 +106,25 @@ def native_step(series: Series, text: Optional[str]) -> Fraction:
     return amount * UNITS[unit] * clock.native_per_unit / UNITS[clock.unit]
 
 
+def duration_rows(series: Series, text: str, option: str) -> int:
+    """A duration with a unit (``6h``, ``2 day``) as a number of rows of ``series``: the duration divided
+    by the typical step (:func:`typical_step`), rounded, at least 1. On a regular record that is exactly
+    the rows the duration spans; on an irregular one, the rows it spans at the typical rate."""
+    try:
+        amount, unit = parse_duration(text, option)
+    except ValueError as e:
+        raise UsageError(str(e)) from None
+    clock = series.clock
+    if series.time_format == "iso8601":
+        native = amount * UNITS[unit]
+    elif clock is None or clock.unit is None:
+        raise UsageError(f"{option} {text!r} names a time unit, but the numeric time column has no named unit; "
+                         "give the length in rows, or name the column's unit with --time-unit.")
+    else:
+        native = amount * UNITS[unit] * clock.native_per_unit / UNITS[clock.unit]
+    return max(1, round(native / typical_step(series)))
+
+
 # ----------------------------------------------------------------------------
 # Writing a timestamp like the column writes its cells
 # ----------------------------------------------------------------------------

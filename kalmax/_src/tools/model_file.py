@@ -31,7 +31,17 @@ Format versions:
    with a transform; every other model is still written as version 3, so
    readers of version 3 keep reading it.
 
-:func:`save_model` writes version 3, or 4 for a model with a transform;
+5. adds, in ``model``, ``groups`` (``kalmax fit --group COL``, fitted
+   separately per group): ``{"column": COL, "members": [{"value": V,
+   "parameters": {...}, "noise_variance": [...]}, ...]}``, each member's
+   ``parameters`` in the form of ``model.parameters`` and one noise variance
+   per measurement column. ``model.parameters`` and the measurements' noise
+   variances then hold the first group's values. Written only for such a
+   model; a model fitted with shared parameters over groups is an ordinary
+   one-model file (the group column is recorded in ``fit``).
+
+:func:`save_model` writes version 3, 4 for a model with a transform, 5 for a
+model with per-group parameters;
 version-1 and version-2 files still load, with the units above (:func:`spec_to_dict` can still write them, for
 models they can hold).
 """
@@ -52,7 +62,9 @@ from .time_units import MAX_PATTERN_CHARS, UNITS, unit_names
 FORMAT_NAME = "kalmax-model"
 FORMAT_VERSION = 3  # written for every model without a transform
 TRANSFORM_VERSION = 4  # written for a model with a transform
-READABLE_VERSIONS = (1, 2, 3, 4)
+GROUPS_VERSION = 5  # written for a model with per-group parameters
+READABLE_VERSIONS = (1, 2, 3, 4, 5)
+MAX_GROUPS = 10000
 V2_ENTRIES = ("time_unit", "numeric_time_unit", "time_pattern")  # model entries new in version 2
 V3_ENTRIES = ("components",)  # model entries new in version 3
 V4_ENTRIES = ("transforms",)  # model entries new in version 4
@@ -83,7 +95,9 @@ def spec_to_dict(spec: ModelSpec, version: int = None) -> dict:
     from ..version import __version__
 
     if version is None:
-        version = TRANSFORM_VERSION if spec.transforms else FORMAT_VERSION
+        version = GROUPS_VERSION if spec.groups else TRANSFORM_VERSION if spec.transforms else FORMAT_VERSION
+    if spec.groups and version < GROUPS_VERSION:
+        raise ValueError(f"format version {version} cannot hold per-group parameters (version 5 and later).")
     if version not in READABLE_VERSIONS:
         raise ValueError(f"version must be one of {READABLE_VERSIONS}; got {version!r}.")
     if spec.transforms and version < 4:
@@ -132,6 +146,10 @@ def spec_to_dict(spec: ModelSpec, version: int = None) -> dict:
                             + list(m.items())[at:])
     if spec.transforms:
         doc["model"]["transforms"] = dict(spec.transforms)
+    if spec.groups:
+        doc["model"]["groups"] = {"column": spec.group_column, "members": [
+            {"value": v, "parameters": {k: (list(x) if isinstance(x, (list, tuple)) else x) for k, x in p.items()},
+             "noise_variance": [float(r) for r in noise]} for v, p, noise in spec.groups]}
     if version == 1:
         for k in V2_ENTRIES:
             del doc["model"][k]
@@ -260,6 +278,10 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
         _require(units["time_unit"] is not None or time_format == "number",
                  "'time_unit' must name a unit for date-times (time_format iso8601); null is for numbers only.",
                  path)
+    _require(version >= GROUPS_VERSION or "groups" not in m, f"'groups' is an entry of format version 5, but the "
+                                                             f"file says format_version {version} (a reader of "
+                                                             "that version would ignore it).", path)
+    group_column, groups = _groups_from_doc(m["groups"], path) if "groups" in m else (None, ())
     columns = tuple(e["column"] for e in meas)
     try:
         spec = ModelSpec(
@@ -274,6 +296,8 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
             fit=fit,
             components=parts,
             transforms=tuple(transforms.items()),
+            group_column=group_column,
+            groups=groups,
             **units,
         )
         if is_composed and "states" in m:  # written for readers; if present, the components' states
@@ -285,6 +309,31 @@ def spec_from_dict(doc, path="<model>") -> ModelSpec:
     except OverflowError:  # an integer too large for a float (JSON integers are unbounded)
         raise ModelFileError(f"{path}: invalid model: a number is too large to be a floating-point value "
                              "(the largest is about 1.8e308).") from None
+
+
+def _groups_from_doc(entry, path):
+    """(group column, ((value, parameters, noise), ...)) of a version-5 'groups' entry, checked for types
+    (values: ``ModelSpec``)."""
+    _require(isinstance(entry, dict) and set(entry) == {"column", "members"},
+             "'groups' must be an object with 'column' and 'members'.", path)
+    column, members = entry["column"], entry["members"]
+    _require(isinstance(column, str) and 0 < len(column) <= MAX_NAME_CHARS,
+             "'groups.column' must be a non-empty text.", path)
+    _require(isinstance(members, list) and 1 <= len(members) <= MAX_GROUPS,
+             f"'groups.members' must be a list of 1 to {MAX_GROUPS} objects.", path)
+    out = []
+    for i, e in enumerate(members):
+        _require(isinstance(e, dict) and isinstance(e.get("value"), str) and len(e["value"]) <= MAX_NAME_CHARS
+                 and isinstance(e.get("parameters"), dict) and isinstance(e.get("noise_variance"), list)
+                 and len(e["noise_variance"]) <= MAX_COLUMNS,
+                 f"group member {i} needs a text 'value', a 'parameters' object and a 'noise_variance' list.", path)
+        for k, v in list(e["parameters"].items()) + [("noise_variance", e["noise_variance"])]:
+            ok = isinstance(v, (int, float)) and not isinstance(v, bool)
+            ok = ok or (isinstance(v, list) and len(v) <= MAX_COLUMNS
+                        and all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in v))
+            _require(ok, f"group member {i}: {k!r} must be a number or a list of numbers.", path)
+        out.append((e["value"], dict(e["parameters"]), tuple(float(r) for r in e["noise_variance"])))
+    return column, tuple(out)
 
 
 def _parts_from_doc(entries, path) -> tuple:

@@ -207,10 +207,25 @@ def draw_report(spec, series, smoothing, *, level: float = 0.95, test_mask=None,
         if f:
             ax.axvspan(x[rec - 1], x[-1], facecolor="0.5", alpha=0.12, linewidth=0, label=label)
 
+    # Columns modelled on a transformed scale (--transform) are drawn back on the natural scale: the
+    # transforms are increasing, so interval ends map to interval ends and the mean on the model's scale
+    # to the median (tools/transforms.py). The residual panel stays on the model's scale, where
+    # (measured − smoothed) / sd is standard normal.
+    if spec.transforms:
+        from .transforms import inverse
+
+        def natural(a):
+            return inverse(a, spec.columns, spec.transforms)
+    else:
+        def natural(a):
+            return a
+    ys = natural(series.y)
+    means = natural(smoothing.mean)
+    lows, highs = natural(smoothing.mean - z * smoothing.sd), natural(smoothing.mean + z * smoothing.sd)
+    scale_of = dict(spec.transforms)
     for j, c in enumerate(cols):
         ax = axes[j]
-        m, s = smoothing.mean[:, j], smoothing.sd[:, j]
-        lo, hi = m - z * s, m + z * s
+        m, lo, hi = means[:, j], lows[:, j], highs[:, j]
         shade_forecast(ax, "forecast span" if f else None)
         band(ax, rec_rows, lo, hi, color="tab:blue", alpha=0.18, linewidth=0,
              label=f"{level:.0%} interval (new measurement)")
@@ -219,14 +234,15 @@ def draw_report(spec, series, smoothing, *, level: float = 0.95, test_mask=None,
             band(ax, fc_rows, lo, hi, color="tab:orange", alpha=0.22, linewidth=0)
             line(ax, fc_rows, m, color="tab:orange", linewidth=1.3, linestyle="--", label="forecast", zorder=4)
         seen = np.flatnonzero(mask[:, j] & ~test[:, j])
-        points(ax, seen, series.y[:, j], ".", color="0.25", markersize=2.5 if decimate else 3.5, label="measured")
+        points(ax, seen, ys[:, j], ".", color="0.25", markersize=2.5 if decimate else 3.5, label="measured")
         held = np.flatnonzero(mask[:, j] & test[:, j])
         if held.size:
-            points(ax, held, series.y[:, j], "o", markerfacecolor="none", markeredgecolor="tab:red",
+            points(ax, held, ys[:, j], "o", markerfacecolor="none", markeredgecolor="tab:red",
                    markersize=3 if decimate else 5, markeredgewidth=0.7 if decimate else 1.0,
                    label="held out (not seen by the fit)")
         n_missing = int((~mask[:rec, j]).sum())
-        ax.set_ylabel(f"{c}\n({spec.measured[j]})")
+        ax.set_ylabel(f"{c}\n({spec.measured[j]}"
+                      + (f"; modelled as {scale_of[c]}({c}), drawn back" if c in scale_of else "") + ")")
         ax.grid(alpha=0.3)
         ax.set_title(f"{c}: {int(mask[:, j].sum())} measured, {n_missing} missing or imputed"
                      + (f", {f} forecast rows" if f else ""), fontsize=9, loc="left")
@@ -249,7 +265,8 @@ def draw_report(spec, series, smoothing, *, level: float = 0.95, test_mask=None,
     ax.set_ylabel("standardised\nresidual")
     ax.grid(alpha=0.3)
     ax.set_title(f"standardised residuals: (measured − smoothed) / sd of a new measurement; dotted: ±{z:.3g} "
-                 f"(the {level:.0%} interval)", fontsize=9, loc="left")
+                 f"(the {level:.0%} interval)" + ("; on the model's (transformed) scale" if spec.transforms else ""),
+                 fontsize=9, loc="left")
     if len(cols) > 1:
         ax.legend(loc="upper right", fontsize=7, ncol=min(len(cols) + 1, 5), frameon=False)
     for k in range(len(cols) + 1):

@@ -127,6 +127,13 @@ class ModelSpec:
         transforms: ((column, name), ...): columns modelled on a transformed
             scale (``log``, ``log1p``, ``logit``; see ``tools/transforms.py``).
             The model's measurements, noise and parameters are on that scale.
+        group_column: the table column that names each row's group
+            (``kalmax fit --group``), for a model fitted per group; None
+            otherwise.
+        groups: ((value, params, noise), ...): the parameters of each group
+            of a model fitted separately per group, in the form of
+            ``params`` and ``noise``; ``params``/``noise`` then hold those of
+            the first group (a template). Empty for one model.
     """
 
     kind: str
@@ -144,6 +151,8 @@ class ModelSpec:
     time_pattern: Optional[str] = None
     components: Tuple[composed.Part, ...] = ()
     transforms: Tuple[Tuple[str, str], ...] = ()
+    group_column: Optional[str] = None
+    groups: Tuple[Tuple[str, Mapping[str, object], Tuple[float, ...]], ...] = ()
 
     def __post_init__(self):
         if self.time_format == "iso8601" and self.time_unit is None:
@@ -152,6 +161,17 @@ class ModelSpec:
         from . import transforms as _transforms  # ValueError for a bad entry, like check_spec
 
         object.__setattr__(self, "transforms", _transforms.check(self.transforms, self.columns))
+
+    def group_values(self) -> Tuple[str, ...]:
+        """The groups of a model fitted per group, in order (empty for one model)."""
+        return tuple(v for v, _, _ in self.groups)
+
+    def for_group(self, value: str) -> "ModelSpec":
+        """The one-group model of group ``value`` (KeyError for a group the model does not know)."""
+        for v, params, noise in self.groups:
+            if v == value:
+                return self.replace(params=dict(params), noise=tuple(noise), groups=(), group_column=None)
+        raise KeyError(value)
 
     @property
     def kind_info(self) -> Kind:
@@ -310,6 +330,27 @@ def check_spec(spec: ModelSpec) -> None:
         check_pattern(spec.time_pattern)
     if not (isinstance(spec.jitter, (int, float)) and np.isfinite(spec.jitter) and spec.jitter >= 0):
         raise ValueError(f"jitter must be a finite number >= 0; got {spec.jitter!r}.")
+    _check_groups(spec)
+
+
+def _check_groups(spec: ModelSpec) -> None:
+    """Per-group parameters: a group column, distinct values, and each group's parameters valid."""
+    if spec.groups and not (isinstance(spec.group_column, str) and spec.group_column.strip()):
+        raise ValueError("per-group parameters need the group column's name (group_column).")
+    if spec.group_column is not None and spec.group_column in (spec.time_column,) + tuple(spec.columns):
+        raise ValueError(f"the group column {spec.group_column!r} cannot be the time or a measurement column.")
+    seen = set()
+    for entry in spec.groups:
+        if not (isinstance(entry, (tuple, list)) and len(entry) == 3 and isinstance(entry[0], str)):
+            raise ValueError("each group entry must be (value, parameters, noise).")
+        value, params, noise = entry
+        if value in seen or not value:
+            raise ValueError(f"group values must be distinct and non-empty; got {value!r}.")
+        seen.add(value)
+        try:  # the group's model must be as valid as the template: same parameters, same shapes
+            check_spec(spec.replace(params=dict(params), noise=tuple(noise), groups=(), group_column=None))
+        except (ValueError, TypeError) as e:
+            raise ValueError(f"group {value!r}: {e}") from None
 
 
 def _check_kind(spec: ModelSpec) -> None:
