@@ -63,7 +63,7 @@ from jax import lax
 from . import blocktri, tolerances
 from .model import StateSpace
 from .nonlinear_model import (NonlinearModel, _map_h, canonicalize, from_state_space, hessian_blocks,
-                              linearised_problem, objective)
+                              linearised_problem, objective, whitening)
 from .primitive import get_backend, resolve_method
 from .robust import SquaredLoss, check_loss
 
@@ -92,19 +92,19 @@ class NonlinearSmoothed(NamedTuple):
     converged: jnp.ndarray
 
 
-def _direction(model, loss, y, w, x, method):
-    """(Δ, λ², J(x)): one linearised solve from x."""
-    lin, y_lin = linearised_problem(model, loss, y, w, x)
-    x_hat, _ = get_backend(method).forward(lin, y_lin, w)
-    J, g = jax.value_and_grad(lambda s: objective(model, loss, y, w, s))(x)
-    step = x_hat - x
-    return x_hat, -jnp.sum(g * step), J
+def _direction(model, loss, y, w, x, method, white):
+    """(x̂, λ², J(x)): one linearised solve from x; J and ∇J come with the linearisation."""
+    lin = linearised_problem(model, loss, y, w, x, white)
+    x_hat, _ = get_backend(method).forward(lin.problem, lin.y, w)
+    return x_hat, -jnp.sum(lin.gradient * (x_hat - x)), lin.value
 
 
 def _iterate(model, loss, y, w, init, method, tol, max_iterations):
     """(x, iterations, converged) by the safeguarded Gauss–Newton loop of the module docstring."""
     eps = float(np.finfo(np.dtype(y.dtype)).eps)
-    J_of = lambda s: objective(model, loss, y, w, s)  # noqa: E731
+    # Q, R and the mask do not change during the solve: whiten with factors formed once.
+    white = whitening(model, w)
+    J_of = lambda s: objective(model, loss, y, w, s, white)  # noqa: E731
 
     def line_search(x, J, x_hat, lam2):
         step = x_hat - x
@@ -138,10 +138,10 @@ def _iterate(model, loss, y, w, init, method, tol, max_iterations):
     def body(c):
         k, x, J, x_hat, lam2, _ = c
         x_new, _, ok = line_search(x, J, x_hat, lam2)
-        x_hat_new, lam2_new, J_new = _direction(model, loss, y, w, x_new, method)
+        x_hat_new, lam2_new, J_new = _direction(model, loss, y, w, x_new, method, white)
         return k + 1, x_new, J_new, x_hat_new, lam2_new, ~ok
 
-    x_hat, lam2, J = _direction(model, loss, y, w, init, method)
+    x_hat, lam2, J = _direction(model, loss, y, w, init, method, white)
     k, x, J, _, lam2, failed = lax.while_loop(cond, body, (jnp.zeros((), jnp.int32), init, J, x_hat, lam2,
                                                            jnp.zeros((), bool)))
     converged = stop(lam2, J) & ~failed & jnp.all(jnp.isfinite(x))

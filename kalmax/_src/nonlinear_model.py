@@ -41,7 +41,7 @@ identified: its minimiser minus x̄ is a descent direction.
 from __future__ import annotations
 
 import dataclasses
-from typing import Any, Callable, Optional
+from typing import Any, Callable, NamedTuple, Optional
 
 import jax
 import jax.numpy as jnp
@@ -254,47 +254,135 @@ def _chol_R(model, w):
     return chol(masked_measurement_cov(model.R, w))
 
 
-def whitened_measurement_residual(model, y, w, x):
+class Whitening(NamedTuple):
+    """Inverse Cholesky factors W = L⁻¹ that whiten the residuals of J; they do not depend on x.
+
+    Wq: (n, n) or (T-1, n, n) for Q; Wr: (T, p, p) for the masked R̃_t;
+    Wp: (n, n) for the prior covariance, or None (flat prior).
+    """
+
+    Wq: Array
+    Wr: Array
+    Wp: Optional[Array]
+
+
+def _inverse_factor(S):
+    # A single matrix goes through the batched (looped) code as a batch of one:
+    # the straight-line code for one block compiles k² operations (2 s at k = 10).
+    single = S.ndim == 2
+    S = S[None] if single else S
+    W = lsolve(chol(S), jnp.broadcast_to(jnp.eye(S.shape[-1], dtype=S.dtype), S.shape))
+    return W[0] if single else W
+
+
+def whitening(model: NonlinearModel, w) -> Whitening:
+    """The :class:`Whitening` of a canonical model (dense Q, R) and mask.
+
+    The solver forms it once per solve: Q, R and the mask stay fixed while x
+    moves, so every objective evaluation and linearisation is then a batched
+    matrix-vector product instead of T triangular solves (the CPU kernel keeps
+    inverse diagonal factors for the same reason, ``backends/cpu.py``). For
+    the symmetric positive-definite covariances here, multiplying by L⁻¹
+    instead of substituting with L changes the result at rounding level.
+    Differentiable in Q, R and the prior (the implicit VJP differentiates J
+    through it).
+    """
+    Wp = None if model.x0_cov is None else _inverse_factor(model.x0_cov)
+    return Whitening(Wq=_inverse_factor(model.Q), Wr=_inverse_factor(masked_measurement_cov(model.R, w)), Wp=Wp)
+
+
+def whitened_measurement_residual(model, y, w, x, white: Optional[Whitening] = None):
     """z_t = L_t⁻¹ [w_t ∘ (y_t − h(x_t))]: (T, p), zero at missing entries."""
+    white = whitening(model, w) if white is None else white
     e = jnp.where(w > 0, y - _map_h(model, x), 0)
-    return lsolve_vec(_chol_R(model, w), e)
+    return matvec(white.Wr, e)
 
 
-def objective(model: NonlinearModel, loss, y, w, x):
-    """J(x; θ) of the module docstring (a scalar); vectorised, no recursion over time."""
+def _prior_residual(model, white, x0):
+    return matvec(white.Wp, x0 - (0 if model.x0_mean is None else model.x0_mean))
+
+
+def objective(model: NonlinearModel, loss, y, w, x, white: Optional[Whitening] = None):
+    """J(x; θ) of the module docstring (a scalar); vectorised, no recursion over time.
+
+    ``white``: the factors of :func:`whitening`, when the caller already has
+    them (the solver's loop); by default formed here, so that J is a
+    differentiable function of Q, R and the prior.
+    """
+    white = whitening(model, w) if white is None else white
     r = x[1:] - _map_f(model, x[:-1])
-    val = 0.5 * jnp.sum(lsolve_vec(chol(model.Q), r) ** 2)
-    val = val + jnp.sum(loss.rho(whitened_measurement_residual(model, y, w, x)))
+    val = 0.5 * jnp.sum(matvec(white.Wq, r) ** 2)
+    val = val + jnp.sum(loss.rho(whitened_measurement_residual(model, y, w, x, white)))
     if model.x0_cov is not None:
-        d0 = x[0] - (0 if model.x0_mean is None else model.x0_mean)
-        val = val + 0.5 * jnp.sum(lsolve_vec(chol(model.x0_cov), d0) ** 2)
+        val = val + 0.5 * jnp.sum(_prior_residual(model, white, x[0]) ** 2)
     return val
 
 
-def linearised_problem(model: NonlinearModel, loss, y, w, x):
-    """(StateSpace, y_lin): the linear-Gaussian problem whose solution is one GN/IRLS step from x.
+def _value_and_jacobian(fn):
+    """x ↦ (fn(x), ∂fn/∂x(x)) by one forward-mode pass (the value comes with the Jacobian)."""
+    def both(x, *rest):
+        def twice(s):
+            out = fn(s, *rest)
+            return out, out
+        jac, value = jax.jacfwd(twice, has_aux=True)(x)
+        return value, jac
+    return both
+
+
+class Linearisation(NamedTuple):
+    """What one Gauss–Newton / IRLS step needs from a path x̄ (``linearised_problem``)."""
+
+    problem: StateSpace  # the linear-Gaussian problem whose solution is the step's target
+    y: Array  # (T, p) its whitened measurements
+    value: Array  # J(x̄)
+    gradient: Array  # ∇J(x̄), (T, n)
+
+
+def linearised_problem(model: NonlinearModel, loss, y, w, x, white: Optional[Whitening] = None) -> Linearisation:
+    """The linear-Gaussian problem whose solution is one GN/IRLS step from x, with J(x) and ∇J(x).
 
     See the module docstring. The StateSpace is canonical for the backends:
     dense Q, R = DiagonalNoise(ones (p,)), time-varying A (T-1, n, n),
-    b (T-1, n), C (T, p, n); y_lin (T, p) is zero at missing entries.
+    b (T-1, n), C (T, p, n); its y (T, p) is zero at missing entries.
+
+    f, h and their Jacobians are evaluated once (forward mode, vmapped over
+    time), and J and ∇J are assembled from them rather than by a separate
+    reverse pass through f and h: with q_t = Q_t⁻¹ (x_{t+1} − f(x_t)) and
+    ψ = ρ'(z) = ω z,
+
+        ∇_{x_t} J = q_{t−1} − A_tᵀ q_t − (L_t⁻¹ w_t∘C_t)ᵀ ψ_t  (+ P₀⁻¹(x₀ − m₀) at t = 0),
+
+    missing terms at the ends dropped (chain rule on the module docstring's J).
     """
     T, p = y.shape
-    jac_f = lambda x_, u: jax.jacfwd(lambda s: model.transition(model.params, s, u))(x_)  # noqa: E731
-    jac_h = lambda x_, v: jax.jacfwd(lambda s: model.measure(model.params, s, v))(x_)  # noqa: E731
+    white = whitening(model, w) if white is None else white
     u_axis = None if model.transition_inputs is None else 0
     v_axis = None if model.measurement_inputs is None else 0
-    A = jax.vmap(jac_f, in_axes=(0, u_axis))(x[:-1], model.transition_inputs)
-    b = _map_f(model, x[:-1]) - matvec(A, x[:-1])
-    C = jax.vmap(jac_h, in_axes=(0, v_axis))(x, model.measurement_inputs)
-    hx = _map_h(model, x)
-    Lr = _chol_R(model, w)
-    z = lsolve_vec(Lr, jnp.where(w > 0, y - hx, 0))
-    s = jnp.sqrt(loss.weight(z))  # 1 at missing entries (z = 0)
-    C_white = s[:, :, None] * lsolve(Lr, w[:, :, None] * C)
-    y_white = s * lsolve_vec(Lr, jnp.where(w > 0, y - hx + matvec(C, x), 0))
+    fx, A = jax.vmap(_value_and_jacobian(lambda s, u: model.transition(model.params, s, u)),
+                     in_axes=(0, u_axis))(x[:-1], model.transition_inputs)
+    hx, C = jax.vmap(_value_and_jacobian(lambda s, v: model.measure(model.params, s, v)),
+                     in_axes=(0, v_axis))(x, model.measurement_inputs)
+    b = fx - matvec(A, x[:-1])
+    rq = matvec(white.Wq, x[1:] - fx)  # whitened transition residuals
+    z = matvec(white.Wr, jnp.where(w > 0, y - hx, 0))
+    omega = loss.weight(z)  # 1 at missing entries (z = 0)
+    s = jnp.sqrt(omega)
+    WC = white.Wr @ (w[:, :, None] * C)
+    C_white = s[:, :, None] * WC
+    # W(w∘(y − h + C x̄)) = z + (W w∘C) x̄ for a 0/1 mask.
+    y_white = s * (z + matvec(WC, x))
     lin = StateSpace(A=A, C=C_white, Q=model.Q, R=DiagonalNoise(jnp.ones(p, y.dtype)), b=b,
                      x0_mean=model.x0_mean, x0_cov=model.x0_cov)
-    return lin, y_white
+
+    value = 0.5 * jnp.sum(rq ** 2) + jnp.sum(loss.rho(z))
+    q = matvec(jnp.swapaxes(white.Wq, -1, -2), rq)
+    grad = -matvec(jnp.swapaxes(WC, -1, -2), omega * z)
+    grad = grad.at[1:].add(q).at[:-1].add(-matvec(jnp.swapaxes(A, -1, -2), q))
+    if model.x0_cov is not None:
+        rp = _prior_residual(model, white, x[0])
+        value = value + 0.5 * jnp.sum(rp ** 2)
+        grad = grad.at[0].add(white.Wp.T @ rp)
+    return Linearisation(problem=lin, y=y_white, value=value, gradient=grad)
 
 
 def linearize(model, path, *, mask=None):
