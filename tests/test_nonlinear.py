@@ -46,6 +46,10 @@ PARAMS = {"g": 9.0, "c": 0.4, "s": 1.2}
 T, N, P = 14, 2, 2
 
 
+MISSING = np.zeros((T, P), bool)
+MISSING[3, 0] = MISSING[7, :] = MISSING[10, 1] = True
+
+
 def make_problem(rng, prior=True, missing=True):
     Q = np.array([[0.01, 0.002], [0.002, 0.04]])
     R = np.array([[0.05, 0.01], [0.01, 0.03]])
@@ -55,43 +59,66 @@ def make_problem(rng, prior=True, missing=True):
         x[t + 1] = np.asarray(pendulum(PARAMS, x[t], None)) + np.linalg.cholesky(Q) @ rng.standard_normal(N)
     y = np.stack([np.asarray(sensors(PARAMS, x[t], None)) for t in range(T)])
     y = y + rng.standard_normal((T, P)) @ np.linalg.cholesky(R).T
-    mask = np.ones((T, P), bool)
-    if missing:
-        mask[3, 0] = mask[7, :] = mask[10, 1] = False
-        y[~mask] = np.nan
+    mask = ~MISSING if missing else np.ones((T, P), bool)
+    y[~mask] = np.nan
     model = kx.NonlinearModel(pendulum, sensors, params=dict(PARAMS), Q=Q, R=R,
                               x0_mean=np.array([0.7, 0.1]) if prior else None,
                               x0_cov=0.2 * np.eye(N) if prior else None)
     return model, y, mask, x
 
 
+# Per-step values and Jacobians of f and h (vmapped over time): the only JAX the
+# reference needs; the stacking and whitening below are plain NumPy.
+_f_steps = jax.jit(jax.vmap(pendulum, in_axes=(None, 0, None)))
+_h_steps = jax.jit(jax.vmap(sensors, in_axes=(None, 0, None)))
+_f_jac = jax.jit(jax.vmap(jax.jacfwd(pendulum, argnums=1), in_axes=(None, 0, None)))
+_h_jac = jax.jit(jax.vmap(jax.jacfwd(sensors, argnums=1), in_axes=(None, 0, None)))
+
+
 def stacked_residuals(model, y, mask):
-    """The whitened residual vector of the whole problem, written plainly (flat x ↦ (m,))."""
-    Lq_inv = np.linalg.inv(np.linalg.cholesky(np.asarray(model.Q)))
-    R = np.asarray(model.R)
-    blocks = []
-    for t in range(T):
-        k = np.flatnonzero(mask[t])
-        blocks.append((k, np.linalg.inv(np.linalg.cholesky(R[np.ix_(k, k)])) if k.size else None))
+    """(residuals, jacobian): the whitened residual vector of the whole problem over flat x, and its
+    Jacobian, stacked plainly with per-step Cholesky factors of the observed blocks R_KK."""
+    inv_chol = lambda S: np.linalg.inv(np.linalg.cholesky(np.asarray(S)))  # noqa: E731
+    Wq = inv_chol(model.Q)
+    blocks = [(k, inv_chol(np.asarray(model.R)[np.ix_(k, k)])) for k in (np.flatnonzero(m) for m in mask)]
+    Wp = None if model.x0_cov is None else inv_chol(model.x0_cov)
+    params = {k: jnp.asarray(v) for k, v in model.params.items()}
 
     def residuals(flat):
-        x = flat.reshape(T, N)
-        out = []
+        x = np.asarray(flat).reshape(T, N)
+        fx, hx = np.asarray(_f_steps(params, x[:-1], None)), np.asarray(_h_steps(params, x, None))
+        out = [Wq @ (x[t + 1] - fx[t]) for t in range(T - 1)]
+        out += [W @ (y[t, k] - hx[t, k]) for t, (k, W) in enumerate(blocks) if k.size]
+        if Wp is not None:
+            out.append(Wp @ (x[0] - model.x0_mean))
+        return np.concatenate(out)
+
+    def jacobian(flat):
+        x = np.asarray(flat).reshape(T, N)
+        A, C = np.asarray(_f_jac(params, x[:-1], None)), np.asarray(_h_jac(params, x, None))
+        rows = []
         for t in range(T - 1):
-            out.append(Lq_inv @ (x[t + 1] - model.transition(model.params, x[t], None)))
+            r = np.zeros((N, T * N))
+            r[:, (t + 1) * N:(t + 2) * N], r[:, t * N:(t + 1) * N] = Wq, -Wq @ A[t]
+            rows.append(r)
         for t, (k, W) in enumerate(blocks):
             if k.size:
-                out.append(W @ (y[t, k] - model.measure(model.params, x[t], None)[k]))
-        if model.x0_cov is not None:
-            Wp = np.linalg.inv(np.linalg.cholesky(np.asarray(model.x0_cov)))
-            out.append(Wp @ (x[0] - model.x0_mean))
-        return jnp.concatenate(out)
+                r = np.zeros((k.size, T * N))
+                r[:, t * N:(t + 1) * N] = -W @ C[t][k]
+                rows.append(r)
+        if Wp is not None:
+            r = np.zeros((N, T * N))
+            r[:, :N] = Wp
+            rows.append(r)
+        return np.vstack(rows)
 
-    return jax.jit(residuals)
+    return residuals, jacobian
 
 
 @pytest.mark.parametrize("method", [pytest.param("scan", marks=slow), "cpu"])
 def test_linear_model_equals_smooth_in_one_step(rng, method):
+    # A user-written linear f, h; the StateSpace form (the robust losses' linear
+    # path) is checked against kx.smooth in test_robust.py, and here with KALMAX_SLOW=1.
     n, p, Tl = 3, 2, 10
     md = ref.random_model(rng, n, p, Tl, time_varying=False)
     y, mask = ref.random_data(rng, md, Tl, missing=0.3)
@@ -100,7 +127,7 @@ def test_linear_model_equals_smooth_in_one_step(rng, method):
                            params=(model.A, model.b, model.C, model.d), Q=model.Q, R=model.R,
                            x0_mean=model.x0_mean, x0_cov=model.x0_cov)
     want = np.asarray(kx.smooth(model, y, mask).states)
-    for m in (nl, model):  # a user-written linear f, h and a StateSpace
+    for m in (nl, model) if os.environ.get("KALMAX_SLOW") else (nl,):
         out = kx.smooth_nonlinear(m, y, mask, method=method)
         assert bool(out.converged) and int(out.iterations) == 1
         np.testing.assert_allclose(out.states, want, rtol=0, atol=1e-10)
@@ -111,8 +138,7 @@ def test_map_path_equals_least_squares(rng, prior):
     model, y, mask, x_true = make_problem(rng, prior=prior)
     out = kx.smooth_nonlinear(model, y, mask, init=x_true + 0.05)
     assert bool(out.converged), int(out.iterations)
-    residuals = stacked_residuals(model, y, mask)
-    jac = jax.jit(jax.jacfwd(residuals))
+    residuals, jac = stacked_residuals(model, y, mask)
     sol = scipy.optimize.least_squares(lambda v: np.asarray(residuals(v)), (x_true + 0.05).ravel(),
                                        jac=lambda v: np.asarray(jac(v)), method="lm",
                                        xtol=1e-15, ftol=1e-15, gtol=1e-15)
@@ -212,9 +238,9 @@ def test_linearize_then_smooth_is_one_gauss_newton_step(rng):
     """
     model, y, mask, x_true = make_problem(rng)
     once = kx.smooth(kx.linearize(model, x_true, mask=mask), y, mask).states
-    residuals = stacked_residuals(model, y, mask)
+    residuals, jac = stacked_residuals(model, y, mask)
     r0 = np.asarray(residuals(x_true.ravel()))
-    Jr = np.asarray(jax.jacfwd(residuals)(x_true.ravel()))
+    Jr = np.asarray(jac(x_true.ravel()))
     step = np.linalg.lstsq(Jr, -r0, rcond=None)[0]
     np.testing.assert_allclose(once, x_true + step.reshape(T, N), rtol=0, atol=1e-10)
 
@@ -251,8 +277,17 @@ def test_laplace_nonlinear_against_dense_hessian(rng):
     """−½ log|∇²J| from a dense Hessian of the test's own objective ½‖r(x)‖², plus the constants."""
     model, y, mask, x_true = make_problem(rng)
     out = kx.smooth_nonlinear(model, y, mask, init=x_true)
-    residuals = stacked_residuals(model, y, mask)
-    J = lambda v: 0.5 * jnp.sum(residuals(v) ** 2)  # noqa: E731
+    inv_chol = lambda S: np.linalg.inv(np.linalg.cholesky(np.asarray(S)))  # noqa: E731
+    Wq, Wp = inv_chol(model.Q), inv_chol(model.x0_cov)
+    blocks = [(k, inv_chol(np.asarray(model.R)[np.ix_(k, k)])) for k in (np.flatnonzero(m) for m in mask)]
+
+    def J(flat):  # ½‖r(x)‖², the stacked residuals of stacked_residuals written in JAX
+        x_ = flat.reshape(T, N)
+        val = sum(jnp.sum((Wq @ (x_[t + 1] - pendulum(PARAMS, x_[t], None))) ** 2) for t in range(T - 1))
+        val += sum(jnp.sum((W @ (y[t, k] - sensors(PARAMS, x_[t], None)[k])) ** 2)
+                   for t, (k, W) in enumerate(blocks) if k.size)
+        return 0.5 * (val + jnp.sum((Wp @ (x_[0] - model.x0_mean)) ** 2))
+
     x = np.asarray(out.states).ravel()
     sign, logdet_H = np.linalg.slogdet(np.asarray(jax.hessian(J)(x)))
     assert sign > 0

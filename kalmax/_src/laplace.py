@@ -40,7 +40,7 @@ import jax.numpy as jnp
 
 from . import blocktri, tolerances
 from .linalg import chol
-from .nonlinear import _solve, default_tolerance, prepare
+from .nonlinear import _solve, prepare, settings
 from .nonlinear_model import _chol_R, hessian_blocks, objective
 from .primitive import resolve_method
 from .robust import SquaredLoss
@@ -67,12 +67,12 @@ def laplace_log_likelihood(model, y, mask=None, *, loss=None, init=None, tol: Op
     """
     loss = SquaredLoss() if loss is None else loss
     model, loss, y, w, init = prepare(model, y, mask, loss, init)
-    tol = default_tolerance(y.dtype) if tol is None else float(tol)
+    tol, max_iterations = settings(y.dtype, tol, max_iterations)
     return _laplace_canonical(model, loss, y, jax.lax.stop_gradient(w), init, resolve_method(method), tol,
-                              int(max_iterations))
+                              max_iterations)
 
 
-@partial(jax.jit, static_argnums=(5, 6, 7))
+@partial(jax.jit, static_argnums=(5,))
 def _laplace_canonical(model, loss, y, w, init, method, tol, max_iterations):
     dtype = y.dtype
     x, _, converged = _solve(model, loss, y, w, init, method, tol, max_iterations)

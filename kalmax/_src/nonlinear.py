@@ -148,14 +148,14 @@ def _iterate(model, loss, y, w, init, method, tol, max_iterations):
     return jnp.where(converged, x, jnp.nan), k, converged
 
 
-@partial(jax.custom_vjp, nondiff_argnums=(5, 6, 7))
+@partial(jax.custom_vjp, nondiff_argnums=(5,))
 def _solve(model, loss, y, w, init, method, tol, max_iterations):
     return _iterate(model, loss, y, w, init, method, tol, max_iterations)
 
 
 def _solve_fwd(model, loss, y, w, init, method, tol, max_iterations):
     out = _iterate(model, loss, y, w, init, method, tol, max_iterations)
-    return out, (model, loss, y, w, init, out[0])
+    return out, (model, loss, y, w, init, out[0], tol, max_iterations)
 
 
 def _zero_cotangent(a):
@@ -198,11 +198,12 @@ def _fill(full, bars):
                                   is_leaf=lambda v: v is None)
 
 
-def _solve_bwd(method, tol, max_iterations, res, cotangents):
-    model, loss, y, w, init, x = res
+def _solve_bwd(method, res, cotangents):
+    model, loss, y, w, init, x, tol, max_iterations = res
     x_bar = cotangents[0]
     m_bar, l_bar, y_bar = implicit_vjp(model, loss, y, w, x, x_bar)
-    return m_bar, l_bar, y_bar, jnp.zeros_like(w), jnp.zeros_like(init)
+    return (m_bar, l_bar, y_bar, jnp.zeros_like(w), jnp.zeros_like(init), jnp.zeros_like(tol),
+            _zero_cotangent(max_iterations))
 
 
 _solve.defvjp(_solve_fwd, _solve_bwd)
@@ -267,12 +268,18 @@ def smooth_nonlinear(model, y, mask=None, *, loss=None, init=None, tol: Optional
     """
     loss = SquaredLoss() if loss is None else loss
     model, loss, y, w, init = prepare(model, y, mask, loss, init)
-    tol = default_tolerance(y.dtype) if tol is None else float(tol)
+    tol, max_iterations = settings(y.dtype, tol, max_iterations)
     return _smooth_canonical(model, loss, y, jax.lax.stop_gradient(w), init, resolve_method(method), tol,
-                             int(max_iterations))
+                             max_iterations)
 
 
-@partial(jax.jit, static_argnums=(5, 6, 7))
+def settings(dtype, tol, max_iterations):
+    """tol and max_iterations as arrays: traced, so that changing them does not recompile."""
+    tol = default_tolerance(dtype) if tol is None else tol
+    return jnp.asarray(tol, dtype), jnp.asarray(max_iterations, jnp.int32)
+
+
+@partial(jax.jit, static_argnums=(5,))
 def _smooth_canonical(model, loss, y, w, init, method, tol, max_iterations):
     # Compiled once per model structure (its functions), shapes and settings:
     # an eager call would trace and compile the iteration loop on every call.
