@@ -83,7 +83,8 @@ def _laplace_canonical(model, loss, y, w, init, method, tol, max_iterations):
     val = -objective(model, loss, y, w, x) - 0.5 * blocktri.logdet(factor)
     ld_q = _logdet_chol(chol(model.Q))
     val = val - 0.5 * (ld_q * (T - 1) if model.Q.ndim == 2 else ld_q)
-    val = val - 0.5 * _logdet_chol(_chol_R(model, w)) - jnp.sum(w) * loss.log_normalizer(dtype)
+    # w * log Z: a loss with a (p,) parameter has one normaliser per column.
+    val = val - 0.5 * _logdet_chol(_chol_R(model, w)) - jnp.sum(w * loss.log_normalizer(dtype))
     n_flat = n
     if model.x0_cov is not None:
         val = val - 0.5 * _logdet_chol(chol(model.x0_cov))

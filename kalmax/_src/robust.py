@@ -32,6 +32,8 @@ in s for both robust losses, which makes that quadratic a majoriser of ρ
 §7.8 — from memory). The weights are finite and positive everywhere,
 ω(0) = 1 included.
 
+The parameter may be a scalar or a (p,) vector, one value per measurement
+entry (broadcast against z's last axis; ``log_normalizer`` then returns (p,)).
 Each loss is a pytree whose one leaf (δ or ν) is differentiable: gradients
 of a smoothed quantity with respect to it come from the implicit VJP of the
 nonlinear solver like any other parameter.
