@@ -81,4 +81,14 @@ from ._src.sharding import pad_to_mesh as pad_to_mesh
 from ._src.sharding import replicate as replicate
 from ._src.sharding import shard_batch as shard_batch
 
+# Nonlinear and robust models: iterated smoothing with implicit gradients.
+from ._src.laplace import laplace_log_likelihood as laplace_log_likelihood
+from ._src.nonlinear import NonlinearSmoothed as NonlinearSmoothed
+from ._src.nonlinear import smooth_nonlinear as smooth_nonlinear
+from ._src.nonlinear_model import NonlinearModel as NonlinearModel
+from ._src.nonlinear_model import linearize as linearize
+from ._src.robust import HuberLoss as HuberLoss
+from ._src.robust import SquaredLoss as SquaredLoss
+from ._src.robust import StudentTLoss as StudentTLoss
+
 from ._src.version import __version__ as __version__

@@ -186,6 +186,15 @@ def build_parser() -> argparse.ArgumentParser:
                           "applied to every group of COL")
     grp.add_argument("--report-group", metavar="VALUE",
                      help="with --group: the group drawn in the report (default: the first in the table)")
+    rob = common.add_argument_group("outlier-prone columns")
+    rob.add_argument("--robust", action="append", default=None, metavar="COL=KIND:VALUE",
+                     help="smooth column COL with a robust loss on its residuals, so that a few wild values do not "
+                          "pull the estimate: huber:DELTA (squared within DELTA noise sds, linear beyond; e.g. 2.5) "
+                          "or student:NU (Student-t noise with NU degrees of freedom; e.g. 4). Repeat for several "
+                          "columns (one KIND per run). The parameters stay those of the model: `kalmax fit` fits "
+                          "them with the ordinary (Gaussian) likelihood and uses the robust loss only for the "
+                          "smoothed table and report; `kalmax apply` smooths with the saved parameters. The "
+                          "interval columns are then approximate. Not with --group")
     misc = common.add_argument_group("other")
     misc.add_argument("--quiet", "-q", action="store_true", help="print errors only (no progress, no summary)")
     misc.add_argument("--debug", action="store_true", help="show the Python traceback of an internal error")
@@ -517,7 +526,7 @@ def cmd_fit(args) -> int:
     import numpy as np
 
     from ._src import splits
-    from ._src.tools import apply_workflow, fit_workflow, model_file, starting_values, tables
+    from ._src.tools import apply_workflow, fit_workflow, model_file, robust_columns, starting_values, tables
     from ._src.tools.report import write_report
     from ._src.tools import composed
     from ._src.tools.settings import apply_settings, parse_measures
@@ -536,7 +545,9 @@ def cmd_fit(args) -> int:
     table_path, report_path, model_path = _outputs(args, model_file=True, inputs=[
         ("DATA", args.data), ("--start", args.start), ("--future-inputs", args.future_inputs)])
 
+    robust_columns.parse(args.robust, None)  # the option's syntax, before any fitting
     if args.group is not None:
+        _no_robust_with_groups(args)
         return _fit_groups(args, forecast_steps, table_path, report_path, model_path)
     if args.report_group is not None:
         raise UsageError("--report-group needs --group COL.")
@@ -693,7 +704,7 @@ def cmd_fit(args) -> int:
         natural_ses = _natural_standard_errors(fitted, fit_workflow.log_standard_errors(
             fitted, series, train, fixed=tuple(args.fix)))
         fitted = fitted.replace(fit={**fitted.fit, "standard_errors": natural_ses})
-    smoothing = apply_workflow.smooth_series(fitted, out_series)
+    smoothing = apply_workflow.smooth_series(fitted, out_series, robust=_robust(args, fitted))
     names, cols = _table_for(args, fitted, out_natural, smoothing, test if test.any() else None)
     summary = ""
     if after is not None:
@@ -981,6 +992,19 @@ def _scale_note(spec) -> str:
     return " (modelled as " + ", ".join(f"{n}({c})" for c, n in spec.transforms) + ", drawn back-transformed)"
 
 
+def _robust(args, spec):
+    """The parsed --robust options for the model's columns (None without them)."""
+    from ._src.tools import robust_columns
+
+    return robust_columns.parse(args.robust, spec.columns)
+
+
+def _no_robust_with_groups(args):
+    if args.robust:
+        raise UsageError("--robust is not available with --group (or a model fitted per group); smooth one "
+                         "group at a time.")
+
+
 def cmd_apply(args) -> int:
     import numpy as np
 
@@ -998,7 +1022,9 @@ def cmd_apply(args) -> int:
         raise UsageError(f"--group {args.group}: the model file was fitted per group of {spec.group_column!r}; "
                          "drop --group (the model file names its group column) or give that column.")
     if spec.groups or args.group is not None:
+        _no_robust_with_groups(args)
         return _apply_groups(args, spec, forecast_steps, table_path, report_path)
+    _robust(args, spec)  # option errors before any reading
     if args.report_group is not None:
         raise UsageError("--report-group needs --group COL (or a model file fitted per group).")
     _check_future_inputs(args, spec)
@@ -1014,7 +1040,7 @@ def cmd_apply(args) -> int:
     _, transformed = _transformed(args, series, spec.columns, spec.transforms)
     natural = _with_forecast(args, series, forecast_steps, spec)
     series = natural._replace(y=np.concatenate([transformed.y, natural.y[len(transformed.y):]]))
-    smoothing = apply_workflow.smooth_series(spec, series)
+    smoothing = apply_workflow.smooth_series(spec, series, robust=_robust(args, spec))
     names, cols = _table_for(args, spec, natural, smoothing)
     with AtomicOutputs() as out:
         tables.write_table(table_path, names, cols, out)

@@ -4,14 +4,17 @@ from __future__ import annotations
 
 import math
 import statistics
-from typing import Dict, NamedTuple
+from typing import Dict, NamedTuple, Optional
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 
+from ..nonlinear import prepare, smooth_nonlinear
+from ..nonlinear_model import linearised_problem
 from ..smoothing import smooth
 from .errors import DataError, FitError
+from .robust_columns import RobustColumns
 from .series import Series, column_scales
 from .spec import ModelSpec
 from .transforms import inverse
@@ -27,24 +30,45 @@ class Smoothing(NamedTuple):
     states: np.ndarray  # (T, n)
 
 
-def smooth_series(spec: ModelSpec, series: Series, mask=None) -> Smoothing:
+@jax.jit
+def _smooth_robust(model, y, mask, loss):
+    """Robust smoothing (``robust_columns.py``): x* by kx.smooth_nonlinear, covariances of the IRLS fixed point."""
+    # Started from the ordinary smoother's path: the Student-t objective may have several minima,
+    # and the one near the squared-loss answer is the one that down-weights the outliers.
+    out = smooth_nonlinear(model, y, mask, loss=loss, init=smooth(model, y, mask).states)
+    canonical, loss_c, y_c, w, _ = prepare(model, y, mask, loss, None)
+    lin = linearised_problem(canonical, loss_c, y_c, w, out.states)
+    P = smooth(lin.problem, lin.y, mask, covariances=True).state_cov
+    C = jnp.broadcast_to(model.C, (y.shape[0],) + model.C.shape[-2:])
+    return out.measurements, C @ P @ jnp.swapaxes(C, -1, -2), out.states, out.converged
+
+
+def smooth_series(spec: ModelSpec, series: Series, mask=None, robust: Optional[RobustColumns] = None) -> Smoothing:
     """Smoothed means and predictive standard deviations of every measurement column.
 
     The sd is that of a *new noisy measurement* at each timestamp: the
     smoother's uncertainty about C x_t (``measurement_cov``) plus the
     measurement noise R. Raises :class:`FitError` when the states are not
-    identified (NaN from the smoother).
+    identified (NaN from the smoother). ``robust``: robust losses on some
+    columns (``robust_columns.py``; the sd is then approximate).
     """
     mask = series.mask if mask is None else mask
     model = spec.state_space(jnp.asarray(series.t), inputs=series.inputs)
     y = jnp.asarray(np.where(mask, series.y, 0.0))
-    out = _smooth_with_covariances(model, y, jnp.asarray(mask))
-    mean = np.asarray(out.measurements)
-    var = np.diagonal(np.asarray(out.measurement_cov), axis1=-2, axis2=-1) + np.diag(np.asarray(model.R))
+    if robust is None:
+        out = _smooth_with_covariances(model, y, jnp.asarray(mask))
+        mean, mcov, states = out.measurements, out.measurement_cov, out.states
+    else:
+        mean, mcov, states, converged = _smooth_robust(model, y, jnp.asarray(mask),
+                                                       robust.loss(spec.columns, np.dtype(y.dtype)))
+        if not bool(converged):
+            raise FitError(f"--robust {robust.describe()}: the robust smoother did not converge on this data.")
+    mean = np.asarray(mean)
+    var = np.diagonal(np.asarray(mcov), axis1=-2, axis2=-1) + np.diag(np.asarray(model.R))
     if not (np.all(np.isfinite(mean)) and np.all(np.isfinite(var))):
         raise FitError("the smoother could not determine the states (too few observations for this model, "
                        "or a numerically singular model); the result would be meaningless.")
-    return Smoothing(mean=mean, sd=np.sqrt(np.maximum(var, 0.0)), states=np.asarray(out.states))
+    return Smoothing(mean=mean, sd=np.sqrt(np.maximum(var, 0.0)), states=np.asarray(states))
 
 
 def heldout_rmse(spec: ModelSpec, series: Series, test_mask) -> Dict[str, float]:
