@@ -98,13 +98,23 @@ def stall_ratio() -> float:
 @contextlib.contextmanager
 def overridden(*, pivot_tolerance: Optional[float] = None, trusted_error: Optional[float] = None,
                max_refine_steps: Optional[int] = None, stall_ratio: Optional[float] = None) -> Iterator[None]:
-    """Use other settings inside the block (tests and diagnostics; read at trace time)."""
+    """Use other settings inside the block (tests and diagnostics; read at trace time).
+
+    The settings are baked into compiled programs, and the public entry points
+    keep theirs compiled per shape: JAX's caches are cleared on entering and
+    leaving the block, so that neither side reuses a program built with the
+    other settings.
+    """
+    import jax
+
     given = dict(pivot_tolerance=pivot_tolerance, trusted_error=trusted_error,
                  max_refine_steps=max_refine_steps, stall_ratio=stall_ratio)
     saved = dict(_overrides)
     _overrides.update({k: v for k, v in given.items() if v is not None})
+    jax.clear_caches()
     try:
         yield
     finally:
         _overrides.clear()
         _overrides.update(saved)
+        jax.clear_caches()

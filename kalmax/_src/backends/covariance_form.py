@@ -166,6 +166,21 @@ class CovarianceFactor(NamedTuple):
     log_lik: jax.Array      # () log p(y)
 
 
+def innovation_score(Ct, Ls, v):
+    """−C̃_tᵀ S_t⁻¹ v_t (T, n): each step's own data term of the smoother's adjoint."""
+    return -jnp.einsum("tpn,tp->tn", Ct, lsolve_vec(Ls, lsolve_vec(Ls, v), transpose=True))
+
+
+def mean_step(lam_hat, m_t, P_t, IKC_t, score_t, A_t):
+    """One step of the adjoint-form smoother's mean (module docstring, "Smoother").
+
+    x_t = m_t − P_t λ̂_t, and the adjoint carried into step t − 1:
+    λ̂_{t−1} = A_tᵀ (score_t + (I − K_t C̃_t)ᵀ λ̂_t). ``sweep`` and ``adjoint``
+    both take their means from here.
+    """
+    return m_t - P_t @ lam_hat, mT(A_t) @ (score_t + mT(IKC_t) @ lam_hat)
+
+
 def sweep(model: StateSpace, y, w):
     """(x (T, n), CovarianceFactor): filter, then smoother (module docstring)."""
     T, p = y.shape
@@ -193,18 +208,17 @@ def sweep(model: StateSpace, y, w):
     IKC = jnp.eye(n, dtype=dtype)[None] - mT(Kt) @ Ct          # (T, n, n) I − K_t C̃_t
     u = lsolve(Ls, lsolve(Ls, Ct), transpose=True)              # S_t⁻¹ C̃_t  (T, p, n)
     info_here = mT(Ct) @ u                                      # C̃ᵀ S⁻¹ C̃
-    score_here = -jnp.einsum("tpn,tp->tn", u, v)                # −C̃ᵀ S⁻¹ v
+    score_here = innovation_score(Ct, Ls, v)                    # −C̃ᵀ S⁻¹ v
 
     def backward_step(carry, xs):
         lam_hat, Lam_hat = carry            # from steps after t, at x_t
         m_t, P_t, IKC_t, info_t, score_t, A_t = xs   # A_t: transition into step t (out of t − 1)
-        x_t = m_t - P_t @ lam_hat
+        x_t, lam_prev = mean_step(lam_hat, m_t, P_t, IKC_t, score_t, A_t)
         S_t = sym(P_t - P_t @ Lam_hat @ P_t)
-        lam_tilde = score_t + mT(IKC_t) @ lam_hat     # at x_t, before its own update
-        Lam_tilde = sym(info_t + mT(IKC_t) @ Lam_hat @ IKC_t)
+        Lam_tilde = sym(info_t + mT(IKC_t) @ Lam_hat @ IKC_t)  # at x_t, before its own update
         # (I − P_t Λ̂_t)(I − K_t C̃_t) is the map that the cross-covariance needs.
         left = (jnp.eye(n, dtype=dtype) - P_t @ Lam_hat) @ IKC_t
-        return (mT(A_t) @ lam_tilde, sym(mT(A_t) @ Lam_tilde @ A_t)), (x_t, S_t, left)
+        return (lam_prev, sym(mT(A_t) @ Lam_tilde @ A_t)), (x_t, S_t, left)
 
     back_inputs = (m, P, IKC, info_here, score_here, A)
     back_init = manual_axes.like((jnp.zeros((n,), dtype), jnp.zeros((n, n), dtype)), back_inputs)
@@ -257,14 +271,12 @@ def adjoint(factor: CovarianceFactor, v):
         return m_pred + mT(Kt) @ v, (m_pred + mT(Kt) @ v, v)
 
     _, (m, innov) = lax.scan(filter_step, m0, (A, offsets, factor.Kt, factor.Ct))
-    Ct, Ls = factor.Ct, factor.Ls
-    score = -jnp.einsum("tpn,tp->tn", Ct, lsolve_vec(Ls, lsolve_vec(Ls, innov), transpose=True))  # −C̃ᵀS⁻¹v
-    IKC = jnp.eye(n, dtype=v.dtype)[None] - mT(factor.Kt) @ Ct
+    score = innovation_score(factor.Ct, factor.Ls, innov)
+    IKC = jnp.eye(n, dtype=v.dtype)[None] - mT(factor.Kt) @ factor.Ct
 
     def smooth_step(lam_hat, xs):
-        m_t, P_t, IKC_t, score_t, A_t = xs
-        x_t = m_t - P_t @ lam_hat
-        return mT(A_t) @ (score_t + mT(IKC_t) @ lam_hat), x_t
+        x_t, lam_prev = mean_step(lam_hat, *xs)
+        return lam_prev, x_t
 
     smooth_inputs = (m, factor.P, IKC, score, A)
     _, x = lax.scan(smooth_step, manual_axes.like(jnp.zeros((n,), v.dtype), smooth_inputs), smooth_inputs, reverse=True)
