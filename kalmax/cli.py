@@ -407,6 +407,19 @@ def _test_block(args, series=None):
     return rows
 
 
+def _kind_and_measures(args, alternatives: str):
+    """(columns, states, dims) of a --model kind fit; a usage error naming what is missing or unknown."""
+    from ._src.tools.settings import parse_measures  # lazily, like the rest of the command (fast --help)
+    from ._src.tools.spec import KINDS
+
+    missing = [o for o, v in (("--time", args.time), ("--model", args.model), ("--measure", args.measure)) if not v]
+    if missing:
+        raise UsageError(f"fit needs {', '.join(missing)} ({alternatives}).")
+    if args.model not in KINDS:
+        raise UsageError(f"--model {args.model!r} is not a model kind; choose one of {', '.join(KINDS)}.")
+    return parse_measures(args.measure, args.model, args.dims)
+
+
 def _transformed(args, natural, columns, stored=()):
     """(transforms, series on the transformed scale) of ``natural``: --transform, else the ``stored`` ones."""
     from ._src.tools import transforms
@@ -610,13 +623,7 @@ def cmd_fit(args) -> int:
         except ValueError as e:
             raise UsageError(f"--components: {e}") from None
     else:
-        missing = [o for o, v in (("--time", args.time), ("--model", args.model), ("--measure", args.measure))
-                   if not v]
-        if missing:
-            raise UsageError(f"fit needs {', '.join(missing)} (or --components TEXT, or --start MODEL.json).")
-        if args.model not in KINDS:
-            raise UsageError(f"--model {args.model!r} is not a model kind; choose one of {', '.join(KINDS)}.")
-        cols, states, dims = parse_measures(args.measure, args.model, args.dims)
+        cols, states, dims = _kind_and_measures(args, "or --components TEXT, or --start MODEL.json")
         try:
             check_columns(args.time, cols)
         except ValueError as e:
@@ -802,13 +809,7 @@ def _fit_groups(args, forecast_steps, table_path, report_path, model_path) -> in
         cols, reads = composed.parse_reads(args.measure, [d.name for d in drafts])
         inputs = composed.input_columns(drafts)
     else:
-        missing = [o for o, v in (("--time", args.time), ("--model", args.model), ("--measure", args.measure))
-                   if not v]
-        if missing:
-            raise UsageError(f"fit needs {', '.join(missing)} (or --components TEXT).")
-        if args.model not in KINDS:
-            raise UsageError(f"--model {args.model!r} is not a model kind; choose one of {', '.join(KINDS)}.")
-        cols, states, dims = parse_measures(args.measure, args.model, args.dims)
+        cols, states, dims = _kind_and_measures(args, "or --components TEXT")
     try:
         check_columns(args.time, cols)
     except ValueError as e:
