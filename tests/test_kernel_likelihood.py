@@ -140,3 +140,32 @@ def test_kernel_likelihood_vmaps_and_takes_second_derivatives(rng):
     h_k = jax.jit(jax.hessian(lambda s: f(s, "cpu")))(1.3)
     h_s = jax.jit(jax.hessian(lambda s: f(s, "scan")))(1.3)
     np.testing.assert_allclose(float(h_k), float(h_s), rtol=1e-7)
+
+
+@pytest.mark.parametrize("time_varying", [False, True])
+def test_one_trajectory_split_over_threads_matches_one_thread_and_the_portable_route(rng, time_varying,
+                                                                                     monkeypatch):
+    """A single long trajectory's likelihood pass split over time between
+    threads (likelihood.h, loglik_one's parts: each part restarts the
+    selected-inversion recursion from Σ at its boundary) equals the one-thread
+    pass up to the order of the sums, and the pure-JAX route. T is above the
+    2 × 8,192 steps per part that the kernel asks for; 2 and 3 threads are
+    forced so that the split happens on any machine (3 parts: boundaries that
+    do not divide T evenly). The prior and the time-invariant fields exercise
+    the per-part accumulators and the part that holds t = 0."""
+    T = 30_001
+    _, model, y, mask = _problem(rng, n=2, p=2, T=T, time_varying=time_varying, prior=True)
+    y, mask = jnp.asarray(y), jnp.asarray(mask)
+    runs = {}
+    for threads in ("1", "2", "3"):
+        monkeypatch.setenv("KALMAX_CPU_THREADS", threads)
+        v, (g, gy) = _VG["cpu"](model, y, mask)  # the handler reads the thread cap on every call
+        runs[threads] = [np.asarray(v)] + [np.asarray(a) for a in jax.tree_util.tree_leaves((g, gy))]
+    monkeypatch.delenv("KALMAX_CPU_THREADS")
+    v_s, (g_s, gy_s) = _VG["scan"](model, y, mask)
+    ref = [np.asarray(v_s)] + [np.asarray(a) for a in jax.tree_util.tree_leaves((g_s, gy_s))]
+    for threads in ("2", "3"):
+        for a, b, r in zip(runs["1"], runs[threads], ref):
+            scale = max(1.0, float(np.max(np.abs(r))))
+            np.testing.assert_allclose(b, a, rtol=1e-11, atol=1e-12 * scale)
+            np.testing.assert_allclose(b, r, rtol=1e-8, atol=1e-9 * scale)

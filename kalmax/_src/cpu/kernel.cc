@@ -368,6 +368,16 @@ void for_batches(int64_t count, int64_t steps, Body&& body) {
   for (auto& t : pool) t.join();
 }
 
+// Threads for one trajectory's own pass (loglik_one's parts) when the batch
+// is smaller than the worker count and would leave cores idle.
+inline int parts_per_trajectory(int64_t count, int64_t steps) {
+  const int64_t workers = worker_limit();
+  if (count >= workers) return 1;
+  int64_t parts = workers / std::max<int64_t>(count, 1);
+  parts = std::min<int64_t>(parts, steps / kMinStepsPerThread);
+  return static_cast<int>(std::max<int64_t>(parts, 1));
+}
+
 // ---------------------------------------------------------------------------
 
 ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi::AnyBuffer C,
@@ -855,6 +865,7 @@ ffi::Error LoglikImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer subT
       const int p = go.mo.p;
       Real* vo = static_cast<Real*>(value->untyped_data());
       const std::size_t Tn = std::size_t(T) * n;
+      const int parts = parts_per_trajectory(bs.count, T);
       for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
         std::vector<double> acc(accumulator_size(n, p));
         std::vector<int> idx(p + 1);
@@ -870,7 +881,7 @@ ffi::Error LoglikImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer subT
           double value_d = 0;
           loglik_one<double, NK>(W, go.fo.view<Real>(bs, bi, wf), go.fo.ok_at(bs, bi),
                                  x_double<Real>(go.x, go.x_lo, bs, bi, xbuf, Tn), &value_d, G, acc.data(),
-                                 idx.data(), caches.get(W, P.C, P.R));
+                                 idx.data(), caches.get(W, P.C, P.R), parts);
           vo[bi] = static_cast<Real>(value_d);
           grads.store(G);
         }

@@ -31,6 +31,9 @@
 #pragma once
 
 #include <cmath>
+#include <cstdint>
+#include <memory>
+#include <thread>
 #include <vector>
 
 #include "smoother.h"
@@ -60,8 +63,13 @@ inline bool spd_inverse(Real* out, Real* logdet, const Real* S, int n, Real* L, 
 
 // The band sweep: calls visit(t, Σ_t, Σ_{t+1,t}, Σ_{t+1}) for t = T-1, ..., 0
 // (the last two null at t = T-1). All matrices n-by-n, row-major.
+// Selected inversion over steps t = hi-1, ..., lo (descending), calling
+// visit(t, Σ_t, Σ_{t+1,t}, Σ_{t+1}); the last two are nullptr at t = T-1.
+// S_hi: Σ_hi, where the pass starts when hi < T (unused when hi == T).
+// S_lo (optional): receives Σ_lo, so a later pass can start from there.
 template <class Real, int NK, class Visit>
-void band_sweep(const FactorView<Real>& F, int T, int n_, Visit&& visit) {
+void band_range(const FactorView<Real>& F, int T, int n_, int lo, int hi, const Real* S_hi, Real* S_lo,
+                Visit&& visit) {
   const int n = fixed<NK>(n_);
   const std::size_t n2 = std::size_t(n) * n;
   std::vector<Real> buf(5 * n2);
@@ -70,10 +78,16 @@ void band_sweep(const FactorView<Real>& F, int T, int n_, Visit&& visit) {
   Real* X = S_t + n2;
   Real* ML = X + n2;
   Real* P = ML + n2;
-  const Real* Li_last = F.Li + std::size_t(T - 1) * n2;
-  matmul<Real, NK>(S_next, Li_last, true, Li_last, false, n);
-  visit(T - 1, S_next, static_cast<const Real*>(nullptr), static_cast<const Real*>(nullptr));
-  for (int t = T - 2; t >= 0; --t) {
+  int t = hi - 1;
+  if (hi == T) {
+    const Real* Li_last = F.Li + std::size_t(T - 1) * n2;
+    matmul<Real, NK>(S_next, Li_last, true, Li_last, false, n);
+    visit(T - 1, S_next, static_cast<const Real*>(nullptr), static_cast<const Real*>(nullptr));
+    t = T - 2;
+  } else {
+    copy(S_next, S_hi, n2);
+  }
+  for (; t >= lo; --t) {
     const Real* Li = F.Li + std::size_t(t) * n2;
     matmul<Real, NK>(P, Li, true, Li, false, n);  // Li_tᵀ Li_t = (L_t L_tᵀ)⁻¹
     if (F.subT != nullptr)
@@ -91,6 +105,14 @@ void band_sweep(const FactorView<Real>& F, int T, int n_, Visit&& visit) {
     visit(t, S_t, X, S_next);
     std::swap(S_next, S_t);
   }
+  if (S_lo != nullptr) copy(S_lo, S_next, n2);
+}
+
+// The whole band, backwards from the last step.
+template <class Real, int NK, class Visit>
+void band_sweep(const FactorView<Real>& F, int T, int n_, Visit&& visit) {
+  band_range<Real, NK>(F, T, n_, 0, T, static_cast<const Real*>(nullptr), static_cast<Real*>(nullptr),
+                       std::forward<Visit>(visit));
 }
 
 // Σ_tt (T, n, n) and Σ_{t+1,t} (T-1, n, n); NaN when the factor failed.
@@ -108,60 +130,73 @@ void band_one(const FactorView<Real>& F, bool ok, int T, int n, Real* diag, Real
   });
 }
 
-// Value and gradient of log p(y_K) for one trajectory. G's sinks as for
-// gradients_one (time-invariant fields accumulate in double); *value gets
-// the log-likelihood. NaN everywhere when the factor failed.
+// The per-step terms of the log-likelihood and its gradient over a range of
+// steps: one per thread when a trajectory's pass is split over time (see
+// loglik_one). Its own scratch, pattern cache, value and accumulators of the
+// time-invariant gradient fields; the per-step outputs it writes are its own
+// steps' only, so parts never touch the same memory.
 template <class Real, int NK>
-void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, const Real* x,
-                Real* value, Gradients<Real>& G, double* acc, int* idx, PatternCache<Real>* cache) {
-  const int T = P.T, n = fixed<NK>(P.n), p = P.p;
-  const std::size_t n2 = std::size_t(n) * n;
-
-  const GradSinks<Real> sinks(G, T, n, p, acc);
-  auto fail_all = [&]() {
-    sinks.fail();
-    *value = quiet_nan<Real>();
-  };
-  if (!ok) {
-    fail_all();
-    return;
+class LoglikPart {
+ public:
+  // shared: Q⁻¹ and log|Q| when Q is time-invariant (raw), else unused.
+  // acc_base: the accumulators G's time-invariant sinks point into; own_acc
+  // (the same size, zeroed) replaces them for a part that runs beside others
+  // (nullptr: use G's own).
+  LoglikPart(const Trajectory<Real>& P, const FactorView<Real>& F, const Real* x, const Gradients<Real>& G,
+             const double* acc_base, double* own_acc, bool raw, const Real* Qinv_shared, Real ldQ_shared,
+             int* idx, PatternCache<Real>* cache)
+      : P_(P), F_(F), x_(x), G_(G), raw_(raw), idx_(idx), cache_(cache), ldQ_(ldQ_shared) {
+    n_ = fixed<NK>(P.n);
+    p_ = P.p;
+    const std::size_t n2 = std::size_t(n_) * n_;
+    const int q = n_ > p_ ? n_ : p_;
+    buf_.resize(12 * n2 + 3 * std::size_t(p_) * p_ + 3 * std::size_t(p_) * n_ + 8 * std::size_t(q) + 8);
+    Arena<Real> arena(buf_.data());
+    Qinv_ = arena.take(n2);
+    Lq_ = arena.take(n2);
+    E1_ = arena.take(n2);
+    E2_ = arena.take(n2);
+    AS_ = arena.take(n2);
+    AX_ = arena.take(n2);
+    T1_ = arena.take(n2);
+    T2_ = arena.take(n2);
+    Rinv_ = arena.take(std::size_t(p_) * p_);
+    Lr_ = arena.take(std::size_t(p_) * p_);
+    Fk_ = arena.take(std::size_t(p_) * n_);
+    FS_ = arena.take(std::size_t(p_) * n_);
+    r_ = arena.take(q);
+    e_ = arena.take(q);
+    sigma_ = arena.take(q);
+    cs_ = arena.take(q + 1);
+    if (raw) copy(Qinv_, Qinv_shared, n2);
+    if (own_acc != nullptr) {
+      GradSink<Real>* sinks[] = {&G_.A, &G_.Q, &G_.b, &G_.C, &G_.R, &G_.d, &G_.m0, &G_.P0};
+      for (GradSink<Real>* g : sinks)
+        if (g->present() && !g->tv) g->acc = own_acc + (g->acc - acc_base);
+    }
   }
 
-  const int q = n > p ? n : p;
-  std::vector<Real> buf(12 * n2 + 3 * std::size_t(p) * p + 3 * std::size_t(p) * n + 8 * std::size_t(q) + 8);
-  Arena<Real> arena(buf.data());
-  Real* Qinv = arena.take(n2);
-  Real* Lq = arena.take(n2);
-  Real* E1 = arena.take(n2);
-  Real* E2 = arena.take(n2);
-  Real* AS = arena.take(n2);
-  Real* AX = arena.take(n2);
-  Real* T1 = arena.take(n2);
-  Real* T2 = arena.take(n2);
-  Real* Rinv = arena.take(std::size_t(p) * p);
-  Real* Lr = arena.take(std::size_t(p) * p);
-  Real* Fk = arena.take(std::size_t(p) * n);
-  Real* FS = arena.take(std::size_t(p) * n);
-  Real* r = arena.take(q);
-  Real* e = arena.take(q);
-  Real* sigma = arena.take(q);
-  Real* cs = arena.take(q + 1);
+  double value() const { return val_; }
+  long long observed() const { return n_obs_; }
+  bool failed() const { return failed_; }
 
-  // Time-invariant Q: Q⁻¹ and log|Q| once; its transition sums stay raw and
-  // get Q⁻¹ applied at the end.
-  double val = 0;  // −J − ½ Σ log-dets, accumulated in double
-  long long n_obs = 0;
-  Real ldQ = 0;
-  const bool raw = !P.Q_tv;
-  if (T > 1 && raw && !spd_inverse<Real, NK>(Qinv, &ldQ, P.Q, n, Lq, cs)) {
-    fail_all();
-    return;
-  }
-  bool failed = false;
+  // The terms of step t: the transition t → t+1 (t < T-1), the measurement
+  // at t, the prior at t = 0, and −½ log|H|'s share Σ_i log (Li_t)_ii.
+  void visit(int t, const Real* S, const Real* X, const Real* S_next) {
+    if (failed_) return;
+    const int n = fixed<NK>(n_), p = p_;
+    const std::size_t n2 = std::size_t(n) * n;
+    const Trajectory<Real>& P = P_;
+    Gradients<Real>& G = G_;
+    const Real* xt = x_ + std::size_t(t) * n;
+    Real *Qinv = Qinv_, *Lq = Lq_, *E1 = E1_, *E2 = E2_, *AS = AS_, *AX = AX_, *T1 = T1_, *T2 = T2_;
+    Real *Rinv = Rinv_, *Lr = Lr_, *Fk = Fk_, *FS = FS_, *r = r_, *e = e_, *sigma = sigma_, *cs = cs_;
+    const bool raw = raw_;
+    double& val = val_;
 
-  band_sweep<Real, NK>(F, T, n, [&](int t, const Real* S, const Real* X, const Real* S_next) {
-    if (failed) return;
-    const Real* xt = x + std::size_t(t) * n;
+    const Real* Li_t = F_.Li + std::size_t(t) * n2;
+    for (int i = 0; i < n; ++i) val += std::log(double(Li_t[i * n + i]));
+
     // Transition t → t+1.
     if (X != nullptr) {
       const Real* A = P.At(t);
@@ -177,12 +212,12 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
           E1[ij] = r[i] * xt[j] + X[ij] - AS[ij];
           E2[ij] = r[i] * r[j] + S_next[ij] - AX[ij] - AX[std::size_t(j) * n + i] + T1[ij];
         }
-      if (!raw && !spd_inverse<Real, NK>(Qinv, &ldQ, P.Qt(t), n, Lq, cs)) {
-        failed = true;
+      if (!raw && !spd_inverse<Real, NK>(Qinv, &ldQ_, P.Qt(t), n, Lq, cs)) {
+        failed_ = true;
         return;
       }
       for (int i = 0; i < n; ++i) e[i] = dot<Real, NK>(Qinv + std::size_t(i) * n, r, n);  // Q⁻¹ r
-      val -= 0.5 * double(dot<Real, NK>(r, e, n)) + 0.5 * double(ldQ);
+      val -= 0.5 * double(dot<Real, NK>(r, e, n)) + 0.5 * double(ldQ_);
       // Raw sums where Q is fixed and the destination is too; Q⁻¹ applied now otherwise.
       if (G.A.present()) {
         if (raw && !G.A.tv) {
@@ -217,8 +252,8 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
 
     // Measurement t.
     Measurement<Real, NK> m;
-    if (!measurement_at<Real, NK>(P, t, cache, idx, Lr, cs, &m)) {
-      failed = true;
+    if (!measurement_at<Real, NK>(P, t, cache_, idx_, Lr, cs, &m)) {
+      failed_ = true;
       return;
     }
     const int k = m.k;
@@ -249,7 +284,7 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
         }
     }
     if (k > 0) {
-      n_obs += k;
+      n_obs_ += k;
       for (int a = 0; a < k; ++a) e[a] = m.residual(a, xt);
       if (m.diag && m.memo == nullptr) {
         for (int a = 0; a < k; ++a) sigma[a] = Sk[a * k + a] * e[a];
@@ -300,7 +335,7 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
     if (t == 0 && P.P0 != nullptr) {
       Real ldP = 0;
       if (!spd_inverse<Real, NK>(T1, &ldP, P.P0, n, Lq, cs)) {  // T1 = P_0⁻¹
-        failed = true;
+        failed_ = true;
         return;
       }
       for (int i = 0; i < n; ++i) r[i] = xt[i] - (P.m0 != nullptr ? P.m0[i] : Real(0));
@@ -318,16 +353,128 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
         });
       }
     }
-  });
-  if (failed) {
+  }
+
+ private:
+  const Trajectory<Real>& P_;
+  const FactorView<Real>& F_;
+  const Real* x_;
+  Gradients<Real> G_;  // a copy: its accumulators may be this part's own
+  bool raw_;
+  int* idx_;
+  PatternCache<Real>* cache_;
+  int n_ = 0, p_ = 0;
+  std::vector<Real> buf_;
+  Real *Qinv_, *Lq_, *E1_, *E2_, *AS_, *AX_, *T1_, *T2_, *Rinv_, *Lr_, *Fk_, *FS_, *r_, *e_, *sigma_, *cs_;
+  Real ldQ_;
+  double val_ = 0;  // −J − ½ Σ log-dets over this part's steps, in double
+  long long n_obs_ = 0;
+  bool failed_ = false;
+};
+
+// Value and gradient of log p(y_K) for one trajectory. G's sinks as for
+// gradients_one (time-invariant fields accumulate in double; acc holds
+// accumulator_size(n, p) doubles); *value gets the log-likelihood. NaN
+// everywhere when the factor failed.
+//
+// parts > 1 splits the pass over time between that many threads, for a
+// trajectory that has cores to itself (a batch smaller than the cores).
+// The per-step terms are independent given Σ_t, Σ_{t+1,t} and Σ_{t+1}, but
+// those come from the backward recursion, which is sequential. So the
+// calling thread first runs the recursion alone (its cheap part: four n×n
+// products a step) down through the part boundaries, starting each lower
+// part's thread from Σ at its upper boundary as soon as it is known; then it
+// does its own part, the top one, in full. Every part restarts the
+// recursion at its boundary from the same Σ the single pass would hold
+// there, so the result is that of the single pass up to the order of the
+// sums (per-part accumulators, added at the end). Cost with k parts:
+// (k−1)/k of a recursion-only pass, then 1/k of the full pass per thread.
+template <class Real, int NK>
+void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, const Real* x,
+                Real* value, Gradients<Real>& G, double* acc, int* idx, PatternCache<Real>* cache,
+                int parts = 1) {
+  const int T = P.T, n = fixed<NK>(P.n), p = P.p;
+  const std::size_t n2 = std::size_t(n) * n;
+
+  const GradSinks<Real> sinks(G, T, n, p, acc);
+  auto fail_all = [&]() {
+    sinks.fail();
+    *value = quiet_nan<Real>();
+  };
+  if (!ok) {
     fail_all();
     return;
   }
 
-  // −½ log|H| = Σ_t Σ_i log (Li_t)_ii.
-  for (int t = 0; t < T; ++t) {
-    const Real* Li = F.Li + std::size_t(t) * n2;
-    for (int i = 0; i < n; ++i) val += std::log(double(Li[i * n + i]));
+  // Time-invariant Q: Q⁻¹ and log|Q| once; its transition sums stay raw and
+  // get Q⁻¹ applied at the end.
+  const bool raw = !P.Q_tv;
+  std::vector<Real> qbuf(2 * n2 + n + 1);
+  Real* Qinv = qbuf.data();
+  Real ldQ = 0;
+  if (T > 1 && raw && !spd_inverse<Real, NK>(Qinv, &ldQ, P.Q, n, qbuf.data() + n2, qbuf.data() + 2 * n2)) {
+    fail_all();
+    return;
+  }
+
+  if (parts > T) parts = T;
+  if (parts < 1) parts = 1;
+  const std::size_t acc_size = accumulator_size(n, p);
+  std::vector<std::unique_ptr<PatternCache<Real>>> caches(parts);
+  std::vector<std::vector<int>> idxs(parts);
+  std::vector<std::vector<double>> accs(parts);
+  std::vector<std::unique_ptr<LoglikPart<Real, NK>>> part(parts);
+  for (int k = 0; k < parts; ++k) {
+    const bool top = k == parts - 1;  // the calling thread's part uses the caller's scratch
+    PatternCache<Real>* c = cache;
+    int* ix = idx;
+    if (!top) {
+      if (cache != nullptr) {
+        caches[k] = cache->fresh();
+        c = caches[k].get();
+      }
+      idxs[k].resize(std::size_t(p) + 1);
+      ix = idxs[k].data();
+      accs[k].assign(acc_size, 0.0);
+    }
+    part[k].reset(new LoglikPart<Real, NK>(P, F, x, G, acc, top ? nullptr : accs[k].data(), raw, Qinv, ldQ,
+                                          ix, c));
+  }
+  // Part k covers steps [T k / parts, T (k+1) / parts).
+  auto bound = [&](int k) { return int((int64_t(T) * k) / parts); };
+  {
+    std::vector<std::thread> threads;
+    threads.reserve(std::size_t(parts - 1));
+    std::vector<Real> S_hi(n2), S_lo(n2);
+    auto noop = [](int, const Real*, const Real*, const Real*) {};
+    for (int k = parts - 2; k >= 0; --k) {  // recursion only, down to the next boundary
+      const int hi = bound(k + 2), lo = bound(k + 1);
+      band_range<Real, NK>(F, T, n, lo, hi, S_hi.data(), S_lo.data(), noop);
+      std::swap(S_hi, S_lo);
+      threads.emplace_back([&, k, S = S_hi]() {
+        LoglikPart<Real, NK>& w = *part[k];
+        band_range<Real, NK>(F, T, n, bound(k), bound(k + 1), S.data(), static_cast<Real*>(nullptr),
+                             [&w](int t, const Real* St, const Real* X, const Real* Sn) { w.visit(t, St, X, Sn); });
+      });
+    }
+    LoglikPart<Real, NK>& w = *part[parts - 1];
+    band_range<Real, NK>(F, T, n, bound(parts - 1), T, static_cast<const Real*>(nullptr),
+                         static_cast<Real*>(nullptr),
+                         [&w](int t, const Real* St, const Real* X, const Real* Sn) { w.visit(t, St, X, Sn); });
+    for (auto& th : threads) th.join();
+  }
+
+  double val = 0;
+  long long n_obs = 0;
+  for (int k = 0; k < parts; ++k) {
+    if (part[k]->failed()) {
+      fail_all();
+      return;
+    }
+    val += part[k]->value();
+    n_obs += part[k]->observed();
+    if (k != parts - 1)
+      for (std::size_t i = 0; i < acc_size; ++i) acc[i] += accs[k][i];
   }
   const int n_flat = P.P0 != nullptr ? 0 : n;
   val -= 0.5 * double(n_obs - n_flat) * std::log(2.0 * M_PI);

@@ -16,6 +16,7 @@
 #include <cmath>
 #include <cstdint>
 #include <unordered_map>
+#include <memory>
 #include <vector>
 
 #include "dense.h"
@@ -112,6 +113,12 @@ class PatternCache {
     idx_pool_.reserve(max_entries_ * std::size_t(p));
     entries_.reserve(max_entries_);
     scratch_.resize(3 * std::size_t(p) * p + std::size_t(p) * n + std::size_t(p) + 8);
+  }
+
+  // An empty cache for the same C and R (for another thread: lookups are not
+  // safe to share).
+  std::unique_ptr<PatternCache> fresh() const {
+    return std::unique_ptr<PatternCache>(new PatternCache(C_, R_, n_, p_, diag_));
   }
 
   // Blocks for the pattern of mask row w, or nullptr when the cache is full
