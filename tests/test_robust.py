@@ -177,3 +177,22 @@ def test_huber_laplace_against_dense_hessian(rng):
             - 0.5 * logdet_R - mask.sum() * log_z - 0.5 * np.linalg.slogdet(E["P0"])[1])
     got = kx.laplace_log_likelihood(model, y, mask, loss=loss)
     assert np.isclose(float(got), want, rtol=1e-10, atol=1e-9)
+
+
+def test_student_laplace_gradient_in_R_against_central_differences(rng):
+    """The path that learns a noise level: d/dR of the Laplace log-likelihood
+    with a Student-t loss (through the MAP path's implicit VJP, the Hessian's
+    log-determinant and log|R̃|), against central differences of the value
+    along a random symmetric direction (step 1e-6, common practice)."""
+    md, model, y, mask = problem(rng)
+    loss = kx.StudentTLoss(4.0)
+
+    def ll(R):
+        return kx.laplace_log_likelihood(model.replace(R=R), y, mask, loss=loss)
+
+    R0 = jnp.asarray(model.R)
+    dR = rng.standard_normal((P, P))
+    dR = 1e-2 * (dR + dR.T)
+    h = 1e-6
+    fd = (ll(R0 + h * dR) - ll(R0 - h * dR)) / (2 * h)
+    assert np.isclose(float(jnp.sum(jax.grad(ll)(R0) * dR)), float(fd), rtol=1e-6, atol=1e-8)
