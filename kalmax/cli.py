@@ -377,6 +377,30 @@ def _format_errors(errs):
     return ", ".join(f"{k} {v:.4g}" for k, v in errs.items() if k != "all")
 
 
+def _coverage_text(coverage):
+    """The summary line of the held-out interval coverage (``apply_workflow.heldout_scores``)."""
+    if coverage["all"] is None:
+        return "Held-out coverage: no held-out cells."
+    per = ", ".join(f"{c} {'-' if v is None else format(v, '.3f')}" for c, v in coverage["columns"].items()) \
+        if len(coverage["columns"]) > 1 else ""
+    return (f"Held-out coverage of the {100 * coverage['level']:g}% intervals (fitted model, {coverage['cells']} "
+            f"cells hidden from the smoother): {coverage['all']:.3f}" + (f" ({per})" if per else ""))
+
+
+def _pooled_coverage(coverages):
+    """One coverage record (as ``apply_workflow.heldout_scores`` gives) over several groups' held-out cells."""
+    def pooled(counts, fractions):
+        n = sum(k for k in counts)
+        return sum(k * f for k, f in zip(counts, fractions) if k) / n if n else None
+
+    columns = list(coverages[0]["columns"])
+    return {"level": coverages[0]["level"], "cells": sum(c["cells"] for c in coverages),
+            "all": pooled([c["cells"] for c in coverages], [c["all"] for c in coverages]),
+            "columns": {col: pooled([c["column_cells"][col] for c in coverages],
+                                    [c["columns"][col] for c in coverages]) for col in columns},
+            "column_cells": {col: sum(c["column_cells"][col] for c in coverages) for col in columns}}
+
+
 def _table_for(args, spec, series, smoothing, test_mask=None):
     from ._src.tools import apply_workflow
 
@@ -680,11 +704,13 @@ def cmd_fit(args) -> int:
                                     learning_rate=args.learning_rate, fixed=tuple(args.fix), folds=args.folds,
                                     seed=args.seed, progress=not args.quiet, block_length=fold_block)
     fitted = outcome.spec
-    after = apply_workflow.heldout_rmse(fitted, series, test) if test.any() else None
+    scores = apply_workflow.heldout_scores(fitted, series, test, args.level) if test.any() else None
+    after, coverage = (scores.rmse, scores.coverage) if scores is not None else (None, None)
     if after is not None:
         _say(args, f"Held-out RMSE of the fitted model:   {_format_errors(after)}")
         _say(args, f"Held-out RMSE, all columns in units of their sd: before {before['all']:.4g}, "
                    f"after {after['all']:.4g}")
+        _say(args, _coverage_text(coverage))
     if outcome.history and not math.isfinite(outcome.history[-1]):
         raise FitError("the fit loss became non-finite.")
     warnings = []
@@ -703,7 +729,8 @@ def cmd_fit(args) -> int:
         "seed": args.seed, "test_block": block if block is not None else "cells",
         **({"test_block_given": str(args.test_block)} if block is not None
            and not str(args.test_block).strip().isdigit() else {}),
-        "heldout_rmse_before": before, "heldout_rmse_after": after, "warnings": warnings,
+        "heldout_rmse_before": before, "heldout_rmse_after": after, "heldout_coverage": coverage,
+        "warnings": warnings,
         **({"components": args.components} if args.components is not None else {}),
     })
     natural_ses = None
@@ -872,12 +899,15 @@ def _fit_groups(args, forecast_steps, table_path, report_path, model_path) -> in
     fitted, history, result, ses = groups.fit_groups(
         specs, batch, mode=args.group_fit, steps=args.steps, learning_rate=args.learning_rate,
         fixed=tuple(args.fix), progress=not args.quiet, standard_errors=True)
-    after = [apply_workflow.heldout_rmse(sp, s, t) for sp, s, t in zip(fitted, series_list, tests)] \
+    scores = [apply_workflow.heldout_scores(sp, s, t, args.level) for sp, s, t in zip(fitted, series_list, tests)] \
         if have_test else None
+    after = None if scores is None else [sc.rmse for sc in scores]
+    coverage = None if scores is None else _pooled_coverage([sc.coverage for sc in scores])
     warnings = []
     if have_test:
         b, a = pooled(before), pooled(after)
         _say(args, f"Held-out RMSE over all groups, in units of each column's sd: before {b:.4g}, after {a:.4g}")
+        _say(args, _coverage_text(coverage))
         if math.isfinite(b) and not a <= b:
             warnings.append(f"fitting made the held-out error worse (RMSE in sd units over all groups: start "
                             f"{b:.4g}, fitted {a:.4g}). Check --steps, --learning-rate and the model; the fitted "
@@ -904,7 +934,7 @@ def _fit_groups(args, forecast_steps, table_path, report_path, model_path) -> in
         if blocks[0] is not None else "cells",
         "heldout_rmse_before": None if before is None else dict(zip(values, before)),
         "heldout_rmse_after": None if after is None else dict(zip(values, after)),
-        "warnings": warnings,
+        "heldout_coverage": coverage, "warnings": warnings,
         **({"components": args.components} if args.components is not None else {}),
     }
     if args.group_fit == "separate":

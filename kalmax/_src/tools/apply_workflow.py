@@ -71,30 +71,62 @@ def smooth_series(spec: ModelSpec, series: Series, mask=None, robust: Optional[R
     return Smoothing(mean=mean, sd=np.sqrt(np.maximum(var, 0.0)), states=np.asarray(states))
 
 
-def heldout_rmse(spec: ModelSpec, series: Series, test_mask) -> Dict[str, float]:
-    """Root mean squared error on the test entries, per column and overall ("all", in sd units).
+class HeldoutScores(NamedTuple):
+    rmse: Dict[str, float]  # per column and "all" (in sd units); see :func:`heldout_rmse`
+    coverage: Dict  # {"level", "cells", "all", "columns": {col: fraction}, "column_cells": {col: count}};
+    # a fraction is None where there are no test cells
 
-    The smoother sees every observed entry except the test entries. For a
-    model with column transforms (``series`` then on the transformed scale)
-    the errors are on the natural scale: measured value minus the
-    back-transformed smoothed median, and "all" divides them by the natural
-    scale's column sds.
+
+def heldout_scores(spec: ModelSpec, series: Series, test_mask, level: float = 0.95) -> HeldoutScores:
+    """Held-out RMSE and interval coverage of the test entries, from one smoothing that does not see them.
+
+    The smoother sees every observed entry except the test entries, so each
+    test cell is scored as a new measurement inside a gap. Coverage: the
+    fraction of test cells whose measured value lies inside the ``level``
+    interval of a new noisy measurement (mean ± z·sd with the sd of
+    :func:`smooth_series`, measurement noise included, because a held-out
+    cell is a measurement, not a state), pooled over columns and per column.
+    With column transforms the check is made on the transformed scale, which
+    is the same as on the natural one: the interval's ends are transformed
+    back by the same increasing function (``tools/transforms.py``).
+
+    RMSE: per column and overall ("all", in sd units). For a model with
+    column transforms (``series`` then on the transformed scale) the errors
+    are on the natural scale: measured value minus the back-transformed
+    smoothed median, and "all" divides them by the natural scale's column sds.
     """
     mask = series.mask
+    test_mask = np.asarray(test_mask, bool)
     sm = smooth_series(spec, series, mask & ~test_mask)
+    z = statistics.NormalDist().inv_cdf(0.5 + level / 2)
+    inside = np.abs(np.where(test_mask, series.y, 0.0) - sm.mean) <= z * sm.sd  # missing cells are NaN
+    coverage = {"level": float(level), "cells": int(test_mask.sum()),
+                "all": float(np.mean(inside[test_mask])) if test_mask.any() else None,
+                "columns": {c: float(np.mean(inside[:, j][test_mask[:, j]])) if test_mask[:, j].any()
+                            else None for j, c in enumerate(spec.columns)},  # None, not NaN: JSON
+                "column_cells": {c: int(test_mask[:, j].sum()) for j, c in enumerate(spec.columns)}}
     mean, y = sm.mean, series.y
     if spec.transforms:
         mean, y = inverse(mean, spec.columns, spec.transforms), inverse(y, spec.columns, spec.transforms)
         series = series._replace(y=y)
     err = np.where(test_mask, y - mean, np.nan)
-    out = {}
+    rmse = {}
     for j, c in enumerate(spec.columns):
         e = err[:, j][test_mask[:, j]]
-        out[c] = float(np.sqrt(np.mean(e**2))) if e.size else math.nan
+        rmse[c] = float(np.sqrt(np.mean(e**2))) if e.size else math.nan
     s = column_scales(series, mask & ~test_mask)
-    z = (err / s)[test_mask]
-    out["all"] = float(np.sqrt(np.mean(z**2))) if z.size else math.nan
-    return out
+    zs = (err / s)[test_mask]
+    rmse["all"] = float(np.sqrt(np.mean(zs**2))) if zs.size else math.nan
+    return HeldoutScores(rmse, coverage)
+
+
+def heldout_rmse(spec: ModelSpec, series: Series, test_mask) -> Dict[str, float]:
+    """Root mean squared error on the test entries, per column and overall ("all", in sd units).
+
+    The smoother sees every observed entry except the test entries (see
+    :func:`heldout_scores`, which also gives the interval coverage).
+    """
+    return heldout_scores(spec, series, test_mask).rmse
 
 
 # The kinds of cell in the status columns of the result table.
