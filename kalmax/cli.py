@@ -266,6 +266,11 @@ def build_parser() -> argparse.ArgumentParser:
     h.add_argument("--steps", type=int, default=300, metavar="N", help="optimisation steps (default: %(default)s)")
     h.add_argument("--learning-rate", type=float, default=0.1, metavar="LR",
                    help="Adam step size on the log-parameters (default: %(default)s)")
+    h.add_argument("--optimizer", choices=("adam", "lbfgs"), default="adam",
+                   help="adam: --steps first-order steps of size --learning-rate (default). lbfgs: "
+                        "quasi-Newton steps with a line search, stopping once the loss stalls (at most "
+                        "--steps); about ten steps for a likelihood with few parameters, so the choice for "
+                        "long records. Not with --group")
     h.add_argument("--test-fraction", type=float, default=0.2, metavar="F",
                    help="fraction of the --test-block blocks (or of the observed cells, with --test-block "
                         "cells) hidden from the fit and used to report the held-out error, 0 to use everything "
@@ -578,6 +583,10 @@ def cmd_fit(args) -> int:
         raise UsageError(f"--folds must be at least 2; got {args.folds}.")
     if not (args.learning_rate > 0 and math.isfinite(args.learning_rate)):
         raise UsageError(f"--learning-rate must be > 0; got {args.learning_rate}.")
+    if args.optimizer == "lbfgs" and args.group is not None:
+        # One quasi-Newton run over all groups' parameters would couple the groups through its line
+        # search and curvature pairs; Adam is per coordinate, so a batched run fits each group alone.
+        raise UsageError("--optimizer lbfgs does not combine with --group; use --optimizer adam there.")
     forecast_steps = _check_forecast(args)
     table_path, report_path, model_path = _outputs(args, model_file=True, inputs=[
         ("DATA", args.data), ("--start", args.start), ("--future-inputs", args.future_inputs)])
@@ -693,7 +702,9 @@ def cmd_fit(args) -> int:
     before = apply_workflow.heldout_rmse(spec, series, test) if test.any() else None
     if before is not None:
         _say(args, f"Held-out RMSE of the starting model: {_format_errors(before)}")
-    _say(args, f"Fitting {spec.label} (objective: {args.objective}, {args.steps} steps) ...")
+    _say(args, f"Fitting {spec.label} (objective: {args.objective}, "
+               + (f"{args.steps} steps)" if args.optimizer == "adam" else f"lbfgs, at most {args.steps} steps)")
+               + " ...")
     fold_block = block
     if block is not None and args.objective == "holdout" and len(series.t) // block < args.folds:
         # Fewer blocks than folds would leave folds empty and hide most of the record at once.
@@ -701,6 +712,7 @@ def cmd_fit(args) -> int:
         _say(args, f"Note: {len(series.t)} rows hold fewer than --folds {args.folds} blocks of {block} rows; the "
                    f"cross-validation folds use blocks of {fold_block} rows.")
     outcome = fit_workflow.fit_spec(spec, series, train, objective=args.objective, steps=args.steps,
+                                    optimizer=args.optimizer,
                                     learning_rate=args.learning_rate, fixed=tuple(args.fix), folds=args.folds,
                                     seed=args.seed, progress=not args.quiet, block_length=fold_block)
     fitted = outcome.spec
@@ -725,8 +737,8 @@ def cmd_fit(args) -> int:
         "data": Path(args.data).name, "rows": int(len(series.t)), "objective": args.objective,
         "steps_run": outcome.steps_run, "best_step": outcome.best_step, "stop_reason": outcome.stop_reason,
         "final_loss": outcome.history[outcome.best_step] if outcome.history else None,
-        "learning_rate": args.learning_rate, "fixed": list(args.fix), "test_fraction": args.test_fraction,
-        "seed": args.seed, "test_block": block if block is not None else "cells",
+        "learning_rate": args.learning_rate, "optimizer": args.optimizer, "fixed": list(args.fix),
+        "test_fraction": args.test_fraction, "seed": args.seed, "test_block": block if block is not None else "cells",
         **({"test_block_given": str(args.test_block)} if block is not None
            and not str(args.test_block).strip().isdigit() else {}),
         "heldout_rmse_before": before, "heldout_rmse_after": after, "heldout_coverage": coverage,

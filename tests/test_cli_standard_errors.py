@@ -112,3 +112,30 @@ def test_cli_standard_errors_match_a_numpy_hessian_and_autodiff(tmp_path, capsys
     se_ad = kx.standard_errors(lambda th: loss(th, *data) * n_obs, theta)
     for k in ("q", "noise"):
         np.testing.assert_allclose(np.asarray(se_fd[k]), np.asarray(se_ad[k]), rtol=1e-3)
+
+
+def test_lbfgs_reaches_the_numpy_maximum_and_stops_when_converged(tmp_path, capsys, rng):
+    """`--optimizer lbfgs` against the maximum of the NumPy reference likelihood (Nelder–Mead on the
+    value alone, started from the truth): same point to 1e-5 in the log-parameters, reached with the
+    stop reason "converged" well before the step cap. With --group it is a usage error."""
+    t, y, observed = _simulate(rng)
+    write_csv(tmp_path / "rw.csv", ["time", "y"],
+              [[repr(float(t[i])), repr(float(y[i])) if observed[i] else ""] for i in range(len(t))])
+    code, out, err = cli(["fit", "rw.csv", "--time", "time", "--model", "random-walk", "--measure", "y",
+                          "--no-report", "--test-fraction", "0", "--steps", "200", "--optimizer", "lbfgs"],
+                         tmp_path, capsys)
+    assert code == 0, err
+    doc = json.loads((tmp_path / "rw_model.json").read_text())
+    assert doc["fit"]["optimizer"] == "lbfgs"
+    assert doc["fit"]["stop_reason"] == "converged" and doc["fit"]["steps_run"] < 60
+    theta_hat = np.log([doc["model"]["parameters"]["q"][0], doc["model"]["measurements"][0]["noise_variance"]])
+    nll = lambda th: _numpy_neg_log_lik(th[0], th[1], t, y, observed)  # noqa: E731
+    best = optimize.minimize(nll, np.log([0.4, 0.6]), method="Nelder-Mead",
+                             options={"xatol": 1e-9, "fatol": 1e-12, "maxiter": 4000})
+    np.testing.assert_allclose(theta_hat, best.x, atol=1e-5)
+
+    write_csv(tmp_path / "two.csv", ["time", "site", "y"],
+              [[repr(float(t[i])), "a" if i % 2 else "b", repr(float(y[i]))] for i in range(len(t))])
+    code, out, err = cli(["fit", "two.csv", "--time", "time", "--model", "random-walk", "--measure", "y",
+                          "--group", "site", "--optimizer", "lbfgs", "--no-report"], tmp_path, capsys)
+    assert code != 0 and "--optimizer lbfgs" in err

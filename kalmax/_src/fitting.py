@@ -112,6 +112,7 @@ class _Progress:
         if not self.enabled:
             return
         text = f"loss {loss:.6g}" + ("" if validation is None else f", validation {validation:.6g}")
+        self.last = step
         if self.kind == "tqdm":
             self.bar.n = step
             self.bar.set_postfix_str(text, refresh=True)
@@ -135,7 +136,9 @@ class _Progress:
         elif self.kind == "rich":
             self.bar.stop()
         if reason != "steps":
-            print(f"fit stopped: {reason}", file=sys.stderr, flush=True)
+            elapsed = time.perf_counter() - self.start
+            print(f"fit stopped: {reason} after {getattr(self, 'last', 0)} steps ({elapsed:.1f} s)",
+                  file=sys.stderr, flush=True)
 
 
 def fit(

@@ -23,21 +23,57 @@ class FitOutcome(NamedTuple):
     stop_reason: str = "steps"  # as kx.fit reports it
 
 
+OPTIMIZERS = ("adam", "lbfgs")
+
+# lbfgs stops once the loss has improved by less than this, relative to its
+# size, in this many updates in a row (common practice for quasi-Newton fits
+# of a likelihood; the loss is per observation, so ~1e-10 relative is far below
+# what moves a parameter by a visible fraction of its standard error, and two
+# updates in a row guard against one short line-search step).
+CONVERGED_RTOL = 1e-10
+CONVERGED_UPDATES = 2
+
+
+class _Converged:
+    """A ``kx.fit`` callback: True once the loss has stalled (see CONVERGED_RTOL)."""
+
+    def __init__(self):
+        self.previous, self.stalled = math.inf, 0
+
+    def __call__(self, step) -> bool:
+        gain = self.previous - step.loss
+        self.stalled = self.stalled + 1 if gain <= CONVERGED_RTOL * max(1.0, abs(step.loss)) else 0
+        self.previous = min(self.previous, step.loss)
+        return self.stalled >= CONVERGED_UPDATES
+
+
 def fit_spec(spec: ModelSpec, series: Series, train_mask, *, objective: str = "likelihood",
              steps: int = 300, learning_rate: float = 0.05, fixed=(), folds: int = 4, seed: int = 0,
-             progress: bool = True, block_length=None) -> FitOutcome:
-    """Fit the free parameters of ``spec`` (in log space, Adam) to the training entries.
+             progress: bool = True, block_length=None, optimizer: str = "adam") -> FitOutcome:
+    """Fit the free parameters of ``spec`` (in log space) to the training entries.
+
+    ``optimizer``: "adam" takes ``steps`` first-order steps of size
+    ``learning_rate``; "lbfgs" takes quasi-Newton steps with a line search
+    (``optax.lbfgs``) and stops early once the loss stalls (stop reason
+    "converged"), at most ``steps`` of them: on a smooth likelihood with few
+    parameters it needs about ten, each a few evaluations.
 
     ``block_length``: for objective "holdout", deal the cross-validation folds
     as blocks of that many rows (None: single cells)."""
     import optax
 
+    if optimizer not in OPTIMIZERS:
+        raise ValueError(f"optimizer must be one of {OPTIMIZERS}; got {optimizer!r}.")
     theta0 = {k: jnp.asarray(v) for k, v in spec.to_unconstrained(fixed).items()}
     if not theta0:  # everything fixed: nothing to fit
         return FitOutcome(spec, [], 0, 0)
     loss, data = make_loss(spec, series, train_mask, objective, fixed=fixed, folds=folds, seed=seed,
                            block_length=block_length)
-    result = fit(loss, theta0, optax.adam(learning_rate), steps=steps, progress=progress, args=data)
+    if optimizer == "lbfgs":
+        result = fit(loss, theta0, optax.lbfgs(), steps=steps, progress=progress, args=data,
+                     callback=_Converged())
+    else:
+        result = fit(loss, theta0, optax.adam(learning_rate), steps=steps, progress=progress, args=data)
     first = float(result.history["loss"][0])
     if not math.isfinite(first):
         raise FitError(f"the {objective} loss of the starting model is not finite. Either some state cannot be "
@@ -50,7 +86,8 @@ def fit_spec(spec: ModelSpec, series: Series, train_mask, *, objective: str = "l
         fitted = calibrate_scale(fitted, series, train_mask, folds=folds, seed=seed,
                                  block_length=block_length)
     history = [float(h) for h in np.asarray(result.history["loss"])]
-    return FitOutcome(fitted, history, int(result.best_step), int(result.steps_run), str(result.stop_reason))
+    reason = "converged" if result.stop_reason == "callback" else str(result.stop_reason)
+    return FitOutcome(fitted, history, int(result.best_step), int(result.steps_run), reason)
 
 
 def log_standard_errors(spec: ModelSpec, series: Series, train_mask, *, fixed=()):
