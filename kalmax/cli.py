@@ -266,11 +266,12 @@ def build_parser() -> argparse.ArgumentParser:
     h.add_argument("--steps", type=int, default=300, metavar="N", help="optimisation steps (default: %(default)s)")
     h.add_argument("--learning-rate", type=float, default=0.1, metavar="LR",
                    help="Adam step size on the log-parameters (default: %(default)s)")
-    h.add_argument("--optimizer", choices=("adam", "lbfgs"), default="adam",
-                   help="adam: --steps first-order steps of size --learning-rate (default). lbfgs: "
-                        "quasi-Newton steps with a line search, stopping once the loss stalls (at most "
-                        "--steps); about ten steps for a likelihood with few parameters, so the choice for "
-                        "long records. Not with --group")
+    h.add_argument("--optimizer", choices=("auto", "adam", "lbfgs"), default="auto",
+                   help="lbfgs: quasi-Newton steps with a line search, stopping once the loss stalls (at most "
+                        "--steps); about ten steps for a likelihood with few parameters. adam: --steps "
+                        "first-order steps of size --learning-rate. auto (default): lbfgs for --objective "
+                        "likelihood, adam for --objective holdout (a noisy, nearly flat cross-validated error) "
+                        "and with --group (lbfgs does not combine with it)")
     h.add_argument("--test-fraction", type=float, default=0.2, metavar="F",
                    help="fraction of the --test-block blocks (or of the observed cells, with --test-block "
                         "cells) hidden from the fit and used to report the held-out error, 0 to use everything "
@@ -583,6 +584,8 @@ def cmd_fit(args) -> int:
         raise UsageError(f"--folds must be at least 2; got {args.folds}.")
     if not (args.learning_rate > 0 and math.isfinite(args.learning_rate)):
         raise UsageError(f"--learning-rate must be > 0; got {args.learning_rate}.")
+    if args.optimizer == "auto":
+        args.optimizer = "lbfgs" if args.objective == "likelihood" and args.group is None else "adam"
     if args.optimizer == "lbfgs" and args.group is not None:
         # One quasi-Newton run over all groups' parameters would couple the groups through its line
         # search and curvature pairs; Adam is per coordinate, so a batched run fits each group alone.

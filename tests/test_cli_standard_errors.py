@@ -82,6 +82,7 @@ def test_cli_standard_errors_match_a_numpy_hessian_and_autodiff(tmp_path, capsys
     q_hat = doc["model"]["parameters"]["q"][0]
     r_hat = doc["model"]["measurements"][0]["noise_variance"]
     se_cli = doc["fit"]["standard_errors"]
+    assert doc["fit"]["optimizer"] == "lbfgs"  # the default (auto) for the likelihood objective
 
     # The reference likelihood agrees with the command line's loss at the fitted values (value check,
     # which pins the flat-prior convention of the docstring).

@@ -65,6 +65,9 @@ def test_non_finite_loss_and_callback_stop():
     res = kx.fit(lambda w: w**2, jnp.array(3.0), optax.sgd(0.1), steps=50, progress=False,
                  callback=lambda s: seen.append(s.step) or s.step == 4)
     assert res.stop_reason == "callback" and res.steps_run == 4 and seen == [0, 1, 2, 3, 4]
+    res = kx.fit(lambda w: w**2, jnp.array(3.0), optax.sgd(0.1), steps=50, progress=False,
+                 callback=lambda s: "small enough" if abs(float(s.params)) < 1.0 else None)
+    assert res.stop_reason == "small enough" and abs(float(res.params)) < 1.0 <= 3.0 * 0.8 ** (res.steps_run - 1)
 
 
 def test_progress_display(capsys):

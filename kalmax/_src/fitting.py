@@ -59,7 +59,7 @@ class FitResult(NamedTuple):
             ``"loss"`` and, with ``validation_fn``, ``"validation"``.
         best_step: number of updates behind ``params``.
         steps_run: number of updates made (≤ ``steps``).
-        stop_reason: ``"steps"``, ``"patience"``, ``"callback"`` or ``"non-finite"``.
+        stop_reason: ``"steps"``, ``"patience"``, ``"callback"``, ``"non-finite"``, or the string a callback returned.
         opt_state: optimiser state after the last update (to resume).
         standard_errors: pytree like ``params`` (see :func:`standard_errors`)
             when ``neg_log_lik_fn`` was given, else None.
@@ -181,7 +181,9 @@ def fit(
             line on stderr every ~10 % of the steps).
         jit: compile the step (and the validation) with ``jax.jit``.
         callback: optional function called with a :class:`FitStep` after each
-            evaluation; returning True stops the fit.
+            evaluation; returning True stops the fit (stop reason
+            "callback"), returning a non-empty string stops it with that
+            string as the stop reason.
         neg_log_lik_fn: optional params → negative log-likelihood; when given,
             ``FitResult.standard_errors`` holds
             ``standard_errors(neg_log_lik_fn, result.params)``.
@@ -311,8 +313,9 @@ def fit(
         else:
             since_best += 1
         bar.update(k, loss, val)
-        if callback is not None and callback(FitStep(k, current, loss, val)):
-            reason = "callback"
+        said = None if callback is None else callback(FitStep(k, current, loss, val))
+        if said:
+            reason = said if isinstance(said, str) else "callback"
             break
         if patience is not None and since_best >= patience:
             reason = "patience"

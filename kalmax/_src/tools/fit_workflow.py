@@ -40,11 +40,11 @@ class _Converged:
     def __init__(self):
         self.previous, self.stalled = math.inf, 0
 
-    def __call__(self, step) -> bool:
+    def __call__(self, step):
         gain = self.previous - step.loss
         self.stalled = self.stalled + 1 if gain <= CONVERGED_RTOL * max(1.0, abs(step.loss)) else 0
         self.previous = min(self.previous, step.loss)
-        return self.stalled >= CONVERGED_UPDATES
+        return "converged" if self.stalled >= CONVERGED_UPDATES else None
 
 
 def fit_spec(spec: ModelSpec, series: Series, train_mask, *, objective: str = "likelihood",
@@ -86,8 +86,7 @@ def fit_spec(spec: ModelSpec, series: Series, train_mask, *, objective: str = "l
         fitted = calibrate_scale(fitted, series, train_mask, folds=folds, seed=seed,
                                  block_length=block_length)
     history = [float(h) for h in np.asarray(result.history["loss"])]
-    reason = "converged" if result.stop_reason == "callback" else str(result.stop_reason)
-    return FitOutcome(fitted, history, int(result.best_step), int(result.steps_run), reason)
+    return FitOutcome(fitted, history, int(result.best_step), int(result.steps_run), str(result.stop_reason))
 
 
 def log_standard_errors(spec: ModelSpec, series: Series, train_mask, *, fixed=()):
