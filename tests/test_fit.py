@@ -89,6 +89,26 @@ def test_lbfgs_extra_arguments_and_argument_errors():
         kx.fit(loss, {"w": jnp.zeros(3), "b": jnp.ones(2)}, optax.sgd(0.1), patience=0)
 
 
+def test_compiled_step_is_traced_once_with_lbfgs():
+    # optax.lbfgs starts with weakly typed scalars in its state; the step
+    # returns them strongly typed. A fit must not compile its step again on
+    # the second call: the loss is traced as often in a 4-call fit (steps=3,
+    # plus the final loss) as in a 1-call fit (steps=0).
+    quadratic = _quadratic(jnp.array([3.0, 1.0, -1.0]))
+    traces = []
+
+    def loss(p):
+        traces.append(1)  # runs only while JAX traces the step
+        return quadratic(p)
+
+    counts = []
+    for steps in (0, 3):
+        traces.clear()
+        kx.fit(loss, {"w": jnp.zeros(3), "b": jnp.ones(2)}, optax.lbfgs(), steps=steps, progress=False)
+        counts.append(len(traces))
+    assert counts[0] > 0 and counts[1] == counts[0], counts
+
+
 def test_standard_errors_of_a_gaussian_sample():
     """i.i.d. N(μ, σ²), parameters (μ, log σ): the inverse observed information at
     the MLE gives SE(μ̂) = σ̂/√N and SE(log σ̂) = 1/√(2N); by the delta method

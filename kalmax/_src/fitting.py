@@ -141,6 +141,11 @@ class _Progress:
                   file=sys.stderr, flush=True)
 
 
+def _strongly_typed(leaf):
+    """A weakly typed array as a strongly typed one of the same dtype; anything else unchanged."""
+    return jnp.asarray(leaf, leaf.dtype) if getattr(leaf, "weak_type", False) else leaf
+
+
 def fit(
     loss_fn: Callable,
     params,
@@ -256,7 +261,12 @@ def fit(
     if validation_fn is None:
         val_fn = None
 
-    opt_state = opt.init(params)
+    # Some optimisers start scalars of their state weakly typed (optax.lbfgs:
+    # its counter and two values) and the step returns them strongly typed, so
+    # the second call of the compiled step would see new argument types and
+    # compile it again. Strong from the start: one compilation (the step's own
+    # arithmetic on them is the same from the second call on either way).
+    opt_state = jax.tree_util.tree_map(_strongly_typed, opt.init(params))
     losses, vals = [], []
     best_value, best_step, best_params, since_best = math.inf, 0, params, 0
     k = 0

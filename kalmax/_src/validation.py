@@ -11,7 +11,8 @@ from .backends.base import arithmetic_dtype
 from .checks import canonicalize
 from .model import StateSpace
 from .normal_equations import assemble
-from .primitive import get_backend, resolve_method, smoothed_means
+from .primitive import get_backend, resolve_method
+from .smoothing import _smooth_checked
 
 
 def _cov_problems(name: str, S, rtol: float, singular_ok: bool = False) -> list:
@@ -65,6 +66,19 @@ def _factor(model, y, w, pivot_tol):
 
 
 _solve = jax.jit(blocktri.solve)
+
+
+def _smoothed_states(model, y, mask, dtype, method):
+    """The states smooth returns, from the very program smooth compiles (cached per shape and method).
+
+    Called op by op instead, a portable backend re-traced and re-compiled
+    every scan of the solve on every validate call (measured: ~20 s of a
+    float32 T = 100 check under load, most of it compiling single operations),
+    and the verdict was that of a differently compiled program.
+    """
+    mask = jnp.asarray(mask)
+    y = jnp.where(mask, y, 0).astype(dtype)
+    return np.asarray(_smooth_checked(model, y, mask, covariances=False, method=method).states)
 
 
 def _one_norm(system) -> float:
@@ -247,8 +261,7 @@ def _conditioning_problems(model, y, mask, dtype, max_error_bound, method) -> li
     arith = arithmetic_dtype(get_backend(name), dtype)
     eps = float(np.finfo(arith).eps)
     bar = tolerances.trusted_error(dtype)
-    w = jnp.asarray(mask, dtype)
-    x = np.asarray(smoothed_means(model, jnp.where(jnp.asarray(mask), y, 0).astype(dtype), w, name))
+    x = _smoothed_states(model, y, mask, dtype, name)
     cond = condition_estimate(model, y, mask)
     where = f"method={name!r}, {np.dtype(dtype).name} input"
     where += f", {arith.name} arithmetic" if arith != np.dtype(dtype) else ""
@@ -293,8 +306,7 @@ def _conditioning_problems(model, y, mask, dtype, max_error_bound, method) -> li
 
 def _filter_problems(model, y, mask, dtype, name) -> list:
     """validate for the covariance-form filter: it is NaN only when its own factors fail."""
-    w = jnp.asarray(mask, dtype)
-    x = np.asarray(smoothed_means(model, jnp.where(jnp.asarray(mask), y, 0).astype(dtype), w, name))
+    x = _smoothed_states(model, y, mask, dtype, name)
     if np.all(np.isfinite(x)):
         return []
     if model.x0_cov is None:
