@@ -335,3 +335,36 @@ def test_threaded_batches_equal_one_thread(rng, dtype, monkeypatch):
     tol = 1e-10 if dtype == np.float64 else 1e-3
     ref_states = np.asarray(loss(model, "scan")[1])
     np.testing.assert_allclose(runs["3"][0], ref_states, rtol=0, atol=tol * np.abs(ref_states).max())
+
+
+@pytest.mark.parametrize("time_varying", [False, True])
+def test_one_trajectory_gradient_split_over_threads_matches_one_thread_and_scan(rng, time_varying, monkeypatch):
+    """A single long trajectory's gradient pass split over time between threads
+    (smoother.h, gradients_one's parts: u = H⁻¹x̄ by both sweeps first, then the
+    per-step terms in contiguous ranges, each with its own accumulators) equals
+    the one-thread pass up to the order of the sums, and the pure-JAX route
+    (independent code). T is above 2 × 8,192 steps per part; 2 and 3 threads
+    are forced so the split happens on any machine (3 parts: uneven
+    boundaries); the prior's terms live in the first part."""
+    T = 30_001
+    model = to_model(random_model(rng, 2, 2, T, time_varying=time_varying, full_R=True, prior=True,
+                                  offsets=True))
+    y = jnp.asarray(rng.standard_normal((T, 2)))
+    mask = jnp.asarray(rng.random((T, 2)) > 0.2)
+
+    def loss(m, yy, method):
+        return jnp.sum(jnp.sin(kx.smooth(m, yy, mask, method=method).states))
+
+    vg = {m: jax.jit(jax.value_and_grad(lambda mm, yy, m=m: loss(mm, yy, m), argnums=(0, 1))) for m in ("cpu", "scan")}
+    runs = {}
+    for threads in ("1", "2", "3"):
+        monkeypatch.setenv("KALMAX_CPU_THREADS", threads)
+        # np.asarray waits for the result: the handler reads the thread cap when it runs.
+        runs[threads] = [np.asarray(a) for a in jax.tree_util.tree_leaves(vg["cpu"](model, y))]
+    monkeypatch.delenv("KALMAX_CPU_THREADS")
+    ref = [np.asarray(a) for a in jax.tree_util.tree_leaves(vg["scan"](model, y))]
+    for threads in ("2", "3"):
+        for a, b, r in zip(runs["1"], runs[threads], ref):
+            scale = max(1.0, float(np.max(np.abs(r))))
+            np.testing.assert_allclose(b, a, rtol=1e-11, atol=1e-12 * scale)
+            np.testing.assert_allclose(b, r, rtol=1e-8, atol=1e-9 * scale)

@@ -767,6 +767,7 @@ ffi::Error GradientsImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer s
       constexpr int NK = decltype(nk)::value;
       const int p = go.mo.p;
       const std::size_t Tn = std::size_t(T) * n;
+      const int parts = parts_per_trajectory(bs.count, T);
       for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
         std::vector<double> ws(workspace_reals(n, p));
         // Uninitialised (std::vector would zero-fill it, faulting every page in
@@ -788,7 +789,7 @@ ffi::Error GradientsImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer s
           gradients_one<double, NK>(W, go.fo.view<Real>(bs, bi, wf), go.fo.ok_at(bs, bi),
                                     x_double<Real>(go.x, go.x_lo, bs, bi, xbuf, Tn),
                                     as_double(at<Real>(go.xbar, bs, bi), xbbuf, Tn), G, ws.data(), u.get(),
-                                    acc.data(), idx.data(), caches.get(W, P.C, P.R));
+                                    acc.data(), idx.data(), caches.get(W, P.C, P.R), parts);
           grads.store(G);
         }
       });

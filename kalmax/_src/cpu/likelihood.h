@@ -169,11 +169,7 @@ class LoglikPart {
     sigma_ = arena.take(q);
     cs_ = arena.take(q + 1);
     if (raw) copy(Qinv_, Qinv_shared, n2);
-    if (own_acc != nullptr) {
-      GradSink<Real>* sinks[] = {&G_.A, &G_.Q, &G_.b, &G_.C, &G_.R, &G_.d, &G_.m0, &G_.P0};
-      for (GradSink<Real>* g : sinks)
-        if (g->present() && !g->tv) g->acc = own_acc + (g->acc - acc_base);
-    }
+    if (own_acc != nullptr) redirect_accumulators(G_, acc_base, own_acc);
   }
 
   double value() const { return val_; }

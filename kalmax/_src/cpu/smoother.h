@@ -37,6 +37,8 @@
 #include <limits>
 #include <utility>
 #include <vector>
+#include <thread>
+#include <memory>
 
 #include "dense.h"
 #include "patterns.h"
@@ -814,52 +816,70 @@ inline void spd_solve2(const Real* L, Real* a, Real* b, int n_) {
   }
 }
 
+// Points G's time-invariant accumulators, which lie in acc_base, at the same
+// offsets in own_acc instead: a part of a pass that runs beside others sums
+// into its own, added to the caller's at the end.
+template <class Real>
+void redirect_accumulators(Gradients<Real>& G, const double* acc_base, double* own_acc) {
+  GradSink<Real>* sinks[] = {&G.A, &G.Q, &G.b, &G.C, &G.R, &G.d, &G.m0, &G.P0};
+  for (GradSink<Real>* g : sinks)
+    if (g->present() && !g->tv) g->acc = own_acc + (g->acc - acc_base);
+}
+
+// The per-step terms of the implicit-function gradients over a range of
+// steps, given x and u = H⁻¹x̄ at every step: one per thread when a
+// trajectory's pass is split over time (see gradients_one). Its own scratch,
+// pattern cache and accumulators of the time-invariant fields; the per-step
+// outputs it writes are its own steps' only.
 template <class Real, int NK>
-void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, const Real* x,
-                   const Real* xbar, Gradients<Real>& G, Real* ws, Real* u, double* acc, int* idx,
-                   PatternCache<Real>* cache) {
-  const int T = P.T, n = fixed<NK>(P.n), p = P.p;
-  const std::size_t n2 = std::size_t(n) * n, Tn = std::size_t(T) * n;
-
-  const GradSinks<Real> sinks(G, T, n, p, acc);
-  if (!ok) {
-    sinks.fail();
-    return;
+class GradientPart {
+ public:
+  // Qinv_shared: Q⁻¹ when Q is time-invariant. acc_base / own_acc: G's
+  // accumulators point into acc_base; a part that runs beside others gets
+  // own_acc (same size, zeroed) instead (nullptr: use G's own).
+  GradientPart(const Trajectory<Real>& P, const Real* x, const Real* u, const Gradients<Real>& G,
+               const double* acc_base, double* own_acc, bool raw_sums, const Real* Qinv_shared, int* idx,
+               PatternCache<Real>* cache)
+      : P_(P), x_(x), u_(u), G_(G), raw_sums_(raw_sums), Qinv_(Qinv_shared), idx_(idx), cache_(cache) {
+    n_ = fixed<NK>(P.n);
+    p_ = P.p;
+    const std::size_t n2 = std::size_t(n_) * n_;
+    const std::size_t q = std::size_t(n_ > p_ ? n_ : p_);
+    buf_.resize(n2 + std::size_t(p_) * p_ + 4 * std::size_t(n_) + 3 * std::size_t(p_) + q + 8);
+    Arena<Real> arena(buf_.data());
+    Lq_ = arena.take(n2);
+    Lr_ = arena.take(std::size_t(p_) * p_);
+    rho_ = arena.take(n_);
+    phi_ = arena.take(n_);
+    alpha_ = arena.take(n_);
+    beta_ = arena.take(n_);
+    sigma_ = arena.take(p_);
+    kappa_ = arena.take(p_);
+    ey_ = arena.take(p_);
+    cs_ = arena.take(q + 1);
+    if (own_acc != nullptr) redirect_accumulators(G_, acc_base, own_acc);
   }
 
-  Arena<Real> arena(ws);
-  Real* Lq = arena.take(n2);
-  Real* Qinv = arena.take(n2);
-  Real* Lr = arena.take(std::size_t(p) * p);
-  Real* rho = arena.take(n);
-  Real* phi = arena.take(n);
-  Real* sigma = arena.take(p);
-  Real* kappa = arena.take(p);
-  Real* ey = arena.take(p);
-  Real* alpha = arena.take(n);
-  Real* beta = arena.take(n);
-  Real* cs = arena.take(std::size_t(n > p ? n : p) + 1);  // Cholesky scratch
-  Real* tmp = arena.take(n);
-  Real* tmp2 = arena.take(n);
+  bool failed() const { return failed_; }
 
-  // A fixed transition (A, Q and b all time-invariant): the transition
-  // gradients are Q⁻¹ times sums of outer products, so the loop only sums.
-  const bool raw_sums = !P.Q_tv && !P.A_tv && !(P.b != nullptr && P.b_tv);
-
-  // Time-invariant Q: use Q⁻¹ explicitly (matrix-vector products, no chains).
-  if (T > 1 && !P.Q_tv && !sym_cholesky_inverse<Real, NK>(Qinv, Lq, P.Q, n, cs)) {
-    sinks.fail();
-    return;
-  }
-
-  // u = H⁻¹ x̄: forward sweep now, back sweep fused with the gradient terms.
-  copy(u, xbar, Tn);
-  forward_substitute<Real, NK>(F, u, T, n, tmp, tmp2);
-  for (int t = T - 1; t >= 0; --t) {
+  // The terms of step t: the transition t → t+1 (t < T-1), the measurement
+  // at t and the prior at t = 0.
+  void visit(int t) {
+    if (failed_) return;
+    const int T = P_.T, n = fixed<NK>(n_), p = p_;
+    const std::size_t n2 = std::size_t(n) * n;
+    const Trajectory<Real>& P = P_;
+    Gradients<Real>& G = G_;
+    const bool raw_sums = raw_sums_;
+    const Real* Qinv = Qinv_;
+    Real *Lq = Lq_, *Lr = Lr_, *rho = rho_, *phi = phi_, *alpha = alpha_, *beta = beta_;
+    Real *sigma = sigma_, *kappa = kappa_, *ey = ey_, *cs = cs_;
+    PatternCache<Real>* cache = cache_;
+    int* idx = idx_;
     const bool last = t == T - 1;
-    Real* ut = u + std::size_t(t) * n;
-    const Real* xt = x + std::size_t(t) * n;
-    back_step<Real, NK>(F, t, last ? nullptr : ut + n, ut, n, tmp, tmp2);
+    const Real* ut = u_ + std::size_t(t) * n;
+    const Real* xt = x_ + std::size_t(t) * n;
+    (void)n2;
 
     // Transition t: needs u_t, u_{t+1}, x_t, x_{t+1}.
     if (!last) {
@@ -894,7 +914,7 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
       } else {
         if (P.Q_tv) {
           if (!sym_cholesky<Real, NK>(Lq, P.Qt(t), n, cs)) {
-            sinks.fail();
+            failed_ = true;
             return;
           }
           copy(rho, alpha, n);
@@ -924,7 +944,7 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
     // Measurement t: σ = S e (e the observed residual), κ = S C u.
     Measurement<Real, NK> m;
     if (!measurement_at<Real, NK>(P, t, cache, idx, Lr, cs, &m)) {
-      sinks.fail();
+      failed_ = true;
       return;
     }
     const int k = m.k;
@@ -1002,7 +1022,7 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
     if (t == 0 && P.P0 != nullptr) {
       Real* Lp = Lq;  // Lq is no longer needed at t = 0
       if (!sym_cholesky<Real, NK>(Lp, P.P0, n, cs)) {
-        sinks.fail();
+        failed_ = true;
         return;
       }
       for (int i = 0; i < n; ++i) {
@@ -1016,6 +1036,111 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
       G.P0.add_at(0, [&](auto* gP) { add_sym_outer(gP, alpha, beta, n, Real(1)); });
     }
   }
+
+ private:
+  const Trajectory<Real>& P_;
+  const Real* x_;
+  const Real* u_;
+  Gradients<Real> G_;  // a copy: its accumulators may be this part's own
+  bool raw_sums_;
+  const Real* Qinv_;
+  int* idx_;
+  PatternCache<Real>* cache_;
+  int n_ = 0, p_ = 0;
+  std::vector<Real> buf_;
+  Real *Lq_, *Lr_, *rho_, *phi_, *alpha_, *beta_, *sigma_, *kappa_, *ey_, *cs_;
+  bool failed_ = false;
+};
+
+// Runs part->visit(t) for t = 0..T-1, the steps split into `parts`
+// contiguous ranges on as many threads (the calling thread takes the last
+// range). make_part(k, beside) builds part k; beside: it runs on a thread of
+// its own. False when a part failed.
+template <class Part, class Make>
+bool visit_in_parts(int T, int parts, Make&& make_part) {
+  if (parts > T) parts = T;
+  if (parts < 1) parts = 1;
+  std::vector<std::unique_ptr<Part>> part(parts);
+  for (int k = 0; k < parts; ++k) part[k] = make_part(k, k != parts - 1);
+  auto bound = [&](int k) { return int((int64_t(T) * k) / parts); };
+  std::vector<std::thread> threads;
+  threads.reserve(std::size_t(parts - 1));
+  for (int k = 0; k < parts - 1; ++k)
+    threads.emplace_back([&, k]() {
+      for (int t = bound(k); t < bound(k + 1); ++t) part[k]->visit(t);
+    });
+  for (int t = bound(parts - 1); t < T; ++t) part[parts - 1]->visit(t);
+  for (auto& th : threads) th.join();
+  for (int k = 0; k < parts; ++k)
+    if (part[k]->failed()) return false;
+  return true;
+}
+
+template <class Real, int NK>
+void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, const Real* x,
+                   const Real* xbar, Gradients<Real>& G, Real* ws, Real* u, double* acc, int* idx,
+                   PatternCache<Real>* cache, int parts = 1) {
+  const int T = P.T, n = fixed<NK>(P.n), p = P.p;
+  const std::size_t n2 = std::size_t(n) * n, Tn = std::size_t(T) * n;
+
+  const GradSinks<Real> sinks(G, T, n, p, acc);
+  if (!ok) {
+    sinks.fail();
+    return;
+  }
+
+  Arena<Real> arena(ws);
+  Real* Lq = arena.take(n2);
+  Real* Qinv = arena.take(n2);
+  Real* cs = arena.take(std::size_t(n > p ? n : p) + 1);  // Cholesky scratch
+  Real* tmp = arena.take(n);
+  Real* tmp2 = arena.take(n);
+
+  // A fixed transition (A, Q and b all time-invariant): the transition
+  // gradients are Q⁻¹ times sums of outer products, so the loop only sums.
+  const bool raw_sums = !P.Q_tv && !P.A_tv && !(P.b != nullptr && P.b_tv);
+
+  // Time-invariant Q: use Q⁻¹ explicitly (matrix-vector products, no chains).
+  if (T > 1 && !P.Q_tv && !sym_cholesky_inverse<Real, NK>(Qinv, Lq, P.Q, n, cs)) {
+    sinks.fail();
+    return;
+  }
+
+  // u = H⁻¹ x̄ (both sweeps), then the per-step terms, which need only x and
+  // u at steps t and t+1: split over `parts` threads when asked (a
+  // trajectory with cores to itself), each part with its own accumulators,
+  // added here at the end.
+  copy(u, xbar, Tn);
+  forward_substitute<Real, NK>(F, u, T, n, tmp, tmp2);
+  back_substitute<Real, NK>(F, u, T, n, tmp, tmp2);
+  const int slots = parts > 1 ? parts : 1;
+  const std::size_t acc_size = accumulator_size(n, p);
+  std::vector<std::unique_ptr<PatternCache<Real>>> caches(slots);
+  std::vector<std::vector<int>> idxs(slots);
+  std::vector<std::vector<double>> accs(slots);
+  const bool ok_terms = visit_in_parts<GradientPart<Real, NK>>(T, parts, [&](int k, bool beside) {
+    PatternCache<Real>* c = cache;
+    int* ix = idx;
+    double* own_acc = nullptr;
+    if (beside) {
+      if (cache != nullptr) {
+        caches[k] = cache->fresh();
+        c = caches[k].get();
+      }
+      idxs[k].resize(std::size_t(p) + 1);
+      ix = idxs[k].data();
+      accs[k].assign(acc_size, 0.0);
+      own_acc = accs[k].data();
+    }
+    return std::unique_ptr<GradientPart<Real, NK>>(
+        new GradientPart<Real, NK>(P, x, u, G, acc, own_acc, raw_sums, Qinv, ix, c));
+  });
+  if (!ok_terms) {
+    sinks.fail();
+    return;
+  }
+  for (const auto& a : accs)
+    for (std::size_t i = 0; i < a.size(); ++i) acc[i] += a[i];
 
   if (raw_sums && T > 1) apply_qinv_to_sums(G, Qinv, n);
   sinks.finish(/*symmetrise_Q=*/true);
