@@ -52,22 +52,25 @@ from typing import NamedTuple, Tuple
 import jax
 import jax.numpy as jnp
 
-from ..linalg import chol, lsolve, lsolve_vec, matvec, mT
+from ..linalg import chol, cross, gram, lsolve, lsolve_vec, matvec, mT
 from ..tolerances import pivot_tolerance
 from .base import Backend, checked_solve
 
 
 class ReductionLevel(NamedTuple):
-    """What one level of cyclic reduction keeps, for m eliminated blocks.
+    """What one level of cyclic reduction keeps, for N blocks entering it and m = ⌈N/2⌉ eliminated.
 
-    L: (m, n, n) Cholesky factors of the eliminated diagonal blocks;
-    Wl, Wr: (m, n, n) their whitened couplings to the left/right kept block
-    (Wr is zero for a last eliminated block without right neighbour).
+    L: (m, n, n) Cholesky factors of the eliminated diagonal blocks (an
+    identity for the padding block of an odd N);
+    S: the sub-diagonal blocks S_j = H'_{j+1,j} of the level's own system:
+    (N − 1, n, n), or (n, n) at the finest level when the model's
+    sub-diagonal is time-invariant (one block shared by every step).
+    The whitened couplings Wl, Wr are not kept: the solves apply S and L⁻¹
+    to vectors instead (module docstring, "Memory").
     """
 
     L: object
-    Wl: object
-    Wr: object
+    S: object
 
 
 @dataclasses.dataclass(frozen=True)
@@ -76,7 +79,7 @@ class ReductionFactor:
 
     levels: tuple of :class:`ReductionLevel`; root: (n, n) Cholesky factor of
     the last remaining block; ok: scalar bool, False when a pivot collapsed;
-    sizes: (static) number of blocks entering each level, finest first — an
+    sizes: (static) number of blocks N entering each level, finest first — an
     eliminated count m may come from 2m or 2m − 1 blocks, so it is recorded.
     """
 
@@ -89,19 +92,13 @@ class ReductionFactor:
 jax.tree_util.register_dataclass(ReductionFactor, data_fields=["levels", "root", "ok"], meta_fields=["sizes"])
 
 
-def _pad_even(a, fill):
-    """Append one block `fill` to a stack of an odd number of blocks."""
-    if a.shape[0] % 2 == 0:
-        return a
-    return jnp.concatenate([a, jnp.broadcast_to(fill, (1,) + a.shape[1:]).astype(a.dtype)], axis=0)
-
-
-def _pad_to(a, size):
-    """Zero-pad a stack of blocks at the end to `size` blocks."""
+def _pad_to(a, size, fill=0):
+    """Append blocks (or vectors) equal to `fill` to a stack, up to `size` of them."""
     extra = size - a.shape[0]
     if extra == 0:
         return a
-    return jnp.concatenate([a, jnp.zeros((extra,) + a.shape[1:], a.dtype)], axis=0)
+    pad = jnp.broadcast_to(jnp.asarray(fill, a.dtype), (extra,) + a.shape[1:])
+    return jnp.concatenate([a, pad], axis=0)
 
 
 def _shift_right(a):
@@ -109,11 +106,76 @@ def _shift_right(a):
     return jnp.concatenate([jnp.zeros_like(a[:1]), a[:-1]], axis=0)
 
 
+def _interleave(kept, odd, N):
+    """Blocks 0..N−1 from the kept (even) and eliminated (odd) ones."""
+    return jnp.stack([kept, odd], axis=1).reshape((-1,) + kept.shape[1:])[:N]
+
+
+def _couplings(S, parity, m):
+    """S_{2i+parity} for i < m, zero past the end: (m, n, n), or the shared (n, n) block."""
+    if S.ndim == 2:
+        return S
+    return _pad_to(S[parity::2], m)
+
+
+def _apply(S, parity, v, *, transpose):
+    """S_{2i+parity} v_i (or S_{2i+parity}ᵀ v_i) for i < len(v), zero past the end of S.
+
+    Per-block S: written as a product and a sum rather than a dot, so that XLA
+    fuses the strided slice of S into the reduction and no stack of blocks is
+    copied (module docstring, "Memory").
+    """
+    if S.ndim == 2:
+        return matvec(mT(S) if transpose else S, v)
+    Ss = S[parity::2][: v.shape[0]]
+    vs = v[: Ss.shape[0]]
+    out = jnp.sum(Ss * vs[:, :, None], axis=-2) if transpose else jnp.sum(Ss * vs[:, None, :], axis=-1)
+    return _pad_to(out, v.shape[0])
+
+
 def _pivot_ratios(L, h):
     # As in blocktri: squared pivots relative to the *original* diagonal of H,
     # so a Schur complement that cancelled to rounding level is caught.
     d = jnp.diagonal(L, axis1=-2, axis2=-1)
     return jnp.min(d * d / jnp.where(h > 0, h, 1))
+
+
+def reduce(diag, sub, pivot_tol=None):
+    """The cyclic-reduction factor of H, without a solve.
+
+    Args:
+        diag: (T, n, n) diagonal blocks of H (symmetric positive definite H).
+        sub: (T-1, n, n) or (n, n) sub-diagonal blocks H_{t+1,t}.
+        pivot_tol: as in ``blocktri.factor_solve``.
+    """
+    n, dtype = diag.shape[-1], diag.dtype
+    eye = jnp.eye(n, dtype=dtype)
+    # Original diagonal entries of H per block (padding blocks: 1, identity).
+    h = jnp.diagonal(diag, axis1=-2, axis2=-1)
+    D, S = diag, sub
+    levels, sizes = [], []
+    ratio = jnp.asarray(jnp.inf, dtype)
+    while D.shape[0] > 1:
+        N = D.shape[0]
+        m = (N + 1) // 2  # eliminated blocks (with a padding block when N is odd) = kept blocks
+        Lo = chol(_pad_to(D[1::2], m, eye))
+        ratio = jnp.minimum(ratio, _pivot_ratios(Lo, _pad_to(h[1::2], m, 1)))
+        # The whitened couplings are transient: Wl_k = L_k⁻¹ S_{k-1}, Wr_k = L_k⁻¹ S_kᵀ.
+        Wl = lsolve(Lo, _couplings(S, 0, m))
+        Wr = lsolve(Lo, mT(_couplings(S, 1, m)))
+        left = gram(Wl)
+        if N % 2 and S.ndim == 2:  # the padding block couples to nothing; a shared S does not know that
+            left = left * (jnp.arange(m) < m - 1).astype(dtype)[:, None, None]
+        levels.append(ReductionLevel(Lo, S))
+        sizes.append(N)
+        # Wr of the last eliminated block is zero or unused (no right neighbour).
+        S = -cross(Wr, Wl)[:-1]  # −Wr_kᵀ Wl_k couples kept 2i and 2i+2
+        D = D[0::2] - left - _shift_right(gram(Wr))
+        h = h[0::2]
+    root = chol(D[0])
+    ratio = jnp.minimum(ratio, _pivot_ratios(root, h[0]))
+    ok = ratio > (pivot_tolerance(dtype, n) if pivot_tol is None else pivot_tol)
+    return ReductionFactor(levels=tuple(levels), root=root, ok=ok, sizes=tuple(sizes))
 
 
 def factor_solve(diag, sub, rhs, pivot_tol=None):
@@ -129,63 +191,31 @@ def factor_solve(diag, sub, rhs, pivot_tol=None):
         (x (T, n), ReductionFactor); x is NaN when a pivot collapsed, as in
         ``blocktri.factor_solve``.
     """
-    T, n = rhs.shape
-    dtype = rhs.dtype
-    eye = jnp.eye(n, dtype=dtype)
-    if sub.ndim == 2:
-        sub = jnp.broadcast_to(sub, (max(T - 1, 0), n, n))
-    # Original diagonal entries of H per block (padding blocks: 1, identity).
-    h = jnp.diagonal(diag, axis1=-2, axis2=-1)
-    D, S, g = diag, sub, rhs
-    levels, zs = [], []
-    ratio = jnp.asarray(jnp.inf, dtype)
-    while D.shape[0] > 1:
-        N = D.shape[0]
-        D = _pad_even(D, eye)
-        g = _pad_even(g, jnp.zeros((n,), dtype))
-        h = _pad_even(h, jnp.ones((n,), dtype))
-        S = _pad_to(S, D.shape[0])  # S[N'-1] couples the last block to nothing
-        Do, go = D[1::2], g[1::2]
-        Lo = chol(Do)
-        ratio = jnp.minimum(ratio, _pivot_ratios(Lo, h[1::2]))
-        # One batched triangular solve for both couplings: L⁻¹ [S_{k-1}, S_kᵀ].
-        W = lsolve(Lo, jnp.concatenate([S[0::2], mT(S[1::2])], axis=-1))
-        Wl, Wr = W[..., :n], W[..., n:]
-        G = jnp.einsum("mki,mkj->mij", W, W)  # [[WlᵀWl, WlᵀWr], [WrᵀWl, WrᵀWr]]
-        z = lsolve_vec(Lo, go)
-        D = D[0::2] - G[:, :n, :n] - _shift_right(G[:, n:, n:])
-        S = -G[:-1, n:, :n]  # −Wr_kᵀ Wl_k couples kept 2i and 2i+2
-        g = g[0::2] - matvec(mT(Wl), z) - _shift_right(matvec(mT(Wr), z))
-        h = h[0::2]
-        levels.append(ReductionLevel(Lo, Wl, Wr))
-        zs.append((N, z))
-    root = chol(D[0])
-    ratio = jnp.minimum(ratio, _pivot_ratios(root, h[0]))
-    ok = ratio > (pivot_tolerance(dtype, n) if pivot_tol is None else pivot_tol)
-    factor = ReductionFactor(levels=tuple(levels), root=root, ok=ok, sizes=tuple(N for N, _ in zs))
-    x = _back_substitute(factor, [z for _, z in zs], g[0])
-    return jnp.where(ok, x, jnp.nan), factor
-
-
-def _back_substitute(factor: ReductionFactor, zs, g_root):
-    x = lsolve_vec(factor.root, lsolve_vec(factor.root, g_root), transpose=True)[None]
-    for level, N, z in zip(reversed(factor.levels), reversed(factor.sizes), reversed(zs)):
-        x_right = jnp.concatenate([x[1:], jnp.zeros_like(x[:1])], axis=0)
-        xo = lsolve_vec(level.L, z - matvec(level.Wl, x) - matvec(level.Wr, x_right), transpose=True)
-        x = jnp.stack([x, xo], axis=1).reshape((-1,) + x.shape[1:])[:N]
-    return x
+    factor = reduce(diag, sub, pivot_tol)
+    return solve(factor, rhs), factor
 
 
 def solve(factor: ReductionFactor, rhs):
-    """Solve H x = rhs with a stored cyclic-reduction factor: O(T n²) work, O(log T) depth."""
-    n = rhs.shape[-1]
-    g, zs = rhs, []
-    for level in factor.levels:
-        g = _pad_even(g, jnp.zeros((n,), g.dtype))
-        z = lsolve_vec(level.L, g[1::2])
-        g = g[0::2] - matvec(mT(level.Wl), z) - _shift_right(matvec(mT(level.Wr), z))
-        zs.append(z)
-    x = _back_substitute(factor, zs, g[0])
+    """Solve H x = rhs with a stored cyclic-reduction factor: O(T n²) work, O(log T) depth.
+
+    Per level (u = D_o⁻¹ g_o = L⁻ᵀL⁻¹ g_o on the eliminated blocks):
+        g'_i = g_{2i} − S_{2i}ᵀ u_i − S_{2i−1} u_{i−1},
+        x_{2i+1} = L⁻ᵀL⁻¹ (g_{2i+1} − S_{2i} x_{2i} − S_{2i+1}ᵀ x_{2i+2}),
+    the formulas of the module docstring with Wl, Wr written out.
+    """
+    g, odds = rhs, []
+    for level, N in zip(factor.levels, factor.sizes):
+        m = level.L.shape[0]
+        go = _pad_to(g[1::2], m)
+        u = lsolve_vec(level.L, lsolve_vec(level.L, go), transpose=True)
+        g = g[0::2] - _apply(level.S, 0, u, transpose=True) - _shift_right(_apply(level.S, 1, u, transpose=False))
+        odds.append(go)
+    x = lsolve_vec(factor.root, lsolve_vec(factor.root, g[0]), transpose=True)[None]
+    for level, N, go in zip(reversed(factor.levels), reversed(factor.sizes), reversed(odds)):
+        x_right = _pad_to(x[1:], x.shape[0])
+        r = go - _apply(level.S, 0, x, transpose=False) - _apply(level.S, 1, x_right, transpose=True)
+        xo = lsolve_vec(level.L, lsolve_vec(level.L, r), transpose=True)
+        x = _interleave(x, xo, N)
     return jnp.where(factor.ok, x, jnp.nan)
 
 
@@ -212,17 +242,18 @@ def band_inverse(factor: ReductionFactor):
         S_cc = _pad_to(Sd[1:], m)
         S_ca = _pad_to(Ss, m)
         Linv = lsolve(level.L, jnp.broadcast_to(jnp.eye(n, dtype=Sd.dtype), level.L.shape))
-        left = level.Wl @ S_aa + level.Wr @ S_ca  # F P[:, a]
-        right = level.Wl @ mT(S_ca) + level.Wr @ S_cc  # F P[:, c]
-        FPF = left @ mT(level.Wl) + right @ mT(level.Wr)
+        # F = [Wl, Wr], recomputed from the stored S (a padding block's rows are cut below).
+        Wl = lsolve(level.L, _couplings(level.S, 0, m))
+        Wr = lsolve(level.L, mT(_couplings(level.S, 1, m)))
+        left = Wl @ S_aa + Wr @ S_ca  # F P[:, a]
+        right = Wl @ mT(S_ca) + Wr @ S_cc  # F P[:, c]
+        FPF = left @ mT(Wl) + right @ mT(Wr)
         eye = jnp.eye(n, dtype=Sd.dtype)
         S_kk = mT(Linv) @ (eye + FPF) @ Linv
         S_kk = 0.5 * (S_kk + mT(S_kk))  # exact symmetry against rounding
         S_ka = -mT(Linv) @ left  # Σ_{k, k-1}: sub block at row k
         S_ck = -mT(right) @ Linv  # Σ_{k+1, k}: sub block at row k+1
-        diag = jnp.stack([S_aa, S_kk], axis=1).reshape((-1, n, n))[:N]
-        sub = jnp.stack([S_ka, S_ck], axis=1).reshape((-1, n, n))[: N - 1]
-        Sd, Ss = diag, sub
+        Sd, Ss = _interleave(S_aa, S_kk, N), _interleave(S_ka, S_ck, N - 1)
     nan_if_bad = jnp.where(factor.ok, 1.0, jnp.nan).astype(Sd.dtype)
     return Sd * nan_if_bad, Ss * nan_if_bad
 
