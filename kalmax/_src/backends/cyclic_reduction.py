@@ -21,14 +21,46 @@ Odd blocks k are eliminated; their neighbours k−1, k+1 are kept:
 
 D' is the Schur complement of the (block-diagonal) odd part, so this is an
 ordinary block Cholesky factorisation of H in odd–even order and inherits its
-stability for symmetric positive-definite H. The stored factor (L, Wl, Wr of
-every level) makes any further solve O(T n²) work at O(log T) depth; the
-backward pass of the smoothing primitive reuses it for the adjoint solve, and
-log|H| = 2 Σ log diag(L) over all levels.
+stability for symmetric positive-definite H. log|H| = 2 Σ log diag(L) over
+all levels.
 
-Memory: the levels hold T/2 + T/4 + … < T eliminated blocks, three n×n
-matrices each: about 3 n² numbers per time step (the sequential factor
-stores 2 n²).
+What is stored. Each level keeps L_k of its eliminated blocks and S, the
+sub-diagonal blocks of the level's own system — not Wl, Wr. Any further solve
+(the forward answer, refinement, the adjoint solve of the backward pass)
+applies them to vectors, with u_k = D_k⁻¹ g_k = L_k⁻ᵀ L_k⁻¹ g_k:
+
+    g'_i = g_{2i} − S_{2i}ᵀ u_{2i+1} − S_{2i−1} u_{2i−1},
+    x_k  = L_k⁻ᵀ L_k⁻¹ (g_k − S_{k−1} x_{k−1} − S_kᵀ x_{k+1})
+
+(Wlᵀz = S_{k−1}ᵀ L⁻ᵀ z and Wl x = L⁻¹ S_{k−1} x): two triangular solves per
+eliminated block and sweep instead of one, O(n²) each, against the O(n³)
+factorisation. The finest level's S is the model's own sub-diagonal, one
+shared (n, n) block when A and Q do not vary in time.
+
+Memory per time step, in units of n² numbers (800 B at n = 10, float64),
+XLA's temporary-buffer estimate per step of the value-and-gradient program
+(T = 4096; `benchmarks/parallel.py`, "Memory"):
+
+    before  stored L, Wl, Wr (3 per step, T/2 + T/4 + … eliminated blocks)
+            + at the first level: the shared S broadcast to T blocks (1),
+            [S_even, S_oddᵀ] concatenated (1), the substitution's two loop
+            carries for W (2), all four n×n blocks of [Wl Wr]ᵀ[Wl Wr] (2),
+            Wl and Wr sliced out of W (1), the Cholesky loop's two carries
+            (1), the assembled diagonal kept to the last level by the pivot
+            check (1): 8148 B/step forward, about 8900 value-and-gradient.
+    after   stored L (½ at the first level, ¼, …) and S (shared at the first
+            level; N_j blocks at level j ≥ 2, ½ + ¼ + …): 2 per step (3 with
+            a time-varying A or Q); the whitened couplings are transient
+            (½ each at the first level, one loop carry each: the
+            substitution and the Cholesky factorisation work in place,
+            ``linalg.py``); the next level's S is the product −Wrᵀ Wl itself
+            (Wr computed negated, exactly), with one unused last block rather
+            than a sliced copy; D' is one fused reduction rather than two
+            products and a difference; D is split into its kept and
+            eliminated halves at the start of a level. See
+            ``benchmarks/RESULTS.md`` for the measured figures.
+
+The sequential factor ("scan") also stores 2 n² per step (L and M).
 
 Selected inversion (the band of Σ = H⁻¹, for log-likelihood gradients and
 posterior covariances) runs the levels backwards: with Σ known on the kept
@@ -52,7 +84,7 @@ from typing import NamedTuple, Tuple
 import jax
 import jax.numpy as jnp
 
-from ..linalg import chol, cross, gram, lsolve, lsolve_vec, matvec, mT
+from ..linalg import chol, cross, lsolve, lsolve_vec, matvec, mT
 from ..tolerances import pivot_tolerance
 from .base import Backend, checked_solve
 
@@ -63,8 +95,10 @@ class ReductionLevel(NamedTuple):
     L: (m, n, n) Cholesky factors of the eliminated diagonal blocks (an
     identity for the padding block of an odd N);
     S: the sub-diagonal blocks S_j = H'_{j+1,j} of the level's own system:
-    (N − 1, n, n), or (n, n) at the finest level when the model's
-    sub-diagonal is time-invariant (one block shared by every step).
+    at the finest level the model's, (N − 1, n, n) or one shared (n, n)
+    block when time-invariant; at coarser levels (N, n, n), the last block
+    unused (it couples the last block to nothing; every reader stops before
+    it or multiplies it by zero).
     The whitened couplings Wl, Wr are not kept: the solves apply S and L⁻¹
     to vectors instead (module docstring, "Memory").
     """
@@ -112,7 +146,7 @@ def _interleave(kept, odd, N):
 
 
 def _couplings(S, parity, m):
-    """S_{2i+parity} for i < m, zero past the end: (m, n, n), or the shared (n, n) block."""
+    """S_{2i+parity} for i < m, zero past the end of S: (m, n, n), or the shared (n, n) block."""
     if S.ndim == 2:
         return S
     return _pad_to(S[parity::2], m)
@@ -151,26 +185,41 @@ def reduce(diag, sub, pivot_tol=None):
     n, dtype = diag.shape[-1], diag.dtype
     eye = jnp.eye(n, dtype=dtype)
     # Original diagonal entries of H per block (padding blocks: 1, identity).
-    h = jnp.diagonal(diag, axis1=-2, axis2=-1)
+    # Materialised here: fused into every level's pivot check it would keep all of diag alive to the end.
+    h = jax.lax.optimization_barrier(jnp.diagonal(diag, axis1=-2, axis2=-1))
     D, S = diag, sub
     levels, sizes = [], []
     ratio = jnp.asarray(jnp.inf, dtype)
     while D.shape[0] > 1:
         N = D.shape[0]
         m = (N + 1) // 2  # eliminated blocks (with a padding block when N is odd) = kept blocks
-        Lo = chol(_pad_to(D[1::2], m, eye))
+        # Split D into its own two halves now, so that the whole of D is not
+        # held until the kept half is consumed at the end of the level.
+        D_kept, D_odd = jax.lax.optimization_barrier((D[0::2], _pad_to(D[1::2], m, eye)))
+        Lo = chol(D_odd)
         ratio = jnp.minimum(ratio, _pivot_ratios(Lo, _pad_to(h[1::2], m, 1)))
-        # The whitened couplings are transient: Wl_k = L_k⁻¹ S_{k-1}, Wr_k = L_k⁻¹ S_kᵀ.
-        Wl = lsolve(Lo, _couplings(S, 0, m))
-        Wr = lsolve(Lo, mT(_couplings(S, 1, m)))
-        left = gram(Wl)
-        if N % 2 and S.ndim == 2:  # the padding block couples to nothing; a shared S does not know that
-            left = left * (jnp.arange(m) < m - 1).astype(dtype)[:, None, None]
         levels.append(ReductionLevel(Lo, S))
         sizes.append(N)
-        # Wr of the last eliminated block is zero or unused (no right neighbour).
-        S = -cross(Wr, Wl)[:-1]  # −Wr_kᵀ Wl_k couples kept 2i and 2i+2
-        D = D[0::2] - left - _shift_right(gram(Wr))
+        # The whitened couplings are transient: Wl_k = L_k⁻¹ S_{k-1} and
+        # Wr_k = L_k⁻¹ S_kᵀ, the latter computed negated (exactly: a
+        # substitution commutes with the sign) so that −Wr_kᵀ Wl_k, the next
+        # level's S, is a product's own output and not a copy of one.
+        Wl = lsolve(Lo, _couplings(S, 0, m))
+        neg_Wr = lsolve(Lo, -mT(_couplings(S, 1, m)))
+        # A padding block (odd N) couples to nothing: mask its term, since a
+        # shared S (or the unused last block of S, below) is not zero there.
+        # S'_i couples kept 2i and 2i+2 for i < m − 1; the last block
+        # (eliminated block without a right neighbour) is carried along
+        # unused: every reader stops before it, or multiplies it by zero.
+        S = cross(neg_Wr, Wl)
+        # D' = D_kept − Σ_r (Wl_r Wl_rᵀ + Wr_r Wr_rᵀ) over the rows r of the
+        # couplings (the next eliminated block's Wl, the previous one's Wr),
+        # as one reduction: two products and their difference would each be
+        # a stack of blocks in memory.
+        Wl_kept = Wl * (jnp.arange(m) < m - 1).astype(dtype)[:, None, None] if N % 2 else Wl
+        Wr_prev = _shift_right(neg_Wr)
+        D = D_kept - jnp.sum(Wl_kept[:, :, :, None] * Wl_kept[:, :, None, :]
+                             + Wr_prev[:, :, :, None] * Wr_prev[:, :, None, :], axis=1)
         h = h[0::2]
     root = chol(D[0])
     ratio = jnp.minimum(ratio, _pivot_ratios(root, h[0]))
