@@ -38,8 +38,8 @@ factorisation. The finest level's S is the model's own sub-diagonal, one
 shared (n, n) block when A and Q do not vary in time.
 
 Memory per time step, in units of n² numbers (800 B at n = 10, float64),
-XLA's temporary-buffer estimate per step of the value-and-gradient program
-(T = 4096; `benchmarks/parallel.py`, "Memory"):
+with XLA's temporary-buffer estimate per step of the compiled programs
+(`benchmarks/RESULTS.md`, "Memory of the parallel path"):
 
     before  stored L, Wl, Wr (3 per step, T/2 + T/4 + … eliminated blocks)
             + at the first level: the shared S broadcast to T blocks (1),
@@ -47,7 +47,8 @@ XLA's temporary-buffer estimate per step of the value-and-gradient program
             carries for W (2), all four n×n blocks of [Wl Wr]ᵀ[Wl Wr] (2),
             Wl and Wr sliced out of W (1), the Cholesky loop's two carries
             (1), the assembled diagonal kept to the last level by the pivot
-            check (1): 8148 B/step forward, about 8900 value-and-gradient.
+            check (1): 8148 B/step forward (T = 4096), 8897 value-and-gradient
+            (T = 65536).
     after   stored L (½ at the first level, ¼, …) and S (shared at the first
             level; N_j blocks at level j ≥ 2, ½ + ¼ + …): 2 per step (3 with
             a time-varying A or Q); the whitened couplings are transient
@@ -57,10 +58,17 @@ XLA's temporary-buffer estimate per step of the value-and-gradient program
             (Wr computed negated, exactly), with one unused last block rather
             than a sliced copy; D' is one fused reduction rather than two
             products and a difference; D is split into its kept and
-            eliminated halves at the start of a level. See
-            ``benchmarks/RESULTS.md`` for the measured figures.
+            eliminated halves at the start of a level: 3218 B/step forward,
+            3833 value-and-gradient (T = 4096; "scan": 4522 and 4914).
 
 The sequential factor ("scan") also stores 2 n² per step (L and M).
+Why not ``jax.checkpoint`` at level boundaries instead: the backward pass
+here is one solve with the stored factor (``primitive.py``), not autodiff
+through the levels, so there is no tape to checkpoint; what the program
+holds is the factor and the first level's transients, which only a smaller
+factor and in-place loops reduce. The price is the extra triangular solve
+per block and sweep in every solve (refinement and the adjoint solve
+included); see ``benchmarks/RESULTS.md`` for the measured time.
 
 Selected inversion (the band of Σ = H⁻¹, for log-likelihood gradients and
 posterior covariances) runs the levels backwards: with Σ known on the kept
