@@ -248,3 +248,28 @@ def test_recompute_keeps_no_per_step_matrices(rng):
     assert set(jax.tree_util.tree_leaves(factor.model)) == set(jax.tree_util.tree_leaves(jax.eval_shape(lambda m: m, model)))
     _, scan_factor = jax.eval_shape(lambda m, yy: blocktri.factor_solve(*assemble(m, yy, w)), model, jnp.asarray(y))
     assert scan_factor.L.shape == (T, N, N)  # what "scan" would keep instead
+
+
+def test_parallel_value_and_grad_needs_no_more_memory_than_scan():
+    # The parallel path's stored factor and level transients (module
+    # docstring of cyclic_reduction.py, "Memory per time step") against the
+    # sequential path, both measured here by XLA's own estimate of the
+    # compiled program's temporary buffers (an independent accounting of
+    # every buffer, not a number this package computes).
+    T, n = 2 ** 10, 8  # at n = 4 the per-step vectors dominate and the old layout passed too
+    rng = np.random.default_rng(5)
+    md = ref.random_model(rng, n, 2, T, time_varying=False, prior=True)
+    y, mask = ref.random_data(rng, md, T, missing=0.2)
+    model = to_model(md, np.float64)
+    y = jnp.asarray(np.where(mask, y, 0.0))
+    mask = jnp.asarray(mask)
+
+    def temp_bytes(method):
+        loss = lambda m, yy: jnp.sum(kx.smooth(m, yy, mask, method=method).states ** 2)  # noqa: E731
+        compiled = jax.jit(jax.value_and_grad(loss)).lower(model, y).compile()
+        analysis = compiled.memory_analysis()
+        if analysis is None:
+            pytest.skip("no memory analysis on this platform")
+        return analysis.temp_size_in_bytes
+
+    assert temp_bytes("parallel") <= temp_bytes("scan")

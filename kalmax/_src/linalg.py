@@ -188,22 +188,26 @@ def _chol_loop(S):
     # product. Each step is a few elementwise operations over the whole batch
     # (one loop body, so compile time does not grow with k), and reverse mode
     # keeps only the columns, because the update is linear in A.
+    # In place: the update leaves row and column j alone (c_j = 0), and no
+    # later step reads column j, so L's column j (zeros above the diagonal)
+    # overwrites it. One batch-sized loop carry instead of two: the batched
+    # factorisations of the parallel path are memory-bound at large T.
     k = S.shape[-1]
     A = 0.5 * (S + mT(S))
     rows = jnp.arange(k)
 
     def step(j, carry):
-        A, L, good = carry
+        A, good = carry
         a = _column(A, j)
         d = jnp.sqrt(jnp.take(a, j, axis=-1))
         good = good & (d > 0)  # NaN and non-positive pivots both fail
         c = jnp.where(rows > j, a / d[..., None], 0)
         A = A - c[..., :, None] * c[..., None, :]
-        L = lax.dynamic_update_index_in_dim(L, jnp.where(rows == j, d[..., None], c), j, axis=L.ndim - 1)
-        return A, L, good
+        A = lax.dynamic_update_index_in_dim(A, jnp.where(rows == j, d[..., None], c), j, axis=A.ndim - 1)
+        return A, good
 
     good = manual_axes.like(jnp.ones(S.shape[:-2], bool), A)  # typed like the data under shard_map
-    _, L, good = lax.fori_loop(0, k, step, (A, jnp.zeros_like(A), good))
+    L, good = lax.fori_loop(0, k, step, (A, good))
     return jnp.where(good[..., None, None], L, jnp.nan)
 
 
@@ -253,8 +257,9 @@ def _lsolve_loop(L, B, transpose):
     batch = jnp.broadcast_shapes(L.shape[:-2], B.shape[:-2])
     B = manual_axes.like(jnp.broadcast_to(B, batch + B.shape[-2:]), L)  # the carry is typed like L
 
-    def step(s, carry):
-        B, X = carry
+    # In place: the update leaves row i of B alone (col_i = 0) and no later
+    # step reads it, so x_i overwrites it; one batch-sized loop carry.
+    def step(s, B):
         i = k - 1 - s if transpose else s
         Lii = jnp.take(jnp.diagonal(L, axis1=-2, axis2=-1), i, axis=-1)
         x = _row(B, i) / Lii[..., None]
@@ -263,11 +268,9 @@ def _lsolve_loop(L, B, transpose):
         else:
             col = jnp.where(rows > i, _column(L, i), 0)
         B = B - col[..., :, None] * x[..., None, :]
-        X = lax.dynamic_update_index_in_dim(X, x, i, axis=X.ndim - 2)
-        return B, X
+        return lax.dynamic_update_index_in_dim(B, x, i, axis=B.ndim - 2)
 
-    _, X = lax.fori_loop(0, k, step, (B, jnp.zeros_like(B)))
-    return X
+    return lax.fori_loop(0, k, step, B)
 
 
 # --- LAPACK for blocks above WRITTEN_OUT_MAX (and on GPU/TPU) -----------------
