@@ -415,26 +415,11 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
 
   if (parts > T) parts = T;
   if (parts < 1) parts = 1;
-  const std::size_t acc_size = accumulator_size(n, p);
-  std::vector<std::unique_ptr<PatternCache<Real>>> caches(parts);
-  std::vector<std::vector<int>> idxs(parts);
-  std::vector<std::vector<double>> accs(parts);
+  PartScratch<Real> scratch(parts, accumulator_size(n, p), cache, idx, p);
   std::vector<std::unique_ptr<LoglikPart<Real, NK>>> part(parts);
   for (int k = 0; k < parts; ++k) {
-    const bool top = k == parts - 1;  // the calling thread's part uses the caller's scratch
-    PatternCache<Real>* c = cache;
-    int* ix = idx;
-    if (!top) {
-      if (cache != nullptr) {
-        caches[k] = cache->fresh();
-        c = caches[k].get();
-      }
-      idxs[k].resize(std::size_t(p) + 1);
-      ix = idxs[k].data();
-      accs[k].assign(acc_size, 0.0);
-    }
-    part[k].reset(new LoglikPart<Real, NK>(P, F, x, G, acc, top ? nullptr : accs[k].data(), raw, Qinv, ldQ,
-                                          ix, c));
+    const auto s = scratch.slot(k, /*beside=*/k != parts - 1);
+    part[k].reset(new LoglikPart<Real, NK>(P, F, x, G, acc, s.acc, raw, Qinv, ldQ, s.idx, s.cache));
   }
   // Part k covers steps [T k / parts, T (k+1) / parts).
   auto bound = [&](int k) { return int((int64_t(T) * k) / parts); };
@@ -469,9 +454,8 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
     }
     val += part[k]->value();
     n_obs += part[k]->observed();
-    if (k != parts - 1)
-      for (std::size_t i = 0; i < acc_size; ++i) acc[i] += accs[k][i];
   }
+  scratch.add_into(acc);
   const int n_flat = P.P0 != nullptr ? 0 : n;
   val -= 0.5 * double(n_obs - n_flat) * std::log(2.0 * M_PI);
   *value = static_cast<Real>(val);

@@ -826,6 +826,47 @@ void redirect_accumulators(Gradients<Real>& G, const double* acc_base, double* o
     if (g->present() && !g->tv) g->acc = own_acc + (g->acc - acc_base);
 }
 
+// The scratch of the parts of a split pass (loglik_one, gradients_one) that
+// run beside the calling thread: each its own pattern cache (lookups are not
+// safe to share), index scratch and accumulators of the time-invariant
+// gradient fields, which add_into() sums into the caller's at the end. The
+// part on the calling thread uses the caller's own.
+template <class Real>
+class PartScratch {
+ public:
+  struct Slot {
+    PatternCache<Real>* cache;
+    int* idx;
+    double* acc;  // nullptr: the caller's accumulators
+  };
+
+  PartScratch(int parts, std::size_t acc_size, PatternCache<Real>* cache, int* idx, int p)
+      : cache_(cache), idx_(idx), p_(p), acc_size_(acc_size), caches_(parts > 1 ? parts : 1),
+        idxs_(parts > 1 ? parts : 1), accs_(parts > 1 ? parts : 1) {}
+
+  Slot slot(int k, bool beside) {
+    if (!beside) return {cache_, idx_, nullptr};
+    if (cache_ != nullptr) caches_[k] = cache_->fresh();
+    idxs_[k].resize(std::size_t(p_) + 1);
+    accs_[k].assign(acc_size_, 0.0);
+    return {caches_[k].get(), idxs_[k].data(), accs_[k].data()};
+  }
+
+  void add_into(double* acc) const {
+    for (const auto& a : accs_)
+      for (std::size_t i = 0; i < a.size(); ++i) acc[i] += a[i];
+  }
+
+ private:
+  PatternCache<Real>* cache_;
+  int* idx_;
+  int p_;
+  std::size_t acc_size_;
+  std::vector<std::unique_ptr<PatternCache<Real>>> caches_;
+  std::vector<std::vector<int>> idxs_;
+  std::vector<std::vector<double>> accs_;
+};
+
 // The per-step terms of the implicit-function gradients over a range of
 // steps, given x and u = H⁻¹x̄ at every step: one per thread when a
 // trajectory's pass is split over time (see gradients_one). Its own scratch,
@@ -1113,34 +1154,17 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
   copy(u, xbar, Tn);
   forward_substitute<Real, NK>(F, u, T, n, tmp, tmp2);
   back_substitute<Real, NK>(F, u, T, n, tmp, tmp2);
-  const int slots = parts > 1 ? parts : 1;
-  const std::size_t acc_size = accumulator_size(n, p);
-  std::vector<std::unique_ptr<PatternCache<Real>>> caches(slots);
-  std::vector<std::vector<int>> idxs(slots);
-  std::vector<std::vector<double>> accs(slots);
+  PartScratch<Real> scratch(parts, accumulator_size(n, p), cache, idx, p);
   const bool ok_terms = visit_in_parts<GradientPart<Real, NK>>(T, parts, [&](int k, bool beside) {
-    PatternCache<Real>* c = cache;
-    int* ix = idx;
-    double* own_acc = nullptr;
-    if (beside) {
-      if (cache != nullptr) {
-        caches[k] = cache->fresh();
-        c = caches[k].get();
-      }
-      idxs[k].resize(std::size_t(p) + 1);
-      ix = idxs[k].data();
-      accs[k].assign(acc_size, 0.0);
-      own_acc = accs[k].data();
-    }
+    const auto s = scratch.slot(k, beside);
     return std::unique_ptr<GradientPart<Real, NK>>(
-        new GradientPart<Real, NK>(P, x, u, G, acc, own_acc, raw_sums, Qinv, ix, c));
+        new GradientPart<Real, NK>(P, x, u, G, acc, s.acc, raw_sums, Qinv, s.idx, s.cache));
   });
   if (!ok_terms) {
     sinks.fail();
     return;
   }
-  for (const auto& a : accs)
-    for (std::size_t i = 0; i < a.size(); ++i) acc[i] += a[i];
+  scratch.add_into(acc);
 
   if (raw_sums && T > 1) apply_qinv_to_sums(G, Qinv, n);
   sinks.finish(/*symmetrise_Q=*/true);
