@@ -35,7 +35,7 @@ CONVERGED_UPDATES = 2
 
 
 class _Converged:
-    """A ``kx.fit`` callback: True once the loss has stalled (see CONVERGED_RTOL)."""
+    """A ``kx.fit`` callback: the stop reason "converged" once the loss has stalled (see CONVERGED_RTOL)."""
 
     def __init__(self):
         self.previous, self.stalled = math.inf, 0
@@ -69,11 +69,8 @@ def fit_spec(spec: ModelSpec, series: Series, train_mask, *, objective: str = "l
         return FitOutcome(spec, [], 0, 0)
     loss, data = make_loss(spec, series, train_mask, objective, fixed=fixed, folds=folds, seed=seed,
                            block_length=block_length)
-    if optimizer == "lbfgs":
-        result = fit(loss, theta0, optax.lbfgs(), steps=steps, progress=progress, args=data,
-                     callback=_Converged())
-    else:
-        result = fit(loss, theta0, optax.adam(learning_rate), steps=steps, progress=progress, args=data)
+    opt, stop = (optax.lbfgs(), _Converged()) if optimizer == "lbfgs" else (optax.adam(learning_rate), None)
+    result = fit(loss, theta0, opt, steps=steps, progress=progress, args=data, callback=stop)
     first = float(result.history["loss"][0])
     if not math.isfinite(first):
         raise FitError(f"the {objective} loss of the starting model is not finite. Either some state cannot be "
