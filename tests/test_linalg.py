@@ -70,6 +70,37 @@ def test_values_against_numpy(rng, lapack_route):
     assert np.all(np.isnan(linalg.chol(jnp.asarray(-S[0, 0]))))
 
 
+@pytest.mark.parametrize("k", [1, 3, linalg.BATCH_STRAIGHT_MAX, linalg.BATCH_STRAIGHT_MAX + 1, 12])
+def test_written_out_routes_against_numpy(rng, k):
+    # Straight-line code for a batch of blocks up to BATCH_STRAIGHT_MAX, the
+    # column loop above it (both the default CPU route, no patching); values,
+    # and a derivative against central differences (common practice).
+    assert linalg._written_out(k)
+    S = _spd(rng, (2, 3), k)
+    B = rng.standard_normal((2, 3, k, 2))
+    L = np.linalg.cholesky(S)
+    got = jax.jit(linalg.chol)(jnp.asarray(S))
+    np.testing.assert_allclose(got, L, rtol=1e-12, atol=1e-12)
+    for tr in (False, True):
+        ref_x = np.linalg.solve(np.swapaxes(L, -1, -2) if tr else L, B)
+        np.testing.assert_allclose(jax.jit(lambda L, B: linalg.lsolve(L, B, transpose=tr))(got, jnp.asarray(B)),
+                                   ref_x, rtol=1e-11, atol=1e-12)
+    # One L against a batch of right-hand sides.
+    np.testing.assert_allclose(linalg.lsolve(got[0, 0], jnp.asarray(B)), np.linalg.solve(L[0, 0], B),
+                               rtol=1e-11, atol=1e-12)
+    bad = S.copy()
+    bad[1, 2] = -bad[1, 2]
+    Lb = np.asarray(linalg.chol(jnp.asarray(bad)))
+    assert np.all(np.isnan(Lb[1, 2])) and np.all(np.isfinite(Lb[0]))  # NaN only in the failed block
+    E = rng.standard_normal(S.shape)
+    E = jnp.asarray(E + np.swapaxes(E, -1, -2))
+    h = 1e-6
+    Sj, Bj = jnp.asarray(S), jnp.asarray(B)
+    gS = jax.grad(_loss)(Sj, Bj)
+    fd = (_loss(Sj + h * E, Bj) - _loss(Sj - h * E, Bj)) / (2 * h)
+    np.testing.assert_allclose(jnp.sum(gS * E), fd, rtol=1e-6)
+
+
 def test_block_above_written_out_size_against_numpy(rng):
     k = linalg.WRITTEN_OUT_MAX + 1  # the genuine LAPACK route, no patching
     S = _spd(rng, (3,), k)

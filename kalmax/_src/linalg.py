@@ -129,7 +129,7 @@ def _row(X, i):
 
 @jax.custom_jvp
 def _chol_columns(S):
-    if S.ndim == 2 and S.shape[-1] <= STRAIGHT_MAX:
+    if _straight(S.ndim, S.shape[-1]):
         return _chol_straight(S)
     return _chol_loop(S)
 
@@ -155,31 +155,46 @@ def _chol_columns_jvp(primals, tangents):
 STRAIGHT_MAX = 16
 
 
+# A batch of small blocks (the per-step whitening factors of T steps, and
+# their tangents under jax.hessian's batch of directions) is also straight-line
+# code up to this size: one fused elementwise program over the batch, where
+# the column loop would run k iterations, each re-reading and re-writing the
+# whole batch-sized carry (measured: the prediction-error Hessian at
+# T = 10⁴, n = 4 spent most of its time in such loops).
+BATCH_STRAIGHT_MAX = 8
+
+
+def _straight(ndim: int, k: int) -> bool:
+    return k <= (STRAIGHT_MAX if ndim == 2 else BATCH_STRAIGHT_MAX)
+
+
 def _chol_straight(S):
+    # Column j of L from column j of A minus the earlier columns' outer
+    # products (Golub & Van Loan Alg. 4.2.1, left-looking), over a batch.
     k = S.shape[-1]
-    A = 0.5 * (S + S.T)
+    A = 0.5 * (S + mT(S))
     cols = []
     rows = jnp.arange(k)
-    good = jnp.ones((), bool)
+    good = jnp.ones(S.shape[:-2], bool)
     for j in range(k):
-        v = A[:, j]
+        v = A[..., :, j]
         for m in range(j):
-            v = v - cols[m] * cols[m][j]
-        d = jnp.sqrt(v[j])
+            v = v - cols[m] * cols[m][..., j:j + 1]
+        d = jnp.sqrt(v[..., j])
         good = good & (d > 0)
-        cols.append(jnp.where(rows > j, v / d, jnp.where(rows == j, d, 0)))
-    return jnp.where(good, jnp.stack(cols, axis=1), jnp.nan)
+        cols.append(jnp.where(rows > j, v / d[..., None], jnp.where(rows == j, d[..., None], 0)))
+    return jnp.where(good[..., None, None], jnp.stack(cols, axis=-1), jnp.nan)
 
 
 def _lsolve_straight(L, B, transpose):
     k = L.shape[-1]
     X = [None] * k
     for i in (range(k - 1, -1, -1) if transpose else range(k)):
-        r = B[i]
+        r = B[..., i, :]
         for j in (range(i + 1, k) if transpose else range(i)):
-            r = r - (L[j, i] if transpose else L[i, j]) * X[j]
-        X[i] = r / L[i, i]
-    return jnp.stack(X)
+            r = r - (L[..., j, i] if transpose else L[..., i, j])[..., None] * X[j]
+        X[i] = r / L[..., i, i][..., None]
+    return jnp.stack(X, axis=-2)
 
 
 def _chol_loop(S):
@@ -233,7 +248,7 @@ def lsolve(L, B, *, transpose: bool = False):
 
 @partial(jax.custom_jvp, nondiff_argnums=(2,))
 def _lsolve_columns(L, B, transpose):
-    if B.ndim == 2 and L.shape[-1] <= STRAIGHT_MAX:
+    if _straight(max(L.ndim, B.ndim), L.shape[-1]):
         return _lsolve_straight(L, B, transpose)
     return _lsolve_loop(L, B, transpose)
 
