@@ -13,6 +13,11 @@ Two things are measured, for the test to compare:
    and the shapes of their results) and whether it gathers anything, for a
    vmapped smooth and for value-and-gradient of a pooled loss; and the values,
    next to the unsharded ones.
+
+Both also for the compiled kernel with a per-step diagonal Q and a diagonal R
+(``kx.DiagonalNoise``: variances and the r_diagonal / q_diagonal attributes
+pass through the vmap, shard_map and partitioning wrappers of
+``backends/kernel_calls.py``).
 """
 
 import json
@@ -39,15 +44,20 @@ from kalmax._src.backends import registry  # noqa: E402
 B, T = 8, 25
 
 
-def problem(dtype):
+def problem(dtype, diagonal=False):
     # An invented two-state model seen through two sensors, with a proper prior
-    # and about 20 % of the entries missing.
+    # and about 20 % of the entries missing. diagonal: Q per step and R as
+    # kx.DiagonalNoise variances.
     rng = np.random.default_rng(3)
     model = kx.StateSpace(A=jnp.array([[0.95, 0.1], [0.0, 0.9]], dtype), C=jnp.array([[1.0, 0.0], [0.5, 1.0]], dtype),
                           Q=jnp.diag(jnp.array([0.2, 0.05], dtype)), R=jnp.diag(jnp.array([0.4, 0.3], dtype)),
                           x0_mean=jnp.array([0.1, -0.2], dtype), x0_cov=jnp.eye(2, dtype=dtype))
     y = rng.standard_normal((B, T, 2)).astype(dtype)
     mask = rng.random((B, T, 2)) > 0.2
+    if diagonal:
+        q = np.array([0.2, 0.05]) * rng.uniform(0.5, 2.0, size=(T - 1, 2))
+        model = model.replace(Q=kx.DiagonalNoise(jnp.asarray(q, dtype)),
+                              R=kx.DiagonalNoise(jnp.array([0.4, 0.3], dtype)))
     return model, y, mask
 
 
@@ -72,9 +82,9 @@ def tolist(tree):
     return [np.asarray(a, np.float64).ravel().tolist() for a in jax.tree_util.tree_leaves(tree)]
 
 
-def under_shard_map(method, dtype, mesh):
+def under_shard_map(method, dtype, mesh, diagonal=False):
     # One compiled program each way (sharded, plain): compilation dominates the run time.
-    model, y, mask = problem(dtype)
+    model, y, mask = problem(dtype, diagonal)
     loss = pooled(method)
 
     def local(model, y, mask):  # per-device sums added over the mesh: the pooled loss
@@ -106,8 +116,8 @@ def custom_calls(hlo):
     return out
 
 
-def partitioned_kernel(mesh):
-    model, y, mask = problem(np.float64)
+def partitioned_kernel(mesh, diagonal=False):
+    model, y, mask = problem(np.float64, diagonal)
     ys, ms = kx.shard_batch((y, mask), mesh)
     smooth = jax.jit(jax.vmap(lambda yy, mm: kx.smooth(model, yy, mm, method="cpu").states))
     vg = jax.jit(jax.value_and_grad(lambda *a: pooled("cpu")(*a)[0], argnums=(0, 1)))
@@ -138,6 +148,8 @@ def main():
         out["shard_map"][case] = under_shard_map(method, np.dtype(dtype), mesh)
     if registry.is_available("cpu"):
         out["kernel"] = partitioned_kernel(mesh)
+        out["diagonal_noise"] = {"shard_map": under_shard_map("cpu", np.dtype("float64"), mesh, diagonal=True),
+                                 "kernel": partitioned_kernel(mesh, diagonal=True)}
     print(json.dumps(out))
 
 

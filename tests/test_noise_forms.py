@@ -13,8 +13,8 @@ time-invariant or per step), and T = p, so that a per-step diagonal (T, p)
 has the very shape of a dense (p, p): the wrapper, not the shape, says which.
 The compiled kernel (cheap to compile; separate code for per-step and
 memoised time-invariant R) runs every combination; the JAX backends share
-all of their noise-form code (``checks.canonicalize`` and
-``normal_equations.masked_measurement_cov``), so by default each runs one or
+all of their noise-form code (``checks.canonicalize``,
+``normal_equations.masked_measurement_cov`` and ``transition_cov``), so by default each runs one or
 two combinations, chosen so that every form meets a JAX backend; the
 others, and the vmap and means-gradient checks of the slower JAX backends,
 run with ``KALMAX_SLOW=1``.

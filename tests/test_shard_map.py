@@ -66,10 +66,13 @@ def test_shard_map_forward_and_gradient(run, key):
     _close(r["grads"], r["plain_grads"], tol)  # every model field, then y
 
 
-def test_sharded_batch_runs_the_kernel_per_shard(run):
+@pytest.mark.parametrize("form", ["dense", "diagonal"])
+def test_sharded_batch_runs_the_kernel_per_shard(run, form):
+    """The kernel on a sharded batch; "diagonal": per-step diagonal Q and
+    diagonal R given as variances (their attributes pass through the wrappers)."""
     if "kernel" not in run:
         pytest.skip("compiled kernel unavailable")
-    k = run["kernel"]
+    k = run["kernel"] if form == "dense" else run["diagonal_noise"]["kernel"]
     per_device = run["batch"] // run["devices"]
     for calls, gathers in ((k["smooth_calls"], k["smooth_gathers"]), (k["vg_calls"], k["vg_gathers"])):
         assert calls, "no kernel call in the compiled program"
@@ -84,3 +87,16 @@ def test_sharded_batch_runs_the_kernel_per_shard(run):
     _close(k["states"], k["plain_states"], TOL["float64"])
     assert k["value"] == pytest.approx(k["plain_value"], rel=TOL["float64"])
     _close(k["grads"], k["plain_grads"], TOL["float64"])
+
+
+def test_shard_map_with_diagonal_noise_on_the_kernel(run):
+    """shard_map of the kernel with a per-step diagonal Q and a diagonal R
+    (variances and the q_diagonal / r_diagonal attributes), against the same
+    without sharding."""
+    if "diagonal_noise" not in run:
+        pytest.skip("compiled kernel unavailable")
+    r = run["diagonal_noise"]["shard_map"]
+    tol = TOL["float64"]
+    _close(r["forward"], r["plain_forward"], tol)
+    assert r["value"] == pytest.approx(r["plain_value"], rel=tol)
+    _close(r["grads"], r["plain_grads"], tol)

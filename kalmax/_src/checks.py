@@ -149,16 +149,18 @@ def check_model(model: StateSpace, dims: Dims) -> None:
         )
 
 
-def canonicalize(model: StateSpace, y, mask, *, keep_diagonal_R: bool = False):
+def canonicalize(model: StateSpace, y, mask, *, keep_diagonal_R: bool = False, keep_diagonal_Q: bool = False):
     """Check shapes/dtypes; return (model, y, mask, dims, dtype) with arrays cast to one dtype.
 
     ``mask`` of None means "observed wherever y is not NaN".
 
-    Noise forms (``noise.py``): Q always comes back dense. R comes back dense
-    too, unless ``keep_diagonal_R``: then a diagonal or scalar R comes back as
-    a ``DiagonalNoise`` with variances (p,) or (T, p), which every backend
-    accepts (the compiled kernel keeps it diagonal). Only entry points whose
-    whole path handles that form pass it.
+    Noise forms (``noise.py``): Q and R come back dense, unless
+    ``keep_diagonal_R`` / ``keep_diagonal_Q``: then a diagonal or scalar R
+    (Q) comes back as a ``DiagonalNoise`` with variances (p,) or (T, p)
+    ((n,) or (T-1, n)), which every backend accepts (the compiled kernel
+    keeps it diagonal; the JAX code reads it through
+    ``normal_equations.masked_measurement_cov`` / ``transition_cov``). Only
+    entry points whose whole path handles that form pass them.
     """
     dims = dims_of(model, y)
     _require_float("y", y)
@@ -193,8 +195,8 @@ def canonicalize(model: StateSpace, y, mask, *, keep_diagonal_R: bool = False):
     leaves = jax.tree_util.tree_leaves(model)
     dtype = jnp.result_type(*leaves, y)
     model = jax.tree_util.tree_map(lambda x: _materialised(jnp.asarray(x, dtype)), model)
-    R = as_diagonal(model.R, dims.p)
-    model = model.replace(Q=dense(model.Q, dims.n), R=R if keep_diagonal_R else dense(R, dims.p))
+    R, Q = as_diagonal(model.R, dims.p), as_diagonal(model.Q, dims.n)
+    model = model.replace(Q=Q if keep_diagonal_Q else dense(Q, dims.n), R=R if keep_diagonal_R else dense(R, dims.p))
     return model, _materialised(y.astype(dtype)), _materialised(mask), dims, dtype
 
 

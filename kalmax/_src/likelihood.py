@@ -48,7 +48,7 @@ from . import manual_axes
 from .checks import canonicalize
 from .linalg import chol
 from .model import StateSpace
-from .normal_equations import assemble, masked_measurement_cov, objective
+from .normal_equations import assemble, masked_measurement_cov, objective, transition_cov
 from .primitive import band_inverse, get_backend, resolve_method
 
 
@@ -63,8 +63,9 @@ def _explicit_terms(model: StateSpace, y, w, x):
     val = -objective(model, y, w, x)
     val = val - 0.5 * _logdet_spd(masked_measurement_cov(model.R, w))
     if T > 1:
-        ld_q = _logdet_spd(model.Q)
-        val = val - 0.5 * (ld_q * (T - 1) if model.Q.ndim == 2 else ld_q)
+        Q = transition_cov(model)
+        ld_q = _logdet_spd(Q)
+        val = val - 0.5 * (ld_q * (T - 1) if Q.ndim == 2 else ld_q)
     n_flat = 0
     if model.x0_cov is not None:
         val = val - 0.5 * _logdet_spd(model.x0_cov)
@@ -167,7 +168,7 @@ def log_likelihood(model: StateSpace, y, mask=None, *, method: str = "auto"):
         >>> y = jnp.array([[0.5], [1.0], [0.7]])
         >>> g = jax.grad(lambda m: kx.log_likelihood(m, y))(m)
     """
-    model, y, mask, _, dtype = canonicalize(model, y, mask, keep_diagonal_R=True)
+    model, y, mask, _, dtype = canonicalize(model, y, mask, keep_diagonal_R=True, keep_diagonal_Q=True)
     return _log_likelihood_checked(model, y, mask, resolve_method(method))
 
 

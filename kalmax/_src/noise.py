@@ -26,9 +26,12 @@ How each backend uses them (``checks.canonicalize`` decides):
   the JAX backends expand it to diag(w∘r + 1 − w) where they mask R
   (``normal_equations.masked_measurement_cov``), an O(T p²) array, the size a
   dense per-step R would have had anyway;
-* Q is expanded to dense at the boundary on every backend, the compiled
-  kernel included (its transition blocks are O(n³) per step whatever Q's
-  form);
+* Q stays diagonal on the same entry points: the compiled kernel keeps it
+  diagonal (``cpu/smoother.h``: Lq = diag(√q), Q⁻¹ = diag(1/q) and
+  log|Q| = Σ log q, so a per-step Q costs no Cholesky factorisation per
+  step, and the kernel returns Q̄_ii, the gradient w.r.t. the variances);
+  the JAX backends expand it to dense where they read it
+  (``normal_equations.transition_cov``);
 * every other entry point (filtering, EM, sampling, forecasting, validation)
   expands both to dense, so it sees the ordinary model.
 

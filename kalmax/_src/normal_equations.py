@@ -36,7 +36,7 @@ import jax.numpy as jnp
 
 from .linalg import chol, cross, gram, lsolve, lsolve_vec, matvec
 from .model import StateSpace
-from .noise import DiagonalNoise
+from .noise import DiagonalNoise, dense
 
 
 class BlockSystem(NamedTuple):
@@ -61,6 +61,17 @@ def masked_measurement_cov(R, w):
         return (w * R.variances + (1 - w))[:, :, None] * jnp.eye(w.shape[-1], dtype=w.dtype)
     ww = w[:, :, None] * w[:, None, :]
     return ww * R + (1 - w)[:, :, None] * jnp.eye(w.shape[-1], dtype=w.dtype)
+
+
+def transition_cov(model: StateSpace):
+    """Q_t as dense blocks, (n, n) or (T-1, n, n).
+
+    Q may also be a ``DiagonalNoise`` (variances (n,) or (T-1, n),
+    ``noise.py``), which the compiled kernel keeps diagonal; the JAX code
+    expands it here, the one place that reads Q, so its gradient (by
+    autodiff through the expansion) is the diagonal of the dense one.
+    """
+    return dense(model.Q, model.A.shape[-1])
 
 
 def observed_residual(model: StateSpace, y, w, x):
@@ -99,7 +110,7 @@ def assemble(model: StateSpace, y, w) -> BlockSystem:
     rhs = jnp.einsum("tpi,tp->ti", WC, Wy)  # C_tᵀ S_t (y_t − d_t)
 
     # Transition blocks, whitened by the Cholesky factor of Q_t.
-    Lq = chol(model.Q)
+    Lq = chol(transition_cov(model))
     Wi = lsolve(Lq, jnp.eye(n, dtype=dtype))  # Lq⁻¹: Q⁻¹ = Wiᵀ Wi
     WA = lsolve(Lq, model.A)  # Lq⁻¹ A
     diag = diag.at[:-1].add(gram(WA))  # A_tᵀ Q_t⁻¹ A_t
@@ -124,7 +135,7 @@ def objective(model: StateSpace, y, w, x):
     val = 0.5 * jnp.sum(lsolve_vec(Lr, e) ** 2)
     if x.shape[0] > 1:
         r = transition_residual(model, x)
-        val = val + 0.5 * jnp.sum(lsolve_vec(chol(model.Q), r) ** 2)
+        val = val + 0.5 * jnp.sum(lsolve_vec(chol(transition_cov(model)), r) ** 2)
     if model.x0_cov is not None:
         d0 = x[0] - (0 if model.x0_mean is None else model.x0_mean)
         val = val + 0.5 * jnp.sum(lsolve_vec(chol(model.x0_cov), d0) ** 2)
@@ -176,7 +187,7 @@ def weighted_residuals(model: StateSpace, y, w, x):
     Se = w * lsolve_vec(Lr, lsolve_vec(Lr, e), transpose=True)
     Qr = None
     if x.shape[0] > 1:
-        Lq = chol(model.Q)
+        Lq = chol(transition_cov(model))
         Qr = lsolve_vec(Lq, lsolve_vec(Lq, transition_residual(model, x)), transpose=True)
     P0d = None
     if model.x0_cov is not None:

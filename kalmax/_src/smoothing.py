@@ -85,7 +85,7 @@ def smooth(model: StateSpace, y, mask=None, *, covariances: bool = False, method
         >>> kx.smooth(model, y).measurements.shape
         (3, 1)
     """
-    model, y, mask, _, dtype = canonicalize(model, y, mask, keep_diagonal_R=True)
+    model, y, mask, _, dtype = canonicalize(model, y, mask, keep_diagonal_R=True, keep_diagonal_Q=True)
     return _smooth_checked(model, y, mask, covariances=covariances, method=method)
 
 
@@ -164,7 +164,7 @@ def holdout_sums(model: StateSpace, y, mask, holdout, *, method: str = "auto"):
     Use these to average over many trajectories (vmap, then sum each part)
     so that every held-out entry counts once, whatever the trajectory length.
     """
-    model, y, mask, _, dtype = canonicalize(model, y, mask, keep_diagonal_R=True)
+    model, y, mask, _, dtype = canonicalize(model, y, mask, keep_diagonal_R=True, keep_diagonal_Q=True)
     holdout = jnp.asarray(holdout)
     if holdout.dtype != jnp.bool_:
         raise TypeError(f"holdout must be a boolean array (True = held out); got dtype {holdout.dtype}.")

@@ -101,7 +101,7 @@ from jax import lax
 from .. import manual_axes
 from ..linalg import chol, lsolve, lsolve_vec, mT
 from ..model import StateSpace
-from ..normal_equations import masked_measurement_cov
+from ..normal_equations import masked_measurement_cov, transition_cov
 from .base import Backend
 
 
@@ -132,7 +132,8 @@ def transition_inputs(model: StateSpace, T: int, dtype):
     n = model.A.shape[-1]
     eye = jnp.eye(n, dtype=dtype)
     A = jnp.concatenate([eye[None], jnp.broadcast_to(model.A, (T - 1, n, n))], axis=0)
-    Q = jnp.concatenate([jnp.zeros((1, n, n), dtype), jnp.broadcast_to(sym(model.Q), (T - 1, n, n))], axis=0)
+    Q = jnp.concatenate([jnp.zeros((1, n, n), dtype), jnp.broadcast_to(sym(transition_cov(model)), (T - 1, n, n))],
+                        axis=0)
     b = jnp.zeros((T, n), dtype)
     if model.b is not None:
         b = b.at[1:].set(jnp.broadcast_to(model.b, (T - 1, n)))

@@ -78,7 +78,10 @@ optional fields are passed as zero-size arrays. A diagonal R
 (``noise.DiagonalNoise``) is passed as its variances, (p,) or (T, p), with
 the attribute ``r_diagonal=1`` (the rank cannot say it: (T, p) and (p, p)
 coincide when T = p); the kernel keeps it diagonal and returns its gradient
-as variances too. Q reaches the kernel dense (``checks.canonicalize``). Every
+as variances too. A diagonal Q the same way: its variances (n,) or (T-1, n)
+with ``q_diagonal=1``; the kernel uses Q⁻¹ = diag(1/q) and log|Q| = Σ log q
+(no Cholesky factorisation per step of a time-varying Q) and returns Q̄ as
+the gradient w.r.t. the variances, the diagonal of the dense Q̄. Every
 call goes through ``kernel_calls.call``: under ``jax.vmap`` the kernel
 receives the batched operands with a leading batch axis (size 1 where not
 batched) and loops over the batch itself, so ``vmap``, ``grad`` and ``vmap``
@@ -175,10 +178,10 @@ def _operands(model: StateSpace, y, w):
 
     return (
         model.A,
-        model.Q,
+        _noise_operand(model.Q),
         opt(model.b),
         model.C,
-        _r_operand(model.R),
+        _noise_operand(model.R),
         opt(model.d),
         opt(model.x0_mean),
         opt(model.x0_cov),
@@ -187,19 +190,26 @@ def _operands(model: StateSpace, y, w):
     )
 
 
-def _r_operand(R):
-    """R as the kernel reads it: the variances of a DiagonalNoise, else the dense blocks."""
-    return R.variances if isinstance(R, DiagonalNoise) else R
+def _noise_operand(cov):
+    """Q or R as the kernel reads it: the variances of a DiagonalNoise, else the dense blocks."""
+    return cov.variances if isinstance(cov, DiagonalNoise) else cov
 
 
-def _r_attribute(model: StateSpace) -> dict:
-    """The kernel's r_diagonal attribute: 1 when R comes as variances (p,) or (T, p)."""
-    return dict(r_diagonal=np.int32(isinstance(model.R, DiagonalNoise)))
+def _noise_attributes(model: StateSpace) -> dict:
+    """The kernel's r_diagonal and q_diagonal attributes: 1 where R or Q comes as variances."""
+    return dict(r_diagonal=np.int32(isinstance(model.R, DiagonalNoise)),
+                q_diagonal=np.int32(isinstance(model.Q, DiagonalNoise)))
 
 
-def _as_model_form(model: StateSpace, gR):
-    """The kernel's R gradient in the form of model.R (a DiagonalNoise of variances' gradients)."""
-    return DiagonalNoise(gR) if isinstance(model.R, DiagonalNoise) else gR
+def _as_model_form(cov, g):
+    """A kernel gradient of Q or R in the form of ``cov`` (a DiagonalNoise of the variances' gradients)."""
+    return DiagonalNoise(g) if isinstance(cov, DiagonalNoise) else g
+
+
+def _transition_is_invariant(model: StateSpace) -> bool:
+    """A and Q time-invariant: the factor is then stored compactly (no M blocks)."""
+    q = _noise_operand(model.Q)
+    return model.A.ndim == 2 and q.ndim == (1 if isinstance(model.Q, DiagonalNoise) else 2)
 
 
 def _sds(shape, dtype):
@@ -260,7 +270,7 @@ def _kernel_forward(model: StateSpace, y, w):
     T, _ = y.shape
     n = model.A.shape[-1]
     dt = y.dtype
-    compact = model.A.ndim == 2 and model.Q.ndim == 2
+    compact = _transition_is_invariant(model)
     m_blocks = 0 if compact else T - 1
     out = (
         _sds((T, n), dt),
@@ -271,7 +281,7 @@ def _kernel_forward(model: StateSpace, y, w):
     ) + tuple(_sds(s, dt) for s in _lo_shapes(T, n, m_blocks, dt))
     x, Linv, M, subT, ok, Linv_lo, M_lo, subT_lo, x_lo = _call(
         "kalmax_cpu_forward", out, *_operands(model, y, w),
-        **settings_attributes(dt, n, flat_prior=model.x0_cov is None), **_r_attribute(model))
+        **settings_attributes(dt, n, flat_prior=model.x0_cov is None), **_noise_attributes(model))
     return x, CpuFactor(Linv=Linv, M=M, subT=subT, ok=ok != 0, Linv_lo=Linv_lo, M_lo=M_lo, subT_lo=subT_lo,
                         x_lo=x_lo)
 
@@ -325,7 +335,7 @@ def _kernel_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
     out = tuple(_sds(o.shape, o.dtype) for o in ops[:9])
     gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = _call(
         "kalmax_cpu_gradients", out, *_factor_operands(factor), x, factor.x_lo, x_bar.astype(x.dtype), *ops,
-        **_r_attribute(model)
+        **_noise_attributes(model)
     )
 
     def keep(g, field):
@@ -334,8 +344,8 @@ def _kernel_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
     model_bar = StateSpace(
         A=gA,
         C=gC,
-        Q=gQ,
-        R=_as_model_form(model, gR),
+        Q=_as_model_form(model.Q, gQ),
+        R=_as_model_form(model.R, gR),
         b=keep(gb, "b"),
         d=keep(gd, "d"),
         x0_mean=keep(gm0, "x0_mean"),
@@ -348,13 +358,14 @@ def _kernel_log_likelihood(model: StateSpace, y, w, x, factor: CpuFactor):
     ops = _operands(model, y, w)
     out = (_sds((), y.dtype),) + tuple(_sds(o.shape, o.dtype) for o in ops[:9])
     val, gA, gQ, gb, gC, gR, gd, gm0, gP0, gy = _call(
-        "kalmax_cpu_loglik", out, *_factor_operands(factor), x, factor.x_lo, *ops, **_r_attribute(model)
+        "kalmax_cpu_loglik", out, *_factor_operands(factor), x, factor.x_lo, *ops, **_noise_attributes(model)
     )
 
     def keep(g, field):
         return None if getattr(model, field) is None else g
 
-    model_bar = StateSpace(A=gA, C=gC, Q=gQ, R=_as_model_form(model, gR), b=keep(gb, "b"), d=keep(gd, "d"),
+    model_bar = StateSpace(A=gA, C=gC, Q=_as_model_form(model.Q, gQ), R=_as_model_form(model.R, gR),
+                           b=keep(gb, "b"), d=keep(gd, "d"),
                            x0_mean=keep(gm0, "x0_mean"), x0_cov=keep(gP0, "x0_cov"))
     return val, model_bar, gy
 
@@ -370,7 +381,7 @@ def _kernel_log_likelihood(model: StateSpace, y, w, x, factor: CpuFactor):
 def _jax_forward(model: StateSpace, y, w):
     x, bf, system = checked_solve(model, y, w, blocktri.factor_solve, blocktri.solve)
     n = model.A.shape[-1]
-    if model.A.ndim == 2 and model.Q.ndim == 2:
+    if _transition_is_invariant(model):
         M, subT = jnp.zeros((0, n, n), y.dtype), mT(system.sub)
     else:
         M, subT = bf.M, jnp.zeros((n, n), y.dtype)

@@ -33,6 +33,9 @@
 // forward, gradient and log-likelihood calls: its p variances per block,
 // (p,) or (T, p), for a diagonal R (and R̄ then has that shape too). An
 // attribute, not the rank, because (T, p) and (p, p) look alike when T = p.
+// Q likewise, with the attribute q_diagonal: its n variances per block, (n,)
+// or (T-1, n), and Q̄ in that shape ((T-1, n) and (n, n) coincide when
+// T-1 = n).
 //
 // float32 calls compute in double (widen.h): the operands are converted on
 // entry, every result is rounded to float32 once at the end, and the factor
@@ -171,12 +174,19 @@ struct ModelOperands {
   Operand A, Q, b, C, R, d, m0, P0, y, w;
   Kind kA, kQ, kb, kC, kR, kd, km0, kP0;
   bool R_diag = false;  // R given by its variances: (p,) or (T, p)
+  bool Q_diag = false;  // Q given by its variances: (n,) or (T-1, n)
   int T = 0, n = 0, p = 0;
 };
 
-// r_diagonal: the r_diagonal attribute of the call (R as variances, (p,) or
-// (T, p)); the rank alone cannot tell (T, p) from (p, p) when T = p.
-ffi::Error describe_model(const ffi::AnyBuffer* in, const BatchShape& bs, int T, int n, int32_t r_diagonal,
+// The noise forms of a call, from its attributes r_diagonal (R as variances,
+// (p,) or (T, p)) and q_diagonal (Q as variances, (n,) or (T-1, n)): the rank
+// alone cannot tell (T, p) from (p, p) when T = p, nor (T-1, n) from (n, n).
+struct NoiseForms {
+  int32_t r_diagonal = 0;
+  int32_t q_diagonal = 0;
+};
+
+ffi::Error describe_model(const ffi::AnyBuffer* in, const BatchShape& bs, int T, int n, NoiseForms forms,
                           ModelOperands* mo) {
   const char* names[] = {"A", "Q", "b", "C", "R", "d", "x0_mean", "x0_cov", "y", "w"};
   Operand* ops[] = {&mo->A, &mo->Q, &mo->b, &mo->C, &mo->R, &mo->d, &mo->m0, &mo->P0, &mo->y, &mo->w};
@@ -191,10 +201,14 @@ ffi::Error describe_model(const ffi::AnyBuffer* in, const BatchShape& bs, int T,
   if (mo->w.core != mo->y.core) return invalid("w must have the shape of y");
   const int64_t N = n, P = p, T1 = T - 1;
   KALMAX_RETURN_IF_ERROR(classify(mo->A, "A", {N, N}, {T1, N, N}, false, &mo->kA));
-  KALMAX_RETURN_IF_ERROR(classify(mo->Q, "Q", {N, N}, {T1, N, N}, false, &mo->kQ));
+  mo->Q_diag = forms.q_diagonal != 0;
+  if (mo->Q_diag)
+    KALMAX_RETURN_IF_ERROR(classify(mo->Q, "Q (diagonal)", {N}, {T1, N}, false, &mo->kQ));
+  else
+    KALMAX_RETURN_IF_ERROR(classify(mo->Q, "Q", {N, N}, {T1, N, N}, false, &mo->kQ));
   KALMAX_RETURN_IF_ERROR(classify(mo->b, "b", {N}, {T1, N}, true, &mo->kb));
   KALMAX_RETURN_IF_ERROR(classify(mo->C, "C", {P, N}, {T, P, N}, false, &mo->kC));
-  mo->R_diag = r_diagonal != 0;
+  mo->R_diag = forms.r_diagonal != 0;
   if (mo->R_diag)
     KALMAX_RETURN_IF_ERROR(classify(mo->R, "R (diagonal)", {P}, {T, P}, false, &mo->kR));
   else
@@ -238,6 +252,7 @@ Trajectory<Real> trajectory(const ModelOperands& mo, const BatchShape& bs, int64
   P.C_tv = mo.kC == Kind::kVarying;
   P.R_tv = mo.kR == Kind::kVarying;
   P.R_diag = mo.R_diag;
+  P.Q_diag = mo.Q_diag;
   P.d_tv = mo.kd == Kind::kVarying;
   return P;
 }
@@ -388,7 +403,7 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
                        ffi::Result<ffi::AnyBuffer> Linv_lo, ffi::Result<ffi::AnyBuffer> M_lo,
                        ffi::Result<ffi::AnyBuffer> subT_lo, ffi::Result<ffi::AnyBuffer> x_lo,
                        double pivot_tolerance, double trusted_error, int32_t max_refine_steps,
-                       double stall_ratio, int32_t r_diagonal) {
+                       double stall_ratio, int32_t r_diagonal, int32_t q_diagonal) {
   const SolveSettings settings{pivot_tolerance, trusted_error, max_refine_steps, stall_ratio};
   if (!(pivot_tolerance >= 0) || !(trusted_error >= 0) || max_refine_steps < 1 || !(stall_ratio > 0))
     return invalid("invalid solve settings");
@@ -399,7 +414,7 @@ ffi::Error ForwardImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi
   const int n = static_cast<int>(xd[xd.size() - 1]);
   const ffi::AnyBuffer in[] = {A, Q, b, C, R, d, m0, P0, y, w};
   ModelOperands mo;
-  KALMAX_RETURN_IF_ERROR(describe_model(in, bs, T, n, r_diagonal, &mo));
+  KALMAX_RETURN_IF_ERROR(describe_model(in, bs, T, n, NoiseForms{r_diagonal, q_diagonal}, &mo));
   if (x->element_type() != y.element_type() || Linv->element_type() != y.element_type() ||
       M->element_type() != y.element_type() || subT->element_type() != y.element_type())
     return invalid("outputs must have the dtype of y");
@@ -642,7 +657,7 @@ struct GradientOperands {
 ffi::Error describe_gradient_operands(ffi::AnyBuffer::Dimensions out_dims, const ffi::AnyBuffer& x,
                                       const ffi::AnyBuffer& x_lo, const ffi::AnyBuffer* xbar,
                                       const FactorBuffers& factor, const ffi::AnyBuffer (&model)[10],
-                                      int32_t r_diagonal, GradientOperands* go) {
+                                      NoiseForms forms, GradientOperands* go) {
   KALMAX_RETURN_IF_ERROR(batch_from_output(out_dims, 2, &go->bs));
   KALMAX_RETURN_IF_ERROR(describe(x, "x", go->bs, &go->x));
   if (xbar != nullptr) {
@@ -656,7 +671,7 @@ ffi::Error describe_gradient_operands(ffi::AnyBuffer::Dimensions out_dims, const
   go->T = static_cast<int>(go->x.core[0]);
   go->n = static_cast<int>(go->x.core[1]);
   KALMAX_RETURN_IF_ERROR(describe_factor(factor, go->bs, go->T, go->n, dt, &go->fo));
-  KALMAX_RETURN_IF_ERROR(describe_model(model, go->bs, go->T, go->n, r_diagonal, &go->mo));
+  KALMAX_RETURN_IF_ERROR(describe_model(model, go->bs, go->T, go->n, forms, &go->mo));
   if (go->fo.compact != (go->mo.kA == Kind::kInvariant && go->mo.kQ == Kind::kInvariant) && go->T > 1)
     return invalid("factor form does not match the model");
   return ffi::Error::Success();
@@ -695,8 +710,10 @@ class GradientOutputs {
   GradientOutputs(GradientResults outs, const ModelOperands& mo, int n)
       : kinds_{mo.kA, mo.kQ, mo.kb, mo.kC, mo.kR, mo.kd, mo.km0, mo.kP0} {
     const std::size_t p = mo.p, nn = n;
-    const std::size_t items[] = {nn * nn, nn * nn, nn, p * nn, mo.R_diag ? p : p * p, p, nn, nn * nn};
+    const std::size_t items[] = {nn * nn, mo.Q_diag ? nn : nn * nn, nn, p * nn, mo.R_diag ? p : p * p, p, nn,
+                                 nn * nn};
     r_diag_ = mo.R_diag;
+    q_diag_ = mo.Q_diag;
     std::copy(items, items + kFields, items_);
     const auto ins = gradient_shapes(mo);
     for (int f = 0; f < kModelGradients; ++f) {
@@ -717,6 +734,7 @@ class GradientOutputs {
       sinks[f]->item = items_[f];
     }
     G.R.diagonal = r_diag_;
+    G.Q.diagonal = q_diag_;
     G.y = double_out(dst_[kFields], buf_[kFields], sizes_[kFields]);
     return G;
   }
@@ -733,6 +751,7 @@ class GradientOutputs {
   static constexpr int kFields = kModelGradients - 1;  // the model's; ȳ last
   Kind kinds_[kFields];
   bool r_diag_ = false;
+  bool q_diag_ = false;
   std::size_t items_[kFields];
   Real* base_[kModelGradients];
   int64_t sizes_[kModelGradients];
@@ -750,11 +769,12 @@ ffi::Error GradientsImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer s
                          ffi::Result<ffi::AnyBuffer> gb, ffi::Result<ffi::AnyBuffer> gC,
                          ffi::Result<ffi::AnyBuffer> gR, ffi::Result<ffi::AnyBuffer> gd,
                          ffi::Result<ffi::AnyBuffer> gm0, ffi::Result<ffi::AnyBuffer> gP0,
-                         ffi::Result<ffi::AnyBuffer> gy, int32_t r_diagonal) {
+                         ffi::Result<ffi::AnyBuffer> gy, int32_t r_diagonal, int32_t q_diagonal) {
   const ffi::AnyBuffer model[] = {A, Q, b, C, R, d, m0, P0, y, w};
   GradientOperands go;
   KALMAX_RETURN_IF_ERROR(describe_gradient_operands(gy->dimensions(), x, x_lo, &xbar,
-                                                    {Linv, M, subT, ok, Linv_lo, M_lo, subT_lo}, model, r_diagonal, &go));
+                                                    {Linv, M, subT, ok, Linv_lo, M_lo, subT_lo}, model,
+                                                    NoiseForms{r_diagonal, q_diagonal}, &go));
   if (x.element_type() != y.element_type() || xbar.element_type() != y.element_type())
     return invalid("operands must share one dtype");
   ffi::Result<ffi::AnyBuffer>* const outs[] = {&gA, &gQ, &gb, &gC, &gR, &gd, &gm0, &gP0, &gy};
@@ -847,11 +867,13 @@ ffi::Error LoglikImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer subT
                       ffi::Result<ffi::AnyBuffer> gQ, ffi::Result<ffi::AnyBuffer> gb,
                       ffi::Result<ffi::AnyBuffer> gC, ffi::Result<ffi::AnyBuffer> gR,
                       ffi::Result<ffi::AnyBuffer> gd, ffi::Result<ffi::AnyBuffer> gm0,
-                      ffi::Result<ffi::AnyBuffer> gP0, ffi::Result<ffi::AnyBuffer> gy, int32_t r_diagonal) {
+                      ffi::Result<ffi::AnyBuffer> gP0, ffi::Result<ffi::AnyBuffer> gy, int32_t r_diagonal,
+                      int32_t q_diagonal) {
   const ffi::AnyBuffer model[] = {A, Q, b, C, R, d, m0, P0, y, w};
   GradientOperands go;
   KALMAX_RETURN_IF_ERROR(describe_gradient_operands(gy->dimensions(), x, x_lo, nullptr,
-                                                    {Linv, M, subT, ok, Linv_lo, M_lo, subT_lo}, model, r_diagonal, &go));
+                                                    {Linv, M, subT, ok, Linv_lo, M_lo, subT_lo}, model,
+                                                    NoiseForms{r_diagonal, q_diagonal}, &go));
   if (x.element_type() != y.element_type() || value->element_type() != y.element_type() ||
       static_cast<int64_t>(value->element_count()) != go.bs.count)
     return invalid("value must be one scalar of y's dtype per trajectory");
@@ -957,7 +979,9 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuForward, kc::ForwardImpl,
                                   .Attr<int32_t>("max_refine_steps")
                                   .Attr<double>("stall_ratio")
                                   // R given by its variances ((p,) or (T, p)): set from the model's form.
-                                  .Attr<int32_t>("r_diagonal"));
+                                  .Attr<int32_t>("r_diagonal")
+                                  // Q given by its variances ((n,) or (T-1, n)): likewise.
+                                  .Attr<int32_t>("q_diagonal"));
 
 XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuSolve, kc::SolveImpl,
                               kc::bind_factor(ffi::Ffi::Bind())
@@ -970,7 +994,8 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuGradients, kc::GradientsImpl,
                                                                           .Arg<ffi::AnyBuffer>()      // x
                                                                           .Arg<ffi::AnyBuffer>()      // x_lo
                                                                           .Arg<ffi::AnyBuffer>()))  // x_bar
-                                  .Attr<int32_t>("r_diagonal"));
+                                  .Attr<int32_t>("r_diagonal")
+                                  .Attr<int32_t>("q_diagonal"));
 
 XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuBand, kc::BandImpl,
                               kc::bind_factor(ffi::Ffi::Bind())
@@ -983,4 +1008,5 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuLoglik, kc::LoglikImpl,
                                                                           .Arg<ffi::AnyBuffer>()   // x
                                                                           .Arg<ffi::AnyBuffer>())  // x_lo
                                                            .Ret<ffi::AnyBuffer>())  // log p(y)
-                                  .Attr<int32_t>("r_diagonal"));
+                                  .Attr<int32_t>("r_diagonal")
+                                  .Attr<int32_t>("q_diagonal"));

@@ -28,6 +28,12 @@
 // The value is
 //   log p(y_K) = −J(x*) − ½ log|H| − ½ log|P_0| − ½ Σ log|Q_t| − ½ Σ log|R_{t,KK}|
 //                − ½ (N_K − n_flat) log 2π,   log|H| = −2 Σ_t Σ_i log (Li_t)_ii.
+//
+// A diagonal Q_t = diag(q_t) (given by its variances): Q_t⁻¹ = diag(1/q_t),
+// log|Q_t| = Σ_i log q_ti, and the gradient w.r.t. the variances is the
+// diagonal of Q̄_t, ½ (r_ti² + (W_t)_ii − q_ti) / q_ti², which needs only the
+// diagonal of W_t: (A Σ_{t+1,t}ᵀ)_ii and (A Σ_t Aᵀ)_ii are O(n) each, so the
+// two n×n products that W_t costs in the dense case are not formed.
 #pragma once
 
 #include <cmath>
@@ -150,7 +156,7 @@ class LoglikPart {
     p_ = P.p;
     const std::size_t n2 = std::size_t(n_) * n_;
     const int q = n_ > p_ ? n_ : p_;
-    buf_.resize(12 * n2 + 3 * std::size_t(p_) * p_ + 3 * std::size_t(p_) * n_ + 8 * std::size_t(q) + 8);
+    buf_.resize(12 * n2 + 3 * std::size_t(p_) * p_ + 3 * std::size_t(p_) * n_ + 9 * std::size_t(q) + 8);
     Arena<Real> arena(buf_.data());
     Qinv_ = arena.take(n2);
     Lq_ = arena.take(n2);
@@ -168,7 +174,10 @@ class LoglikPart {
     e_ = arena.take(q);
     sigma_ = arena.take(q);
     cs_ = arena.take(q + 1);
+    qi_ = arena.take(q);
     if (raw) copy(Qinv_, Qinv_shared, n2);
+    if (raw && P.Q_diag)  // 1/q of a diagonal time-invariant Q, from Q⁻¹ = diag(1/q)
+      for (int i = 0; i < n_; ++i) qi_[i] = Qinv_[std::size_t(i) * n_ + i];
     if (own_acc != nullptr) redirect_accumulators(G_, acc_base, own_acc);
   }
 
@@ -194,7 +203,10 @@ class LoglikPart {
     for (int i = 0; i < n; ++i) val += std::log(double(Li_t[i * n + i]));
 
     // Transition t → t+1.
-    if (X != nullptr) {
+    if (X != nullptr && P.Q_diag) {
+      transition_diagonal(t, S, X, S_next);
+      if (failed_) return;
+    } else if (X != nullptr) {
       const Real* A = P.At(t);
       const Real* bt = P.b != nullptr ? P.bt(t) : nullptr;
       for (int i = 0; i < n; ++i)
@@ -352,6 +364,68 @@ class LoglikPart {
   }
 
  private:
+  // Transition t → t+1 for a diagonal Q_t = diag(q_t) (module comment): the
+  // dense case's terms with Q⁻¹ = diag(1/q), and only the diagonal of W_t.
+  void transition_diagonal(int t, const Real* S, const Real* X, const Real* S_next) {
+    const int n = fixed<NK>(n_);
+    const std::size_t n2 = std::size_t(n) * n;
+    const Trajectory<Real>& P = P_;
+    Gradients<Real>& G = G_;
+    const Real* xt = x_ + std::size_t(t) * n;
+    const Real* A = P.At(t);
+    const Real* q = P.Qt(t);
+    const Real* bt = P.b != nullptr ? P.bt(t) : nullptr;
+    Real *E1 = E1_, *AS = AS_, *T2 = T2_, *r = r_, *e = e_, *w = sigma_, *qi = qi_;
+    if (!raw_) {
+      if (!variances_inverse(qi, q, n)) {
+        failed_ = true;
+        return;
+      }
+      ldQ_ = 0;
+      for (int i = 0; i < n; ++i) ldQ_ += std::log(q[i]);
+    }
+    for (int i = 0; i < n; ++i)
+      r[i] = xt[n + i] - dot<Real, NK>(A + std::size_t(i) * n, xt, n) - (bt ? bt[i] : Real(0));
+    matmul<Real, NK>(AS, A, false, S, false, n);  // A Σ_t
+    for (int i = 0; i < n; ++i) {
+      // (W_t)_ii = Σ_{t+1,ii} − 2 (A Σ_{t+1,t}ᵀ)_ii + (A Σ_t Aᵀ)_ii, plus r_i².
+      const Real* Ai = A + std::size_t(i) * n;
+      const Real ax = dot<Real, NK>(Ai, X + std::size_t(i) * n, n);
+      const Real asa = dot<Real, NK>(AS + std::size_t(i) * n, Ai, n);
+      w[i] = r[i] * r[i] + S_next[std::size_t(i) * n + i] - Real(2) * ax + asa;
+      for (int j = 0; j < n; ++j) {
+        const std::size_t ij = std::size_t(i) * n + j;
+        E1[ij] = r[i] * xt[j] + X[ij] - AS[ij];
+      }
+    }
+    for (int i = 0; i < n; ++i) e[i] = qi[i] * r[i];  // Q⁻¹ r
+    val_ -= 0.5 * double(dot<Real, NK>(r, e, n)) + 0.5 * double(ldQ_);
+    if (G.A.present()) {
+      if (raw_ && !G.A.tv) {
+        for (std::size_t i = 0; i < n2; ++i) G.A.acc[i] += E1[i];
+      } else {
+        for (int i = 0; i < n; ++i)
+          for (int j = 0; j < n; ++j) T2[std::size_t(i) * n + j] = qi[i] * E1[std::size_t(i) * n + j];
+        G.A.add_at(t, [&](auto* g) { for (std::size_t i = 0; i < n2; ++i) g[i] += T2[i]; });
+      }
+    }
+    if (G.Q.present()) {
+      if (raw_) {  // Σ (W_t)_ii now; − (T−1) q and 1/q² at the end
+        for (int i = 0; i < n; ++i) G.Q.acc[i] += w[i];
+      } else {
+        Real* g = G.Q.out + std::size_t(t) * n;
+        for (int i = 0; i < n; ++i) g[i] += Real(0.5) * (w[i] - q[i]) * qi[i] * qi[i];
+      }
+    }
+    if (G.b.present()) {
+      if (raw_ && !G.b.tv) {
+        for (int i = 0; i < n; ++i) G.b.acc[i] += r[i];
+      } else {
+        G.b.add_at(t, [&](auto* g) { for (int i = 0; i < n; ++i) g[i] += e[i]; });
+      }
+    }
+  }
+
   const Trajectory<Real>& P_;
   const FactorView<Real>& F_;
   const Real* x_;
@@ -362,6 +436,7 @@ class LoglikPart {
   int n_ = 0, p_ = 0;
   std::vector<Real> buf_;
   Real *Qinv_, *Lq_, *E1_, *E2_, *AS_, *AX_, *T1_, *T2_, *Rinv_, *Lr_, *Fk_, *FS_, *r_, *e_, *sigma_, *cs_;
+  Real* qi_;  // 1/q of a diagonal Q_t
   Real ldQ_;
   double val_ = 0;  // −J − ½ Σ log-dets over this part's steps, in double
   long long n_obs_ = 0;
@@ -408,7 +483,8 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
   std::vector<Real> qbuf(2 * n2 + n + 1);
   Real* Qinv = qbuf.data();
   Real ldQ = 0;
-  if (T > 1 && raw && !spd_inverse<Real, NK>(Qinv, &ldQ, P.Q, n, qbuf.data() + n2, qbuf.data() + 2 * n2)) {
+  if (T > 1 && raw &&
+      !transition_precision<Real, NK>(Qinv, &ldQ, P.Q, P.Q_diag, n, qbuf.data() + n2, qbuf.data() + 2 * n2)) {
     fail_all();
     return;
   }
@@ -461,12 +537,15 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
   *value = static_cast<Real>(val);
 
   // Q⁻¹ on the raw transition sums (fixed Q), in double; Q̄ is
-  // ½ Q⁻¹ (Σ E2 − (T−1) Q) Q⁻¹, made exactly symmetric here.
+  // ½ Q⁻¹ (Σ E2 − (T−1) Q) Q⁻¹, made exactly symmetric here (a diagonal Q̄:
+  // ½ (Σ (W_t)_ii − (T−1) q_i) / q_i²).
   if (raw && T > 1) {
     if (G.Q.present())
-      for (std::size_t i = 0; i < n2; ++i) G.Q.acc[i] -= double(T - 1) * P.Q[i];
+      for (std::size_t i = 0; i < P.Q_item(); ++i) G.Q.acc[i] -= double(T - 1) * P.Q[i];
     apply_qinv_to_sums(G, Qinv, n);
-    if (G.Q.present()) {
+    if (G.Q.present() && G.Q.diagonal) {
+      for (int i = 0; i < n; ++i) G.Q.acc[i] *= 0.5;
+    } else if (G.Q.present()) {
       double* S = G.Q.acc;
       for (int i = 0; i < n; ++i)
         for (int j = 0; j <= i; ++j) S[i * n + j] = S[j * n + i] = 0.25 * (S[j * n + i] + S[i * n + j]);

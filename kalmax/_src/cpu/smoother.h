@@ -19,6 +19,14 @@
 // O(k² n), S e is e/r, and the R gradient keeps only its diagonal
 // (dℓ/dr_i = R̄_ii, since dR = e_i e_iᵀ dr_i).
 //
+// Diagonal Q (Trajectory::Q_diag, Q given by its n variances per step) the
+// same way: Lq = diag(√q), Q⁻¹ = diag(1/q), log|Q| = Σ_i log q_i, so there is
+// no Cholesky factorisation per step for a time-varying Q; Lq⁻¹A is A with
+// row i divided by √q_i, Q⁻¹r is r/q, and the Q gradient keeps only its
+// diagonal, Q̄_ii (the gradient w.r.t. the variances, dQ = e_i e_iᵀ dq_i).
+// A variance that is not positive (or not finite) fails the step exactly as a
+// dense Q that is not positive definite does.
+//
 // Every precision-weighted product is a Gram matrix of whitened factors
 // (Lq⁻¹A, Lr⁻¹C_K, ...), so diagonal blocks are positive semi-definite by
 // construction.
@@ -62,12 +70,14 @@ struct Trajectory {
   const Real* w = nullptr;   // (T, p) 0/1 observation mask
   bool A_tv = false, Q_tv = false, b_tv = false, C_tv = false, R_tv = false, d_tv = false;
   bool R_diag = false;  // R holds the p variances of a diagonal R per block, not p×p
+  bool Q_diag = false;  // Q holds the n variances of a diagonal Q per block, not n×n
 
-  // Elements in one block of R.
+  // Elements in one block of R, of Q.
   std::size_t R_item() const { return R_diag ? std::size_t(p) : std::size_t(p) * p; }
+  std::size_t Q_item() const { return Q_diag ? std::size_t(n) : std::size_t(n) * n; }
 
   const Real* At(int t) const { return A_tv ? A + std::size_t(t) * n * n : A; }
-  const Real* Qt(int t) const { return Q_tv ? Q + std::size_t(t) * n * n : Q; }
+  const Real* Qt(int t) const { return Q_tv ? Q + std::size_t(t) * Q_item() : Q; }
   const Real* bt(int t) const { return b_tv ? b + std::size_t(t) * n : b; }
   const Real* Ct(int t) const { return C_tv ? C + std::size_t(t) * p * n : C; }
   const Real* Rt(int t) const { return R_tv ? R + std::size_t(t) * R_item() : R; }
@@ -105,12 +115,54 @@ inline void copy(Real* dst, const Real* src, std::size_t count) {
   std::copy(src, src + count, dst);
 }
 
+// The n variances q of a diagonal Q: inv receives 1/q_i. False unless every
+// q_i is positive and finite (NaN included): the Cholesky factorisation of
+// the dense diag(q) would report such a pivot as not positive.
+template <class Real>
+inline bool variances_inverse(Real* inv, const Real* q, int n) {
+  for (int i = 0; i < n; ++i) {
+    const Real v = q[i];
+    if (!(v > Real(0)) || !std::isfinite(v)) return false;
+    inv[i] = Real(1) / v;
+  }
+  return true;
+}
+
+// Q⁻¹ as an n×n matrix from one block of Q (time-invariant Q: computed once,
+// so that later products with it are independent dot products): through the
+// Cholesky factor L (n×n) of a dense block, or diag(1/q) when `diag` (the
+// block holds the n variances). logdet (optional) receives log|Q|. False when
+// Q is not positive definite. scratch: n entries.
+template <class Real, int NK>
+inline bool transition_precision(Real* Qinv, Real* logdet, const Real* Q, bool diag, int n_, Real* L,
+                                 Real* scratch) {
+  const int n = fixed<NK>(n_);
+  if (!diag) {
+    if (!sym_cholesky_inverse<Real, NK>(Qinv, L, Q, n, scratch)) return false;
+    if (logdet != nullptr) *logdet = cholesky_logdet(L, n);
+    return true;
+  }
+  if (!variances_inverse(scratch, Q, n)) return false;
+  fill(Qinv, std::size_t(n) * n, Real(0));
+  Real ld = 0;
+  for (int i = 0; i < n; ++i) {
+    Qinv[i * n + i] = scratch[i];
+    ld += std::log(Q[i]);
+  }
+  if (logdet != nullptr) *logdet = ld;
+  return true;
+}
+
 // Whitened transition blocks for one (A, Q): with Lq Lqᵀ = Q,
 //   Wi = Lq⁻¹, WA = Lq⁻¹A, GAA = AᵀQ⁻¹A, Qinv = Q⁻¹,
 //   HsubT = H_{t+1,t}ᵀ = −AᵀQ⁻¹ (kept transposed: that is how the factor step uses it).
+// A diagonal Q (`diag`, Q given by its n variances q): Lq holds √q (n
+// entries), WA is A with row i divided by √q_i, Qinv = diag(1/q) and
+// HsubT = −Aᵀdiag(1/q), all O(n²); Wi is not used. GAA stays a product, O(n³).
 template <class Real, int NK>
 struct TransitionBlocks {
   Real *Lq, *Wi, *WA, *GAA, *Qinv, *HsubT, *Wb, *c;
+  bool diag = false;  // Q given by its variances
 
   void allocate(Arena<Real>& arena, int n) {
     const std::size_t n2 = std::size_t(n) * n;
@@ -127,6 +179,7 @@ struct TransitionBlocks {
   bool compute(const Real* A, const Real* Q, int n_) {
     const int n = fixed<NK>(n_);
     const int n2 = n * n;
+    if (diag) return compute_diagonal(A, Q, n);
     if (!sym_cholesky<Real, NK>(Lq, Q, n, c)) return false;
     fill(Wi, n2, Real(0));
     for (int i = 0; i < n; ++i) Wi[i * n + i] = Real(1);
@@ -141,9 +194,35 @@ struct TransitionBlocks {
     return true;
   }
 
-  // Offset terms: g_t += −WAᵀ Wb and g_{t+1} += Wiᵀ Wb with Wb = Lq⁻¹ b.
+  // The blocks of a diagonal Q = diag(q) (see above). c receives 1/q.
+  bool compute_diagonal(const Real* A, const Real* q, int n_) {
+    const int n = fixed<NK>(n_);
+    const int n2 = n * n;
+    if (!variances_inverse(c, q, n)) return false;
+    for (int i = 0; i < n; ++i) Lq[i] = std::sqrt(q[i]);
+    for (int i = 0; i < n; ++i) {
+      const Real s = Real(1) / Lq[i];
+      for (int j = 0; j < n; ++j) WA[i * n + j] = s * A[i * n + j];
+    }
+    fill(GAA, n2, Real(0));
+    fill(Qinv, n2, Real(0));
+    add_cross<Real, NK, NK>(GAA, WA, WA, n, n, n, Real(1));
+    for (int i = 0; i < n; ++i) Qinv[i * n + i] = c[i];
+    for (int j = 0; j < n; ++j)
+      for (int i = 0; i < n; ++i) HsubT[j * n + i] = -A[i * n + j] * c[i];
+    return true;
+  }
+
+  // Offset terms: g_t += −WAᵀ Wb and g_{t+1} += Wiᵀ Wb with Wb = Lq⁻¹ b
+  // (diagonal Q: Wb = b/√q and Wiᵀ Wb = b/q).
   void offset_terms(const Real* b, Real* g_now, Real* g_next, int n_) {
     const int n = fixed<NK>(n_);
+    if (diag) {
+      for (int i = 0; i < n; ++i) Wb[i] = b[i] / Lq[i];
+      add_tmatvec<Real, NK>(g_now, WA, Wb, n, n, Real(-1));
+      for (int i = 0; i < n; ++i) g_next[i] += Wb[i] / Lq[i];
+      return;
+    }
     lsolve_vec<Real, NK>(Lq, b, Wb, n);
     add_tmatvec<Real, NK>(g_now, WA, Wb, n, n, Real(-1));
     add_tmatvec<Real, NK>(g_next, Wi, Wb, n, n, Real(1));
@@ -362,7 +441,7 @@ bool refine_one(const Trajectory<Real>& P, const FactorView<Real>& F, Real* x, R
 
   // Time-invariant Q and the prior: factor once (Q⁻¹ as a matrix: the
   // residual's products with it are independent dot products, no chains).
-  if (T > 1 && !P.Q_tv && !sym_cholesky_inverse<Real, NK>(Qinv, Lq, P.Q, n, cs)) return false;
+  if (T > 1 && !P.Q_tv && !transition_precision<Real, NK>(Qinv, nullptr, P.Q, P.Q_diag, n, Lq, cs)) return false;
   if (P.P0 != nullptr && !sym_cholesky<Real, NK>(Lp, P.P0, n, cs)) return false;
 
   std::vector<Real> d(Tn);
@@ -378,7 +457,10 @@ bool refine_one(const Trajectory<Real>& P, const FactorView<Real>& F, Real* x, R
         const Real* bt = P.b != nullptr ? P.bt(t) : nullptr;
         for (int i = 0; i < n; ++i)
           res[i] = xt[n + i] - dot<Real, NK>(At + std::size_t(i) * n, xt, n) - (bt ? bt[i] : Real(0));
-        if (P.Q_tv) {
+        if (P.Q_tv && P.Q_diag) {  // Q_t⁻¹ r'_t = r'_t / q_t
+          if (!variances_inverse(cs, P.Qt(t), n)) return false;
+          for (int i = 0; i < n; ++i) rho[i] = res[i] * cs[i];
+        } else if (P.Q_tv) {
           if (!sym_cholesky<Real, NK>(Lq, P.Qt(t), n, cs)) return false;
           lsolve_vec<Real, NK>(Lq, res, rho, n);
           ltsolve_vec_inplace<Real, NK>(Lq, rho, n);
@@ -467,6 +549,7 @@ int forward_one(const Trajectory<Real>& P, Real* x, Real* Li, Real* M, Real* sub
   Real* ey = arena.take(p);
   TransitionBlocks<Real, NK> tb;
   tb.allocate(arena, n);
+  tb.diag = P.Q_diag;
   Real* gb_now = arena.take(n);  // offset terms of a time-invariant (A, Q, b)
   Real* gb_next = arena.take(n);
   Real* Wp = arena.take(n2);  // whitened prior precision factor
@@ -633,6 +716,7 @@ int forward_one(const Trajectory<Real>& P, Real* x, Real* Li, Real* M, Real* sub
 //   m̄_0 = α                  P̄_0 = sym(α βᵀ)
 // with sym(X) = (X + Xᵀ)/2 because covariances are read through their
 // symmetric part (dQ⁻¹ = −Q⁻¹ dQ Q⁻¹, dS = −S dR S on the observed block).
+// A diagonal Q or R keeps the diagonal only: Q̄_ii = φ_i ρ_i, R̄_ii = −κ_i σ_i.
 // Time-invariant fields sum the per-step terms (in double precision).
 
 // Destination of one gradient field: per-step blocks in the output, or one
@@ -642,7 +726,7 @@ struct GradSink {
   Real* out = nullptr;    // output buffer (nullptr: field absent)
   double* acc = nullptr;  // accumulator when time-invariant
   bool tv = false;
-  bool diagonal = false;  // the field is a diagonal given by its entries (R only)
+  bool diagonal = false;  // the field is a diagonal given by its entries (R or Q)
   std::size_t item = 0;   // elements per block
 
   bool present() const { return out != nullptr; }
@@ -724,12 +808,13 @@ class GradSinks {
   }
 
   // R̄'s accumulator holds an unsymmetrised sum, and so does Q̄'s when
-  // symmetrise_Q is set: their outputs get the symmetric part.
+  // symmetrise_Q is set: their outputs get the symmetric part (a diagonal
+  // field holds its diagonal only, which is kept as it is).
   void finish(bool symmetrise_Q) const {
     for (int f = 0; f < kFields; ++f) {
       GradSink<Real>& s = *sinks_[f];
       if (!s.present() || s.tv) continue;
-      if ((f == kR && !s.diagonal) || (f == kQ && symmetrise_Q)) {
+      if (!s.diagonal && ((f == kR) || (f == kQ && symmetrise_Q))) {
         const int r = f == kQ ? n_ : p_;
         for (int i = 0; i < r; ++i)
           for (int j = 0; j < r; ++j)
@@ -768,7 +853,9 @@ inline void qinv_times(double* out, const Real* Qinv, const double* S, int n, in
 // Transition sums of a time-invariant Q, accumulated raw, get Q⁻¹ applied
 // once at the end (in double): Ā ← Q⁻¹Ā, b̄ ← Q⁻¹b̄, and Q̄ ← Q⁻¹(Q⁻¹Q̄)ᵀ =
 // Q⁻¹Q̄ᵀQ⁻¹ (Q⁻¹ symmetric), the transpose of Q⁻¹Q̄Q⁻¹: both callers keep
-// only its symmetric part. Each only where present and accumulated.
+// only its symmetric part. Each only where present and accumulated. A
+// diagonal Q̄ (Q given by its variances; Qinv is then diag(1/q)) holds the
+// diagonal of the sum: Q̄_ii ← Q̄_ii / q_i².
 template <class Real>
 void apply_qinv_to_sums(Gradients<Real>& G, const Real* Qinv, int n) {
   const std::size_t n2 = std::size_t(n) * n;
@@ -777,7 +864,12 @@ void apply_qinv_to_sums(Gradients<Real>& G, const Real* Qinv, int n) {
     qinv_times(tmp.data(), Qinv, G.A.acc, n, n);
     std::copy(tmp.begin(), tmp.end(), G.A.acc);
   }
-  if (G.Q.present() && !G.Q.tv) {
+  if (G.Q.present() && !G.Q.tv && G.Q.diagonal) {
+    for (int i = 0; i < n; ++i) {
+      const double qi = Qinv[i * n + i];
+      G.Q.acc[i] *= qi * qi;
+    }
+  } else if (G.Q.present() && !G.Q.tv) {
     qinv_times(tmp.data(), Qinv, G.Q.acc, n, n);
     for (int i = 0; i < n; ++i)
       for (int j = 0; j < n; ++j) tmp2[i * n + j] = tmp[j * n + i];
@@ -946,14 +1038,25 @@ class GradientPart {
             double* row = G.A.acc + std::size_t(i) * n;
             for (int j = 0; j < n; ++j) row[j] += ri * ut[j] + di * xt[j];
           }
-          if (G.Q.present()) {
+          if (G.Q.present() && G.Q.diagonal) {
+            G.Q.acc[i] += di * ri;
+          } else if (G.Q.present()) {
             double* row = G.Q.acc + std::size_t(i) * n;
             for (int j = 0; j < n; ++j) row[j] += di * alpha[j];
           }
           if (G.b.present()) G.b.acc[i] += di;
         }
       } else {
-        if (P.Q_tv) {
+        if (P.Q_tv && P.Q_diag) {  // ρ = r/q, φ = δ/q
+          if (!variances_inverse(cs, P.Qt(t), n)) {
+            failed_ = true;
+            return;
+          }
+          for (int i = 0; i < n; ++i) {
+            rho[i] = alpha[i] * cs[i];
+            phi[i] = beta[i] * cs[i];
+          }
+        } else if (P.Q_tv) {
           if (!sym_cholesky<Real, NK>(Lq, P.Qt(t), n, cs)) {
             failed_ = true;
             return;
@@ -969,8 +1072,13 @@ class GradientPart {
           add_outer(gA, rho, ut, n, n, Real(1));
           add_outer(gA, phi, xt, n, n, Real(1));
         });
-        // Time-invariant Q̄ accumulates φρᵀ and is symmetrised once at the end.
-        if (G.Q.present()) {
+        // Time-invariant Q̄ accumulates φρᵀ and is symmetrised once at the end;
+        // a diagonal Q̄ keeps φ_i ρ_i only.
+        if (G.Q.present() && G.Q.diagonal) {
+          G.Q.add_at(t, [&](auto* gQ) {
+            for (int i = 0; i < n; ++i) gQ[i] += phi[i] * rho[i];
+          });
+        } else if (G.Q.present()) {
           if (G.Q.tv)
             add_sym_outer(G.Q.out + std::size_t(t) * n2, phi, rho, n, Real(1));
           else
@@ -1142,7 +1250,7 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
   const bool raw_sums = !P.Q_tv && !P.A_tv && !(P.b != nullptr && P.b_tv);
 
   // Time-invariant Q: use Q⁻¹ explicitly (matrix-vector products, no chains).
-  if (T > 1 && !P.Q_tv && !sym_cholesky_inverse<Real, NK>(Qinv, Lq, P.Q, n, cs)) {
+  if (T > 1 && !P.Q_tv && !transition_precision<Real, NK>(Qinv, nullptr, P.Q, P.Q_diag, n, Lq, cs)) {
     sinks.fail();
     return;
   }

@@ -105,9 +105,10 @@ class WideTrajectory {
     W.C_tv = P.C_tv;
     W.R_tv = P.R_tv;
     W.R_diag = P.R_diag;
+    W.Q_diag = P.Q_diag;
     W.d_tv = P.d_tv;
     W.A = take(A_, P.A, (P.A_tv ? T1 : 1) * n * n);
-    W.Q = take(Q_, P.Q, (P.Q_tv ? T1 : 1) * n * n);
+    W.Q = take(Q_, P.Q, (P.Q_tv ? T1 : 1) * P.Q_item());
     W.b = take(b_, P.b, (P.b_tv ? T1 : 1) * n);
     W.C = take(C_, P.C, (P.C_tv ? T : 1) * p * n);
     W.R = take(R_, P.R, (P.R_tv ? T : 1) * P.R_item());
