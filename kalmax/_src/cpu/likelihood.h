@@ -16,6 +16,7 @@
 //   Ā_t = Q_t⁻¹ (r_t x_tᵀ + Σ_{t+1,t} − A_t Σ_t)
 //   Q̄_t = ½ Q_t⁻¹ (r_t r_tᵀ + W_t − Q_t) Q_t⁻¹,
 //         W_t = Σ_{t+1} − A Σ_{t+1,t}ᵀ − Σ_{t+1,t} Aᵀ + A Σ_t Aᵀ   (posterior Cov of r_t)
+//       = ½ (μ_t μ_tᵀ − Λ_t),  μ_t = Q_t⁻¹ r_t,  Λ_t = Z_t Σ_{t+1}⁻¹ (Ω_{t+1}Σ_{t+1})ᵀ   (computed so)
 //   b̄_t = Q_t⁻¹ r_t
 //   C̄_t[K] = σ x_tᵀ − F Σ_t          R̄_t[K,K] = ½ (σσᵀ + F Σ_t Fᵀ − S)
 //   d̄_t[K] = σ                        ȳ_t[K] = −σ
@@ -25,15 +26,28 @@
 // written per step: the −∂_θJ part gives the terms in x*, ½ tr(Σ ∂_θH) the
 // terms in Σ, and the log-dets the −Q, −S, −P_0 terms.
 //
+// Q̄ is computed in its second form. When Q is small beside the posterior
+// covariances (q/r ≪ 1), W_t − Q_t = O(|Q|²/|Σ|) is a difference of O(|Σ|)
+// numbers: the rounding eps·|Σ| of W_t would reach Q̄ as eps·|Σ|/|Q|², a
+// relative error eps·κ(H)², measured 10⁵× off in double on ordinary tracking
+// models. The second form has no such cancellation; the derivation is in the
+// module docstring of likelihood.py (_process_noise_gradient is the JAX
+// version). With O_s = C_KᵀR_KK⁻¹C_K (the information of y_s):
+//   Z_t = Q_t⁻¹ (Σ_{t+1} − A_t Σ_{t+1,t}ᵀ)       (= P⁻⁻¹Σ_{t+1}, P⁻ the prediction of x_{t+1})
+//   Y_s = Q_s⁻¹ (Σ_{s+1,s} − A_s Σ_s)           (Y_{T-1} = 0)
+//   Ω_sΣ_s = O_s Σ_s − A_sᵀ Y_s                 (Ω_s: the information y_{s..T-1} carry about x_s)
+// Ω_{t+1}Σ_{t+1} comes from the visit of step t+1 (a part of a split pass
+// gets it at its upper boundary from LoglikPart::prime).
+//
 // The value is
 //   log p(y_K) = −J(x*) − ½ log|H| − ½ log|P_0| − ½ Σ log|Q_t| − ½ Σ log|R_{t,KK}|
 //                − ½ (N_K − n_flat) log 2π,   log|H| = −2 Σ_t Σ_i log (Li_t)_ii.
 //
 // A diagonal Q_t = diag(q_t) (given by its variances): Q_t⁻¹ = diag(1/q_t),
 // log|Q_t| = Σ_i log q_ti, and the gradient w.r.t. the variances is the
-// diagonal of Q̄_t, ½ (r_ti² + (W_t)_ii − q_ti) / q_ti², which needs only the
-// diagonal of W_t: (A Σ_{t+1,t}ᵀ)_ii and (A Σ_t Aᵀ)_ii are O(n) each, so the
-// two n×n products that W_t costs in the dense case are not formed.
+// diagonal of Q̄_t in its second form, ½ (μ_ti² − (Λ_t)_ii): every Q_t⁻¹
+// above is a division of row i by q_ti (μ_t, Y_t, Z_t), and of Λ_t only the
+// diagonal is formed, O(n²) from Z_t and Σ_{t+1}⁻¹(Ω_{t+1}Σ_{t+1})ᵀ.
 #pragma once
 
 #include <cmath>
@@ -73,9 +87,10 @@ inline bool spd_inverse(Real* out, Real* logdet, const Real* S, int n, Real* L, 
 // visit(t, Σ_t, Σ_{t+1,t}, Σ_{t+1}); the last two are nullptr at t = T-1.
 // S_hi: Σ_hi, where the pass starts when hi < T (unused when hi == T).
 // S_lo (optional): receives Σ_lo, so a later pass can start from there.
+// X_lo (optional): receives Σ_{lo+1,lo} when lo < T-1.
 template <class Real, int NK, class Visit>
 void band_range(const FactorView<Real>& F, int T, int n_, int lo, int hi, const Real* S_hi, Real* S_lo,
-                Visit&& visit) {
+                Visit&& visit, Real* X_lo = nullptr) {
   const int n = fixed<NK>(n_);
   const std::size_t n2 = std::size_t(n) * n;
   std::vector<Real> buf(5 * n2);
@@ -112,6 +127,7 @@ void band_range(const FactorView<Real>& F, int T, int n_, int lo, int hi, const 
     std::swap(S_next, S_t);
   }
   if (S_lo != nullptr) copy(S_lo, S_next, n2);
+  if (X_lo != nullptr && lo < T - 1) copy(X_lo, X, n2);
 }
 
 // The whole band, backwards from the last step.
@@ -156,7 +172,7 @@ class LoglikPart {
     p_ = P.p;
     const std::size_t n2 = std::size_t(n_) * n_;
     const int q = n_ > p_ ? n_ : p_;
-    buf_.resize(12 * n2 + 3 * std::size_t(p_) * p_ + 3 * std::size_t(p_) * n_ + 9 * std::size_t(q) + 8);
+    buf_.resize(14 * n2 + 3 * std::size_t(p_) * p_ + 3 * std::size_t(p_) * n_ + 9 * std::size_t(q) + 8);
     Arena<Real> arena(buf_.data());
     Qinv_ = arena.take(n2);
     Lq_ = arena.take(n2);
@@ -166,6 +182,8 @@ class LoglikPart {
     AX_ = arena.take(n2);
     T1_ = arena.take(n2);
     T2_ = arena.take(n2);
+    Y_ = arena.take(n2);
+    JS_ = arena.take(n2);
     Rinv_ = arena.take(std::size_t(p_) * p_);
     Lr_ = arena.take(std::size_t(p_) * p_);
     Fk_ = arena.take(std::size_t(p_) * n_);
@@ -179,6 +197,51 @@ class LoglikPart {
     if (raw && P.Q_diag)  // 1/q of a diagonal time-invariant Q, from Q⁻¹ = diag(1/q)
       for (int i = 0; i < n_; ++i) qi_[i] = Qinv_[std::size_t(i) * n_ + i];
     if (own_acc != nullptr) redirect_accumulators(G_, acc_base, own_acc);
+  }
+
+  // Ω_sΣ_s at the upper boundary s of a part that does not end at T-1 (the
+  // visit of step s belongs to the part above, and the first visit here,
+  // s − 1, needs it): from Σ_s and Σ_{s+1,s}.
+  void prime(int s, const Real* S, const Real* X) {
+    if (failed_ || !G_.Q.present()) return;
+    const int n = fixed<NK>(n_);
+    const std::size_t n2 = std::size_t(n) * n;
+    if (X != nullptr && P_.Q_diag) {  // Y_s = (Σ_{s+1,s} − A_sΣ_s) / q_s, by rows
+      if (!raw_ && !variances_inverse(qi_, P_.Qt(s), n)) {
+        failed_ = true;
+        return;
+      }
+      matmul<Real, NK>(AS_, P_.At(s), false, S, false, n);
+      for (int i = 0; i < n; ++i)
+        for (int j = 0; j < n; ++j) {
+          const std::size_t ij = std::size_t(i) * n + j;
+          Y_[ij] = qi_[i] * (X[ij] - AS_[ij]);
+        }
+    } else if (X != nullptr) {
+      Real ld = 0;
+      if (!raw_ && !spd_inverse<Real, NK>(Qinv_, &ld, P_.Qt(s), n, Lq_, cs_)) {
+        failed_ = true;
+        return;
+      }
+      matmul<Real, NK>(AS_, P_.At(s), false, S, false, n);
+      for (std::size_t i = 0; i < n2; ++i) T1_[i] = X[i] - AS_[i];
+      matmul<Real, NK>(Y_, Qinv_, false, T1_, false, n);
+    }
+    Measurement<Real, NK> m;
+    if (!measurement_at<Real, NK>(P_, s, cache_, idx_, Lr_, cs_, &m)) {
+      failed_ = true;
+      return;
+    }
+    const Real *Sk, *Fm;
+    Real ldR = 0;
+    weights(m, &Sk, &Fm, &ldR);
+    for (int a = 0; a < m.k; ++a)  // F Σ_s
+      for (int j = 0; j < n; ++j) {
+        Real v = 0;
+        for (int c = 0; c < n; ++c) v += Fm[a * n + c] * S[c * n + j];
+        FS_[a * n + j] = v;
+      }
+    next_carry(s, m, X != nullptr);
   }
 
   double value() const { return val_; }
@@ -195,7 +258,7 @@ class LoglikPart {
     Gradients<Real>& G = G_;
     const Real* xt = x_ + std::size_t(t) * n;
     Real *Qinv = Qinv_, *Lq = Lq_, *E1 = E1_, *E2 = E2_, *AS = AS_, *AX = AX_, *T1 = T1_, *T2 = T2_;
-    Real *Rinv = Rinv_, *Lr = Lr_, *Fk = Fk_, *FS = FS_, *r = r_, *e = e_, *sigma = sigma_, *cs = cs_;
+    Real *Lr = Lr_, *FS = FS_, *r = r_, *e = e_, *sigma = sigma_, *cs = cs_;
     const bool raw = raw_;
     double& val = val_;
 
@@ -212,13 +275,10 @@ class LoglikPart {
       for (int i = 0; i < n; ++i)
         r[i] = xt[n + i] - dot<Real, NK>(A + std::size_t(i) * n, xt, n) - (bt ? bt[i] : Real(0));
       matmul<Real, NK>(AS, A, false, S, false, n);  // A Σ_t
-      matmul<Real, NK>(AX, A, false, X, true, n);   // A Σ_{t+1,t}ᵀ
-      matmul<Real, NK>(T1, AS, false, A, true, n);  // A Σ_t Aᵀ
       for (int i = 0; i < n; ++i)
         for (int j = 0; j < n; ++j) {
           const std::size_t ij = std::size_t(i) * n + j;
           E1[ij] = r[i] * xt[j] + X[ij] - AS[ij];
-          E2[ij] = r[i] * r[j] + S_next[ij] - AX[ij] - AX[std::size_t(j) * n + i] + T1[ij];
         }
       if (!raw && !spd_inverse<Real, NK>(Qinv, &ldQ_, P.Qt(t), n, Lq, cs)) {
         failed_ = true;
@@ -235,19 +295,27 @@ class LoglikPart {
           G.A.add_at(t, [&](auto* g) { for (std::size_t i = 0; i < n2; ++i) g[i] += T2[i]; });
         }
       }
-      if (G.Q.present()) {
-        if (raw) {
-          for (std::size_t i = 0; i < n2; ++i) G.Q.acc[i] += E2[i];
-        } else {
-          const Real* Qt = P.Qt(t);
-          for (std::size_t i = 0; i < n2; ++i) E2[i] -= Qt[i];
-          matmul<Real, NK>(T1, Qinv, false, E2, false, n);
-          matmul<Real, NK>(T2, T1, false, Qinv, false, n);
-          Real* g = G.Q.out + std::size_t(t) * n2;
+      if (G.Q.present()) {  // ½ (μμᵀ − Λ_t), μ = e (header comment)
+        Real* Y = Y_;
+        for (std::size_t i = 0; i < n2; ++i) T1[i] = X[i] - AS[i];
+        matmul<Real, NK>(Y, Qinv, false, T1, false, n);  // Y_t, for step t−1's Ω_tΣ_t
+        matmul<Real, NK>(AX, A, false, X, true, n);      // A Σ_{t+1,t}ᵀ
+        for (std::size_t i = 0; i < n2; ++i) T1[i] = S_next[i] - AX[i];
+        matmul<Real, NK>(T2, Qinv, false, T1, false, n);  // Z_t
+        if (!sym_cholesky<Real, NK>(Lq, S_next, n, cs)) {  // Σ_{t+1} (Lq is free here)
+          failed_ = true;
+          return;
+        }
+        transpose<Real, NK>(E2, JS_, n);  // (Ω_{t+1}Σ_{t+1})ᵀ, from step t+1
+        lsolve_rows<Real, NK>(Lq, E2, E2, n, n);
+        ltsolve_rows<Real, NK>(Lq, E2, n, n);
+        matmul<Real, NK>(T1, T2, false, E2, false, n);  // Λ_t
+        auto add = [&](auto* g) {
           for (int i = 0; i < n; ++i)
             for (int j = 0; j < n; ++j)
-              g[i * n + j] += Real(0.25) * (T2[i * n + j] + T2[j * n + i]);
-        }
+              g[i * n + j] += Real(0.5) * e[i] * e[j] - Real(0.25) * (T1[i * n + j] + T1[j * n + i]);
+        };
+        G.Q.add_at(t, add);
       }
       if (G.b.present()) {
         if (raw && !G.b.tv) {
@@ -266,31 +334,9 @@ class LoglikPart {
     }
     const int k = m.k;
     const int* K = m.K;
-    const Real* Sk = Rinv;  // R_KK⁻¹
-    const Real* Fm = Fk;    // R_KK⁻¹ C_K
+    const Real *Sk, *Fm;  // R_KK⁻¹, R_KK⁻¹ C_K
     Real ldR = 0;
-    if (m.memo != nullptr) {
-      Sk = m.memo->Rinv;
-      Fm = m.memo->F;
-      ldR = m.memo->logdet;
-    } else if (k > 0 && m.diag) {  // Lr holds √r_K: R_KK⁻¹ and F by scaling
-      fill(Rinv, std::size_t(k) * k, Real(0));
-      for (int a = 0; a < k; ++a) {
-        const Real ri = Real(1) / (Lr[a] * Lr[a]);
-        ldR += Real(2) * std::log(Lr[a]);
-        Rinv[a * k + a] = ri;
-        for (int j = 0; j < n; ++j) Fk[a * n + j] = ri * m.C_row(a)[j];
-      }
-    } else if (k > 0) {  // Lr holds the factor of R_KK
-      ldR = cholesky_logdet(Lr, k);
-      inverse_from_cholesky<Real, 0>(Rinv, Lr, k, cs);
-      for (int a = 0; a < k; ++a)
-        for (int j = 0; j < n; ++j) {
-          Real s = 0;
-          for (int c = 0; c < k; ++c) s += Rinv[a * k + c] * m.C_row(c)[j];
-          Fk[a * n + j] = s;
-        }
-    }
+    weights(m, &Sk, &Fm, &ldR);
     if (k > 0) {
       n_obs_ += k;
       for (int a = 0; a < k; ++a) e[a] = m.residual(a, xt);
@@ -338,6 +384,7 @@ class LoglikPart {
         for (int a = 0; a < k; ++a) g[K[a]] += sigma[a];
       });
     }
+    if (G.Q.present()) next_carry(t, m, X != nullptr);
 
     // Prior on x_0.
     if (t == 0 && P.P0 != nullptr) {
@@ -365,7 +412,8 @@ class LoglikPart {
 
  private:
   // Transition t → t+1 for a diagonal Q_t = diag(q_t) (module comment): the
-  // dense case's terms with Q⁻¹ = diag(1/q), and only the diagonal of W_t.
+  // dense case's terms with Q⁻¹ = diag(1/q), a row scaling, and of Λ_t only
+  // its diagonal.
   void transition_diagonal(int t, const Real* S, const Real* X, const Real* S_next) {
     const int n = fixed<NK>(n_);
     const std::size_t n2 = std::size_t(n) * n;
@@ -375,7 +423,7 @@ class LoglikPart {
     const Real* A = P.At(t);
     const Real* q = P.Qt(t);
     const Real* bt = P.b != nullptr ? P.bt(t) : nullptr;
-    Real *E1 = E1_, *AS = AS_, *T2 = T2_, *r = r_, *e = e_, *w = sigma_, *qi = qi_;
+    Real *E1 = E1_, *E2 = E2_, *AS = AS_, *AX = AX_, *T2 = T2_, *Lq = Lq_, *r = r_, *e = e_, *qi = qi_;
     if (!raw_) {
       if (!variances_inverse(qi, q, n)) {
         failed_ = true;
@@ -387,17 +435,11 @@ class LoglikPart {
     for (int i = 0; i < n; ++i)
       r[i] = xt[n + i] - dot<Real, NK>(A + std::size_t(i) * n, xt, n) - (bt ? bt[i] : Real(0));
     matmul<Real, NK>(AS, A, false, S, false, n);  // A Σ_t
-    for (int i = 0; i < n; ++i) {
-      // (W_t)_ii = Σ_{t+1,ii} − 2 (A Σ_{t+1,t}ᵀ)_ii + (A Σ_t Aᵀ)_ii, plus r_i².
-      const Real* Ai = A + std::size_t(i) * n;
-      const Real ax = dot<Real, NK>(Ai, X + std::size_t(i) * n, n);
-      const Real asa = dot<Real, NK>(AS + std::size_t(i) * n, Ai, n);
-      w[i] = r[i] * r[i] + S_next[std::size_t(i) * n + i] - Real(2) * ax + asa;
+    for (int i = 0; i < n; ++i)
       for (int j = 0; j < n; ++j) {
         const std::size_t ij = std::size_t(i) * n + j;
         E1[ij] = r[i] * xt[j] + X[ij] - AS[ij];
       }
-    }
     for (int i = 0; i < n; ++i) e[i] = qi[i] * r[i];  // Q⁻¹ r
     val_ -= 0.5 * double(dot<Real, NK>(r, e, n)) + 0.5 * double(ldQ_);
     if (G.A.present()) {
@@ -409,13 +451,32 @@ class LoglikPart {
         G.A.add_at(t, [&](auto* g) { for (std::size_t i = 0; i < n2; ++i) g[i] += T2[i]; });
       }
     }
-    if (G.Q.present()) {
-      if (raw_) {  // Σ (W_t)_ii now; − (T−1) q and 1/q² at the end
-        for (int i = 0; i < n; ++i) G.Q.acc[i] += w[i];
-      } else {
-        Real* g = G.Q.out + std::size_t(t) * n;
-        for (int i = 0; i < n; ++i) g[i] += Real(0.5) * (w[i] - q[i]) * qi[i] * qi[i];
+    if (G.Q.present()) {  // ½ (μ_i² − (Λ_t)_ii), μ = e: the diagonal of the dense Q̄_t
+      for (int i = 0; i < n; ++i)
+        for (int j = 0; j < n; ++j) {
+          const std::size_t ij = std::size_t(i) * n + j;
+          Y_[ij] = qi[i] * (X[ij] - AS[ij]);  // Y_t, for step t−1's Ω_tΣ_t
+        }
+      matmul<Real, NK>(AX, A, false, X, true, n);  // A Σ_{t+1,t}ᵀ
+      for (int i = 0; i < n; ++i)
+        for (int j = 0; j < n; ++j) {
+          const std::size_t ij = std::size_t(i) * n + j;
+          T2[ij] = qi[i] * (S_next[ij] - AX[ij]);  // Z_t
+        }
+      if (!sym_cholesky<Real, NK>(Lq, S_next, n, cs_)) {  // Σ_{t+1}
+        failed_ = true;
+        return;
       }
+      transpose<Real, NK>(E2, JS_, n);  // (Ω_{t+1}Σ_{t+1})ᵀ, from step t+1
+      lsolve_rows<Real, NK>(Lq, E2, E2, n, n);
+      ltsolve_rows<Real, NK>(Lq, E2, n, n);  // E2 = Σ_{t+1}⁻¹ (Ω_{t+1}Σ_{t+1})ᵀ
+      G.Q.add_at(t, [&](auto* g) {
+        for (int i = 0; i < n; ++i) {
+          Real lam = 0;  // (Λ_t)_ii = (Z_t E2)_ii
+          for (int j = 0; j < n; ++j) lam += T2[std::size_t(i) * n + j] * E2[std::size_t(j) * n + i];
+          g[i] += Real(0.5) * (e[i] * e[i] - lam);
+        }
+      });
     }
     if (G.b.present()) {
       if (raw_ && !G.b.tv) {
@@ -423,6 +484,60 @@ class LoglikPart {
       } else {
         G.b.add_at(t, [&](auto* g) { for (int i = 0; i < n; ++i) g[i] += e[i]; });
       }
+    }
+  }
+
+  // R_KK⁻¹ (*Sk) and R_KK⁻¹C_K (*Fm) of a measurement, and log|R_KK|.
+  void weights(const Measurement<Real, NK>& m, const Real** Sk, const Real** Fm, Real* ldR) {
+    const int n = fixed<NK>(n_), k = m.k;
+    Real *Rinv = Rinv_, *Fk = Fk_;
+    const Real* Lr = Lr_;
+    *Sk = Rinv;
+    *Fm = Fk;
+    *ldR = 0;
+    if (m.memo != nullptr) {
+      *Sk = m.memo->Rinv;
+      *Fm = m.memo->F;
+      *ldR = m.memo->logdet;
+    } else if (k > 0 && m.diag) {  // Lr holds √r_K: R_KK⁻¹ and F by scaling
+      fill(Rinv, std::size_t(k) * k, Real(0));
+      for (int a = 0; a < k; ++a) {
+        const Real ri = Real(1) / (Lr[a] * Lr[a]);
+        *ldR += Real(2) * std::log(Lr[a]);
+        Rinv[a * k + a] = ri;
+        for (int j = 0; j < n; ++j) Fk[a * n + j] = ri * m.C_row(a)[j];
+      }
+    } else if (k > 0) {  // Lr holds the factor of R_KK
+      *ldR = cholesky_logdet(Lr, k);
+      inverse_from_cholesky<Real, 0>(Rinv, Lr, k, cs_);
+      for (int a = 0; a < k; ++a)
+        for (int j = 0; j < n; ++j) {
+          Real s = 0;
+          for (int c = 0; c < k; ++c) s += Rinv[a * k + c] * m.C_row(c)[j];
+          Fk[a * n + j] = s;
+        }
+    }
+  }
+
+  // Ω_tΣ_t = O_tΣ_t − A_tᵀY_t into JS_, for the visit of step t − 1: O_tΣ_t =
+  // C_Kᵀ (F Σ_t) from FS_ (F Σ_t when m.k > 0), Y_t from Y_ when t < T-1.
+  void next_carry(int t, const Measurement<Real, NK>& m, bool transition) {
+    const int n = fixed<NK>(n_);
+    Real* JS = JS_;
+    fill(JS, std::size_t(n) * n, Real(0));
+    for (int a = 0; a < m.k; ++a) {
+      const Real* c = m.C_row(a);
+      const Real* fs = FS_ + std::size_t(a) * n;
+      for (int i = 0; i < n; ++i)
+        for (int j = 0; j < n; ++j) JS[i * n + j] += c[i] * fs[j];
+    }
+    if (transition) {
+      const Real* A = P_.At(t);
+      for (int r = 0; r < n; ++r)
+        for (int i = 0; i < n; ++i) {
+          const Real ari = A[r * n + i];
+          for (int j = 0; j < n; ++j) JS[i * n + j] -= ari * Y_[r * n + j];
+        }
     }
   }
 
@@ -435,7 +550,7 @@ class LoglikPart {
   PatternCache<Real>* cache_;
   int n_ = 0, p_ = 0;
   std::vector<Real> buf_;
-  Real *Qinv_, *Lq_, *E1_, *E2_, *AS_, *AX_, *T1_, *T2_, *Rinv_, *Lr_, *Fk_, *FS_, *r_, *e_, *sigma_, *cs_;
+  Real *Qinv_, *Lq_, *E1_, *E2_, *AS_, *AX_, *T1_, *T2_, *Y_, *JS_, *Rinv_, *Lr_, *Fk_, *FS_, *r_, *e_, *sigma_, *cs_;
   Real* qi_;  // 1/q of a diagonal Q_t
   Real ldQ_;
   double val_ = 0;  // −J − ½ Σ log-dets over this part's steps, in double
@@ -502,14 +617,16 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
   {
     std::vector<std::thread> threads;
     threads.reserve(std::size_t(parts - 1));
-    std::vector<Real> S_hi(n2), S_lo(n2);
+    std::vector<Real> S_hi(n2), S_lo(n2), X_hi(n2), X_lo(n2);
     auto noop = [](int, const Real*, const Real*, const Real*) {};
     for (int k = parts - 2; k >= 0; --k) {  // recursion only, down to the next boundary
       const int hi = bound(k + 2), lo = bound(k + 1);
-      band_range<Real, NK>(F, T, n, lo, hi, S_hi.data(), S_lo.data(), noop);
+      band_range<Real, NK>(F, T, n, lo, hi, S_hi.data(), S_lo.data(), noop, X_lo.data());
       std::swap(S_hi, S_lo);
-      threads.emplace_back([&, k, S = S_hi]() {
+      std::swap(X_hi, X_lo);
+      threads.emplace_back([&, k, lo, S = S_hi, Xb = X_hi]() {
         LoglikPart<Real, NK>& w = *part[k];
+        w.prime(lo, S.data(), lo < T - 1 ? Xb.data() : static_cast<const Real*>(nullptr));
         band_range<Real, NK>(F, T, n, bound(k), bound(k + 1), S.data(), static_cast<Real*>(nullptr),
                              [&w](int t, const Real* St, const Real* X, const Real* Sn) { w.visit(t, St, X, Sn); });
       });
@@ -536,21 +653,10 @@ void loglik_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, c
   val -= 0.5 * double(n_obs - n_flat) * std::log(2.0 * M_PI);
   *value = static_cast<Real>(val);
 
-  // Q⁻¹ on the raw transition sums (fixed Q), in double; Q̄ is
-  // ½ Q⁻¹ (Σ E2 − (T−1) Q) Q⁻¹, made exactly symmetric here (a diagonal Q̄:
-  // ½ (Σ (W_t)_ii − (T−1) q_i) / q_i²).
-  if (raw && T > 1) {
-    if (G.Q.present())
-      for (std::size_t i = 0; i < P.Q_item(); ++i) G.Q.acc[i] -= double(T - 1) * P.Q[i];
-    apply_qinv_to_sums(G, Qinv, n);
-    if (G.Q.present() && G.Q.diagonal) {
-      for (int i = 0; i < n; ++i) G.Q.acc[i] *= 0.5;
-    } else if (G.Q.present()) {
-      double* S = G.Q.acc;
-      for (int i = 0; i < n; ++i)
-        for (int j = 0; j <= i; ++j) S[i * n + j] = S[j * n + i] = 0.25 * (S[j * n + i] + S[i * n + j]);
-    }
-  }
+  // Q⁻¹ on the raw transition sums of Ā and b̄ (fixed Q), in double. Q̄'s
+  // terms carry their Q⁻¹ already (and are symmetric; a diagonal Q̄ holds
+  // the diagonal only).
+  if (raw && T > 1) apply_qinv_to_sums(G, Qinv, n, /*with_Q=*/false);
   sinks.finish(/*symmetrise_Q=*/false);
 }
 

@@ -852,24 +852,25 @@ inline void qinv_times(double* out, const Real* Qinv, const double* S, int n, in
 
 // Transition sums of a time-invariant Q, accumulated raw, get Q⁻¹ applied
 // once at the end (in double): Ā ← Q⁻¹Ā, b̄ ← Q⁻¹b̄, and Q̄ ← Q⁻¹(Q⁻¹Q̄)ᵀ =
-// Q⁻¹Q̄ᵀQ⁻¹ (Q⁻¹ symmetric), the transpose of Q⁻¹Q̄Q⁻¹: both callers keep
-// only its symmetric part. Each only where present and accumulated. A
-// diagonal Q̄ (Q given by its variances; Qinv is then diag(1/q)) holds the
+// Q⁻¹Q̄ᵀQ⁻¹ (Q⁻¹ symmetric), the transpose of Q⁻¹Q̄Q⁻¹: gradients_one keeps
+// only its symmetric part. Each only where present and accumulated; Q̄ not
+// with with_Q false (the log-likelihood pass, whose Q̄ terms hold Q⁻¹ already).
+// A diagonal Q̄ (Q given by its variances; Qinv is then diag(1/q)) holds the
 // diagonal of the sum: Q̄_ii ← Q̄_ii / q_i².
 template <class Real>
-void apply_qinv_to_sums(Gradients<Real>& G, const Real* Qinv, int n) {
+void apply_qinv_to_sums(Gradients<Real>& G, const Real* Qinv, int n, bool with_Q = true) {
   const std::size_t n2 = std::size_t(n) * n;
   std::vector<double> tmp(n2), tmp2(n2);
   if (G.A.present() && !G.A.tv) {
     qinv_times(tmp.data(), Qinv, G.A.acc, n, n);
     std::copy(tmp.begin(), tmp.end(), G.A.acc);
   }
-  if (G.Q.present() && !G.Q.tv && G.Q.diagonal) {
+  if (with_Q && G.Q.present() && !G.Q.tv && G.Q.diagonal) {
     for (int i = 0; i < n; ++i) {
       const double qi = Qinv[i * n + i];
       G.Q.acc[i] *= qi * qi;
     }
-  } else if (G.Q.present() && !G.Q.tv) {
+  } else if (with_Q && G.Q.present() && !G.Q.tv) {
     qinv_times(tmp.data(), Qinv, G.Q.acc, n, n);
     for (int i = 0; i < n; ++i)
       for (int j = 0; j < n; ++j) tmp2[i * n + j] = tmp[j * n + i];
