@@ -119,17 +119,31 @@ def band_tangent(sweep, factor, S_diag, S_sub, dD, dS):
     # The solve's inputs: a custom_linear_solve never differentiates its solve
     # (its derivative comes from the matvec), so nothing is lost by stopping them.
     fixed = lax.stop_gradient((factor, S_diag, S_sub))
+    T = S_diag.shape[0]
+
+    # One array (diagonal blocks, then sub blocks): JAX transposes a
+    # custom_linear_solve only when every part of its right-hand side is
+    # linear, and a part that does not depend on the differentiated inputs
+    # (dH_{t+1,t} when only R moves) is not.
+    def split(v):
+        return v[:T], v[T:]
+
+    def join(parts):
+        return jnp.concatenate(parts, axis=0)
 
     def solve(_, dH):
-        return sweep(*fixed, *dH)
+        return join(sweep(*fixed, *split(dH)))
 
     def transpose_solve(_, ct):
-        X_diag, X_sub = sweep(*fixed, ct[0], 0.5 * ct[1])
-        return X_diag, 2 * X_sub
+        ct_diag, ct_sub = split(ct)
+        X_diag, X_sub = sweep(*fixed, ct_diag, 0.5 * ct_sub)
+        return join((X_diag, 2 * X_sub))
 
-    # Σ itself (not stopped) in the matvec: it carries Σ's tangent to the next order.
-    return lax.custom_linear_solve(lambda X: precision_tangent(S_diag, S_sub, *X), (dD, dS), solve,
-                                   transpose_solve)
+    def matvec(X):
+        # Σ itself (not stopped) here: it carries Σ's tangent to the next order.
+        return join(precision_tangent(S_diag, S_sub, *split(X)))
+
+    return split(lax.custom_linear_solve(matvec, join((dD, dS)), solve, transpose_solve))
 
 
 def precision_tangent(S_diag, S_sub, X_diag, X_sub):
