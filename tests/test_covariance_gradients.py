@@ -290,3 +290,21 @@ def test_gradient_of_one_field(rng, method, field):
     new, old = grad(covariance_band.posterior_band), grad(covariance_band.taped_posterior_band)
     scale = max(1.0, float(np.max(np.abs(old))))
     assert float(np.max(np.abs(new - old))) / scale < 1e-10
+
+
+@pytest.mark.parametrize("tv, diag_R, prior", [(False, False, True), (True, False, False), (True, True, True)])
+def test_precision_tangent_of_model_equals_jvp_of_assembly(rng, tv, diag_R, prior):
+    """The hand-split tangent of H (dynamics by JAX, measurements by formula) equals JAX's JVP of ``assemble``."""
+    from kalmax._src.normal_equations import assemble
+
+    T, n, p = 6, 3, 3
+    _, y, mask, model = _problem(rng, T, n, p, tv=tv, diag_R=diag_R)
+    if not prior:
+        model = model.replace(x0_cov=None, x0_mean=None)
+    cm, w = _canonical(model, y, mask)
+    cm = cm.replace(b=None, d=None, x0_mean=None)
+    direction = jax.tree_util.tree_map(lambda a: jnp.asarray(rng.standard_normal(a.shape)), cm)
+    got = covariance_band.precision_tangent_of_model(cm, w, direction, T)
+    _, want = jax.jvp(lambda m: tuple(assemble(m, jnp.zeros_like(y), w)[:2]), (cm,), (direction,))
+    np.testing.assert_allclose(0.5 * (got[0] + np.swapaxes(got[0], -1, -2)), want[0], atol=1e-10)
+    np.testing.assert_allclose(got[1], want[1], atol=1e-10)
