@@ -169,3 +169,90 @@ def selected_inverse(factor: BlockFactor):
     diag = jnp.concatenate([diags, last[None]], axis=0)
     nan_if_bad = jnp.where(factor.ok, 1.0, jnp.nan).astype(L.dtype)
     return diag * nan_if_bad, subs * nan_if_bad
+
+
+def _sym(X):
+    return 0.5 * (X + mT(X))
+
+
+def _congruence_recurrence(N, c, reverse: bool):
+    """Y_t = c_t + N_{t-1} Y_{t-1} N_{t-1}ᵀ (forward) or Y_t = c_t + N_tᵀ Y_{t+1} N_t (reverse).
+
+    N: (T-1, n, n) with N[t] = N_{t+1} of :func:`selected_inverse_tangent`;
+    c: (T, n, n). One n³ congruence per step: the only sequential part of the
+    band tangent (everything else there is vectorised over t).
+    """
+    if reverse:
+        def step(Y_next, xs):
+            N_t, c_t = xs
+            Y = c_t + mT(N_t) @ Y_next @ N_t
+            return Y, Y
+
+        _, Ys = lax.scan(step, c[-1], (N, c[:-1]), reverse=True)
+        return jnp.concatenate([Ys, c[-1][None]], axis=0)
+
+    def step(Y_prev, xs):
+        N_prev, c_t = xs
+        Y = c_t + N_prev @ Y_prev @ mT(N_prev)
+        return Y, Y
+
+    _, Ys = lax.scan(step, c[0], (N, c[1:]))
+    return jnp.concatenate([c[0][None], Ys], axis=0)
+
+
+def selected_inverse_tangent(factor: BlockFactor, S_diag, S_sub, dH_diag, dH_sub):
+    r"""The tangent of :func:`selected_inverse` in the direction dH: −band(Σ dH Σ), O(T n³).
+
+    Σ = H⁻¹ and dΣ = −Σ dH Σ; only its block-tridiagonal band is formed, by
+    differentiating the factorisation and the selected inversion by hand, with
+    the stored factor and the already computed band of Σ (no tape).
+
+    Write P_t = (L_t L_tᵀ)⁻¹ (the inverse Schur complement S_t⁻¹) and
+    N_{t+1} = M_{t+1} L_t⁻¹ = H_{t+1,t} P_t. Then
+
+        S_t = H_tt − N_t H_{t,t-1}ᵀ          (S_t = L_t L_tᵀ)
+        Σ_{t+1,t} = −Σ_{t+1} N_{t+1},   Σ_tt = P_t + N_{t+1}ᵀ Σ_{t+1} N_{t+1}
+
+    and their tangents, with dP_t = −P_t dS_t P_t:
+
+        dS_0 = dH_00,
+        dS_t = dH_tt − dH_{t,t-1} N_tᵀ − N_t dH_{t,t-1}ᵀ + N_t dS_{t-1} N_tᵀ        (forward)
+        dN_{t+1} = dH_{t+1,t} P_t − N_{t+1} dS_t P_t
+        dΣ_{T-1} = dP_{T-1},
+        dΣ_tt = dP_t − dN_{t+1}ᵀ Σ_{t+1,t} − Σ_{t+1,t}ᵀ dN_{t+1} + N_{t+1}ᵀ dΣ_{t+1} N_{t+1}   (backward)
+        dΣ_{t+1,t} = −dΣ_{t+1} N_{t+1} − Σ_{t+1} dN_{t+1}
+
+    Both recursions are congruences plus terms known beforehand, so each
+    sweep carries one n×n block and costs two n³ products per step; the rest
+    is vectorised over t.
+
+    Args:
+        factor: the BlockFactor of H.
+        S_diag, S_sub: the band of Σ (``selected_inverse(factor)``).
+        dH_diag: (T, n, n) tangent of H_tt (its symmetric part is used, as the
+            factorisation reads only that); dH_sub: (T-1, n, n) tangent of
+            H_{t+1,t}.
+
+    Returns:
+        (dΣ_tt (T, n, n), dΣ_{t+1,t} (T-1, n, n)); NaN when the factor failed.
+    """
+    L, M = factor.L, factor.M
+    n = L.shape[-1]
+    Linv = lsolve(L, jnp.broadcast_to(jnp.eye(n, dtype=L.dtype), L.shape))
+    P = mT(Linv) @ Linv
+    nan_if_bad = jnp.where(factor.ok, 1.0, jnp.nan).astype(L.dtype)
+    dD = _sym(dH_diag)
+    if L.shape[0] == 1:  # no coupling: dΣ_00 = dP_0
+        return _sym(-P @ dD @ P) * nan_if_bad, jnp.zeros((0, n, n), L.dtype)
+    N = M @ Linv[:-1]  # N[t] = N_{t+1}
+    E = dH_sub @ mT(N)  # dH_{t+1,t} N_{t+1}ᵀ
+    c = dD.at[1:].add(-(E + mT(E)))
+    dS = _congruence_recurrence(N, c, reverse=False)
+    G = dS @ P  # dS_t P_t
+    dP = _sym(-P @ G)
+    dN = dH_sub @ P[:-1] - N @ G[:-1]
+    F = mT(dN) @ S_sub
+    c2 = dP.at[:-1].add(-(F + mT(F)))
+    dSig = _sym(_congruence_recurrence(N, c2, reverse=True))
+    dSig_sub = -(dSig[1:] @ N) - S_diag[1:] @ dN
+    return dSig * nan_if_bad, dSig_sub * nan_if_bad

@@ -195,3 +195,52 @@ def weighted_residuals(model: StateSpace, y, w, x):
         d0 = x[0] - (0 if model.x0_mean is None else model.x0_mean)
         P0d = lsolve_vec(Lp, lsolve_vec(Lp, d0), transpose=True)
     return Se, Qr, P0d
+
+
+def dynamics_blocks(model: StateSpace, T: int):
+    """The transition and prior terms of H: (diag (T, n, n), sub (T-1, n, n) or (n, n)).
+
+    H = (these) + blockdiag(C_tᵀS_tC_t), as in :func:`assemble`, which forms
+    the same terms together with the right-hand side. Separate so that the
+    covariances' derivatives (``covariance_band.py``) can differentiate the
+    cheap n×n part by JAX and the measurement part by
+    :func:`measurement_precision_tangent`.
+    """
+    n = model.A.shape[-1]
+    Lq = chol(model.Q)
+    Wi = lsolve(Lq, jnp.eye(n, dtype=model.Q.dtype))
+    WA = lsolve(Lq, model.A)
+    diag = jnp.zeros((T, n, n), model.A.dtype).at[:-1].add(gram(WA)).at[1:].add(gram(Wi))
+    if model.x0_cov is not None:
+        diag = diag.at[0].add(_prior_terms(model)[0])
+    return diag, -cross(Wi, WA)
+
+
+def measurement_precision_tangent(model: StateSpace, w, dC, dR):
+    r"""The tangent of the measurement blocks C_tᵀS_tC_t of H: (T, n, n), linear in (dC, dR).
+
+    With R̃_t as in :func:`masked_measurement_cov` and U_t = R̃_t⁻¹ (w_t∘C_t)
+    (rows of missing entries are zero), C_tᵀS_tC_t = (w∘C_t)ᵀ R̃_t⁻¹ (w∘C_t), so
+
+        d(C_tᵀS_tC_t) = (w∘dC_t)ᵀU_t + U_tᵀ(w∘dC_t) − U_tᵀ dR̃_t U_t,   dR̃_t = (w wᵀ)∘dR_t.
+
+    U_t depends on the model only, so the transpose of this map (the
+    pull-back of a cotangent D̄_t: C̄_t = w∘U_t(D̄_t + D̄_tᵀ), R̄_t =
+    −(w wᵀ)∘(U_t D̄_t U_tᵀ)) is a few batched products: no reverse pass
+    through the per-step Cholesky factors of R̃_t.
+
+    Args:
+        model: canonicalised; R dense or a ``DiagonalNoise``.
+        w: (T, p) 0/1 mask.
+        dC: tangent of C, shaped like C; dR: tangent of R, shaped like R
+            (a ``DiagonalNoise`` of variance tangents when R is one).
+    """
+    Lr = chol(masked_measurement_cov(model.R, w))
+    wC = w[:, :, None] * model.C
+    U = lsolve(Lr, lsolve(Lr, wC), transpose=True)  # (T, p, n)
+    E = jnp.einsum("tpi,tpj->tij", w[:, :, None] * dC, U)
+    if isinstance(model.R, DiagonalNoise):
+        dRU = (w * dR.variances)[:, :, None] * U
+    else:
+        dRU = (w[:, :, None] * w[:, None, :] * (0.5 * (dR + jnp.swapaxes(dR, -1, -2)))) @ U  # R̃ is read symmetrised
+    return E + jnp.swapaxes(E, -1, -2) - jnp.einsum("tpi,tpj->tij", U, dRU)

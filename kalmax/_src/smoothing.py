@@ -11,7 +11,8 @@ import jax.numpy as jnp
 from .checks import canonicalize
 from .linalg import matvec
 from .model import StateSpace
-from .primitive import band_inverse, get_backend, smoothed_means
+from . import covariance_band
+from .primitive import smoothed_means
 
 
 class Smoothed(NamedTuple):
@@ -58,16 +59,18 @@ def smooth(model: StateSpace, y, mask=None, *, covariances: bool = False, method
         covariances: also return the marginal posterior covariances
             (``state_cov``, ``measurement_cov``, ``state_cross_cov``), from a
             selected inversion of the normal-equation matrix: O(T n³). They are
-            differentiable (by ordinary reverse-mode AD through the
-            factorisation and the selected-inversion recursion).
+            differentiable in any mode and order, by a tangent sweep pair over
+            the same factor (``covariance_band.py``): no tape through time.
         method: solver backend for the means: ``"auto"`` (the compiled
             kernel ``"cpu"`` on CPU when it is built, ``"parallel"`` on
             GPU/TPU), ``"scan"`` (the portable pure-JAX block-Cholesky scan),
             ``"cpu"``, ``"parallel"`` (block cyclic reduction, O(log T) depth)
             or ``"scan-recompute"`` (re-factorises in the backward pass instead
             of storing factors). Covariances use the same backend's factor
-            and band inverse (a compiled sweep with ``"cpu"``); their
-            gradients come from the JAX selected-inversion recursion.
+            and band inverse (a compiled sweep with ``"cpu"``), and their
+            derivatives the band tangent (compiled with ``"cpu"``, two
+            ``lax.scan`` sweeps with ``"scan"``; the other backends
+            differentiate their band inverse directly).
 
     Returns:
         :class:`Smoothed` with ``states`` (T, n) and ``measurements`` (T, p).
@@ -112,16 +115,12 @@ def posterior_band(model: StateSpace, w, method: str = "auto"):
     """(Cov[x_t | y] (T, n, n), Cov[x_{t+1}, x_t | y] (T-1, n, n)) for a canonical problem.
 
     The posterior precision H does not depend on the values of y, only on
-    which entries are observed, so the right-hand side is irrelevant here.
-    The backend's own factor and band inverse are used (one compiled sweep
-    each with ``method="cpu"``); the result is NaN when the factor failed.
+    which entries are observed. The backend's own factor and band inverse
+    are used (one compiled sweep each with ``method="cpu"``), and the
+    derivatives come from ``covariance_band.py`` (two sweeps over the same
+    factor, no tape through time); the result is NaN when the factor failed.
     """
-    backend = get_backend(method)
-    # Offsets and the prior mean do not enter H: drop them, so that a
-    # non-finite one cannot fail the factor through the accuracy check.
-    model = model.replace(b=None, d=None, x0_mean=None)
-    _, factor = backend.forward(model, jnp.zeros(w.shape, w.dtype), w)
-    return band_inverse(backend, factor)
+    return covariance_band.posterior_band(model, w, method)
 
 
 def prediction_error(model: StateSpace, y, mask, holdout, *, method: str = "auto"):

@@ -42,6 +42,10 @@ class Backend(NamedTuple):
     band_inverse: ``(factor) -> (Σ_tt (T, n, n), Σ_{t+1,t} (T-1, n, n))``,
         the band of H⁻¹. None: the factor is a ``blocktri.BlockFactor`` and
         ``blocktri.selected_inverse`` applies.
+    band_tangent: ``(factor, Σ_tt, Σ_{t+1,t}, dH_tt, dH_{t+1,t}) ->
+        (dΣ_tt, dΣ_{t+1,t})``, the band of −Σ dH Σ from the factor and the
+        band of Σ (``covariance_band.py``: the covariances' derivatives,
+        without a tape). None: JAX differentiates ``band_inverse`` itself.
     gradients: ``(model, y, w, x, factor, x_bar) -> (model_bar, y_bar)``,
         the whole implicit-function backward pass in one call (a fused
         compiled kernel), kept as a reference and for callers that want it;
@@ -68,6 +72,7 @@ class Backend(NamedTuple):
     adjoint: Callable
     logdet: Callable
     band_inverse: Optional[Callable] = None
+    band_tangent: Optional[Callable] = None
     gradients: Optional[Callable] = None
     log_likelihood: Optional[Callable] = None
     float32_in_double: bool = False

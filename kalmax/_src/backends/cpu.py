@@ -1,7 +1,7 @@
 r"""The compiled CPU backend of the smoothing primitive (``method="cpu"``).
 
 A C++ library (sources in ``kalmax/_src/cpu``, built by ``pip install``)
-provides five XLA FFI targets:
+provides six XLA FFI targets:
 
 * ``kalmax_cpu_forward``: assembles the block-tridiagonal normal equations
   H x = g from the model, the measurements and the mask, factorises H = L Lᵀ
@@ -20,6 +20,11 @@ provides five XLA FFI targets:
   ``cpu/smoother.h``; the JAX path (``stationarity_pairing``) is the oracle.
 * ``kalmax_cpu_band``: the band of H⁻¹ (Σ_tt, Σ_{t+1,t}) by selected
   inversion over the stored factor (``cpu/likelihood.h``).
+* ``kalmax_cpu_band_tangent``: −band(Σ dH Σ) for a band direction dH, from
+  the stored factor and the band of Σ, in one forward and one backward sweep
+  (``cpu/band_tangent.h``): the derivatives of the covariances, in both
+  directions (``covariance_band.py``); ``blocktri.selected_inverse_tangent``
+  is the oracle.
 * ``kalmax_cpu_loglik``: log p(y) and its gradient w.r.t. every input, in one
   pass over the stored factor (``cpu/likelihood.h``).
 
@@ -132,6 +137,7 @@ _TARGETS = {
     "kalmax_cpu_solve": "KalmaxCpuSolve",
     "kalmax_cpu_gradients": "KalmaxCpuGradients",
     "kalmax_cpu_band": "KalmaxCpuBand",
+    "kalmax_cpu_band_tangent": "KalmaxCpuBandTangent",
     "kalmax_cpu_loglik": "KalmaxCpuLoglik",
 }
 # The custom-call targets an exported program names (``exporting.kernel_export_checks``).
@@ -330,6 +336,23 @@ def _jax_band(factor: CpuFactor):
     return blocktri.selected_inverse(block_factor(factor))
 
 
+def band_tangent(factor: CpuFactor, S_diag, S_sub, dH_diag, dH_sub):
+    """(dΣ_tt, dΣ_{t+1,t}) = −band(Σ dH Σ): one compiled forward and backward sweep over the factor.
+
+    Linear in (dH_diag, dH_sub); ``covariance_band.py`` gives it its
+    transpose and its derivatives, so it needs no derivative rule. float32
+    operands are computed in double like every other kernel pass.
+    """
+    dt = factor.Linv.dtype
+    ops = tuple(a.astype(dt) for a in (S_diag, S_sub, dH_diag, dH_sub))
+    out = (_sds(S_diag.shape[-3:], dt), _sds(S_sub.shape[-3:], dt))
+    return _call("kalmax_cpu_band_tangent", out, *_factor_operands(factor), *ops)
+
+
+def _jax_band_tangent(factor: CpuFactor, S_diag, S_sub, dH_diag, dH_sub):
+    return blocktri.selected_inverse_tangent(block_factor(factor), S_diag, S_sub, dH_diag, dH_sub)
+
+
 def _kernel_gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
     ops = _operands(model, y, w)
     out = tuple(_sds(o.shape, o.dtype) for o in ops[:9])
@@ -432,7 +455,9 @@ def gradients(model: StateSpace, y, w, x, factor: CpuFactor, x_bar):
 def band_inverse(factor: CpuFactor):
     """(Σ_tt (T, n, n), Σ_{t+1,t} (T-1, n, n)): the band of H⁻¹, one compiled backward sweep.
 
-    Derivatives (covariance gradients) come from the JAX selected inversion.
+    Covariance derivatives come from :func:`band_tangent` (``covariance_band.py``);
+    the JVP declared here (the JAX selected inversion's) serves only callers
+    that differentiate this function directly (``taped_posterior_band``).
     """
     return _band(factor)
 
@@ -446,12 +471,13 @@ def log_likelihood(model: StateSpace, y, w, x, factor: CpuFactor):
     return _kernel_log_likelihood(model, y, w, x, factor)
 
 
-CPU = Backend(forward=forward, adjoint=adjoint, logdet=logdet, band_inverse=band_inverse, gradients=gradients,
-              log_likelihood=log_likelihood, float32_in_double=True)
+CPU = Backend(forward=forward, adjoint=adjoint, logdet=logdet, band_inverse=band_inverse, band_tangent=band_tangent,
+              gradients=gradients, log_likelihood=log_likelihood, float32_in_double=True)
 
 # Same kernels, but the backward pass goes through the adjoint solve plus JAX
 # autodiff of the stationarity pairing: the reference for `gradients`.
-CPU_JAX_GRADIENTS = CPU._replace(gradients=None, log_likelihood=None, band_inverse=_jax_band)
+CPU_JAX_GRADIENTS = CPU._replace(gradients=None, log_likelihood=None, band_inverse=_jax_band,
+                                 band_tangent=_jax_band_tangent)
 
 LOAD_ERROR: Optional[str] = _load()
 

@@ -18,4 +18,5 @@ def forward(model, y, w):
     return x, factor
 
 
-SCAN = Backend(forward=forward, adjoint=blocktri.solve, logdet=blocktri.logdet)
+SCAN = Backend(forward=forward, adjoint=blocktri.solve, logdet=blocktri.logdet,
+               band_tangent=blocktri.selected_inverse_tangent)

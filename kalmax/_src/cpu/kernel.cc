@@ -1,6 +1,6 @@
 // XLA FFI handlers (CPU) for the smoothing primitive of kalmax.
 //
-// Five targets, each with one handler templated over the floating-point type
+// Six targets, each with one handler templated over the floating-point type
 // and dispatched on the buffers' dtype at run time (float32, float64):
 //
 //   kalmax_cpu_forward    (A, Q, b, C, R, d, m0, P0, y, w) -> (x, Linv, M, subT, ok, lo, x_lo)
@@ -8,6 +8,8 @@
 //   kalmax_cpu_gradients  (Linv, M, subT, ok, lo, x, x_lo, x̄, A, Q, b, C, R, d, m0, P0, y, w)
 //                         -> (Ā, Q̄, b̄, C̄, R̄, d̄, m̄0, P̄0, ȳ)
 //   kalmax_cpu_band       (Linv, M, subT, ok, lo) -> (Σ_tt, Σ_{t+1,t})      band of H⁻¹
+//   kalmax_cpu_band_tangent (Linv, M, subT, ok, lo, Σ_tt, Σ_{t+1,t}, dH_tt, dH_{t+1,t})
+//                         -> (dΣ_tt, dΣ_{t+1,t})                       −band(Σ dH Σ)
 //   kalmax_cpu_loglik     (Linv, M, subT, ok, lo, x, x_lo, A, Q, b, C, R, d, m0, P0, y, w)
 //                         -> (log p(y), its gradients w.r.t. A ... y)
 // where lo = (Linv_lo, M_lo, subT_lo), the low parts of a float32 factor, and
@@ -59,6 +61,7 @@
 #include <utility>
 #include <vector>
 
+#include "band_tangent.h"
 #include "likelihood.h"
 #include "smoother.h"
 #include "widen.h"
@@ -858,6 +861,69 @@ ffi::Error BandImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer subT, 
   });
 }
 
+// The band operands of the band tangent: Σ_tt and dH_tt (T, n, n), Σ_{t+1,t}
+// and dH_{t+1,t} (T-1, n, n), each with the batch dimensions of the outputs
+// (or 1) and the outputs' dtype.
+ffi::Error describe_band(const ffi::AnyBuffer& buf, const char* name, const BatchShape& bs, int64_t blocks, int n,
+                         ffi::DataType dt, Operand* op) {
+  KALMAX_RETURN_IF_ERROR(describe(buf, name, bs, op));
+  if (op->core != std::vector<int64_t>{blocks, n, n} || buf.element_type() != dt)
+    return invalid(std::string(name) + " has shape " + shape_str(op->core) + ", expected " +
+                   shape_str({blocks, n, n}) + " and the dtype of the factor");
+  return ffi::Error::Success();
+}
+
+ffi::Error BandTangentImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi::Buffer<ffi::S32> ok,
+                           ffi::AnyBuffer Linv_lo, ffi::AnyBuffer M_lo, ffi::AnyBuffer subT_lo,
+                           ffi::AnyBuffer S_diag, ffi::AnyBuffer S_sub, ffi::AnyBuffer dH_diag,
+                           ffi::AnyBuffer dH_sub, ffi::Result<ffi::AnyBuffer> diag,
+                           ffi::Result<ffi::AnyBuffer> sub) {
+  BatchShape bs;
+  KALMAX_RETURN_IF_ERROR(batch_from_output(diag->dimensions(), 3, &bs));
+  const auto dd = diag->dimensions();
+  const int T = static_cast<int>(dd[dd.size() - 3]);
+  const int n = static_cast<int>(dd[dd.size() - 1]);
+  const int64_t T1 = T > 0 ? T - 1 : 0;
+  const ffi::DataType dt = diag->element_type();
+  FactorOperands fo;
+  KALMAX_RETURN_IF_ERROR(describe_factor({Linv, M, subT, ok, Linv_lo, M_lo, subT_lo}, bs, T, n, dt, &fo));
+  Operand oSd, oSs, oDd, oDs;
+  KALMAX_RETURN_IF_ERROR(describe_band(S_diag, "S_diag", bs, T, n, dt, &oSd));
+  KALMAX_RETURN_IF_ERROR(describe_band(S_sub, "S_sub", bs, T1, n, dt, &oSs));
+  KALMAX_RETURN_IF_ERROR(describe_band(dH_diag, "dH_diag", bs, T, n, dt, &oDd));
+  KALMAX_RETURN_IF_ERROR(describe_band(dH_sub, "dH_sub", bs, T1, n, dt, &oDs));
+  if (static_cast<int64_t>(sub->element_count()) != bs.count * T1 * n * n || sub->element_type() != dt)
+    return invalid("band tangent outputs have unexpected sizes");
+  advise_huge_pages(diag);
+  advise_huge_pages(sub);
+  return with_real_type(dt, [&](auto real) {
+    using Real = decltype(real);
+    return with_state_size(n, [&](auto nk) {
+      constexpr int NK = decltype(nk)::value;
+      const std::size_t n2 = std::size_t(n) * n;
+      Real* Do = static_cast<Real*>(diag->untyped_data());
+      Real* So = static_cast<Real*>(sub->untyped_data());
+      const std::size_t Dn = std::size_t(T) * n2, Sn = std::size_t(T1) * n2;
+      for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
+        WideFactor wf;
+        Scratch dbuf, sbuf, sd_buf, ss_buf, hd_buf, hs_buf;
+        for (int64_t bi = begin; bi < end; ++bi) {
+          double* dd_ = double_out(Do + bi * Dn, dbuf, Dn);
+          double* sd_ = double_out(So + bi * Sn, sbuf, Sn);
+          band_tangent_one<double, NK>(fo.view<Real>(bs, bi, wf), fo.ok_at(bs, bi), T, n,
+                                       as_double(at<Real>(oSd, bs, bi), sd_buf, Dn),
+                                       as_double(at<Real>(oSs, bs, bi), ss_buf, Sn),
+                                       as_double(at<Real>(oDd, bs, bi), hd_buf, Dn),
+                                       as_double(at<Real>(oDs, bs, bi), hs_buf, Sn), dd_, sd_);
+          finish(dd_, Do + bi * Dn, Dn);
+          finish(sd_, So + bi * Sn, Sn);
+        }
+      });
+      return ffi::Error::Success();
+    });
+  });
+}
+
 ffi::Error LoglikImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer subT, ffi::Buffer<ffi::S32> ok,
                       ffi::AnyBuffer Linv_lo, ffi::AnyBuffer M_lo, ffi::AnyBuffer subT_lo, ffi::AnyBuffer x,
                       ffi::AnyBuffer x_lo, ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b,
@@ -938,11 +1004,18 @@ auto bind_buffers(B&& binding) {
 }
 
 // The stored factor (FactorBuffers: Linv, M, subT, ok, Linv_lo, M_lo,
-// subT_lo), as the solve, gradient, band and log-likelihood take it.
+// subT_lo), as the solve, gradient, band, band tangent and log-likelihood take it.
 template <class B>
 auto bind_factor(B&& binding) {
   return bind_buffers<false, 3>(
       bind_buffers<false, 3>(std::forward<B>(binding)).template Arg<ffi::Buffer<ffi::S32>>());
+}
+
+// A band of the block-tridiagonal matrices of the band tangent: its diagonal
+// blocks (T, n, n) and sub-diagonal blocks (T-1, n, n), Σ's first, then dH's.
+template <class B>
+auto bind_band_pair(B&& binding) {
+  return bind_buffers<false, 2>(std::forward<B>(binding));
 }
 
 // The model and the data (ModelOperands: A, Q, b, C, R, d, x0_mean, x0_cov, y, w).
@@ -1001,6 +1074,12 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuBand, kc::BandImpl,
                               kc::bind_factor(ffi::Ffi::Bind())
                                   .Ret<ffi::AnyBuffer>()    // Σ_tt
                                   .Ret<ffi::AnyBuffer>());  // Σ_{t+1,t}
+
+// (factor, Σ band, dH band) -> dΣ band
+XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuBandTangent, kc::BandTangentImpl,
+                              kc::bind_band_pair(kc::bind_band_pair(kc::bind_factor(ffi::Ffi::Bind())))
+                                  .Ret<ffi::AnyBuffer>()    // dΣ_tt
+                                  .Ret<ffi::AnyBuffer>());  // dΣ_{t+1,t}
 
 // (factor, x, x_lo, model) -> (log p(y), model gradients)
 XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuLoglik, kc::LoglikImpl,
