@@ -308,3 +308,27 @@ def test_precision_tangent_of_model_equals_jvp_of_assembly(rng, tv, diag_R, prio
     _, want = jax.jvp(lambda m: tuple(assemble(m, jnp.zeros_like(y), w)[:2]), (cm,), (direction,))
     np.testing.assert_allclose(0.5 * (got[0] + np.swapaxes(got[0], -1, -2)), want[0], atol=1e-10)
     np.testing.assert_allclose(got[1], want[1], atol=1e-10)
+
+
+@pytest.mark.parametrize("method", ["cpu", "scan"])
+def test_diagonal_process_noise_gives_the_dense_routes_gradient(method):
+    # A per-step diagonal Q passed as variances (kept diagonal by the kernel)
+    # against the same Q as dense matrices: the variances' gradient is the
+    # diagonal of the dense one (chain rule through Q = diag(q)).
+    if not registry.is_available(method):
+        pytest.skip(f"{method} not available")
+    rng = np.random.default_rng(1)
+    T, n, p = 30, 3, 2
+    A, C = 0.9 * np.eye(n), rng.standard_normal((p, n))
+    q = 0.1 * np.exp(0.3 * rng.standard_normal((T - 1, n)))
+    y, mask = rng.standard_normal((T, p)), rng.random((T, p)) > 0.2
+
+    def loss(Q):
+        m = kx.StateSpace(A=A, C=C, Q=Q, R=0.5 * np.eye(p), x0_cov=np.eye(n))
+        s = kx.smooth(m, y, mask, covariances=True, method=method)
+        return jnp.sum(jnp.trace(s.state_cov, axis1=1, axis2=2)) + jnp.sum(s.state_cross_cov ** 2)
+
+    v_diag, g_diag = jax.value_and_grad(lambda qv: loss(kx.DiagonalNoise(qv)))(jnp.asarray(q))
+    v_dense, g_dense = jax.value_and_grad(loss)(jnp.asarray(np.stack([np.diag(r) for r in q])))
+    np.testing.assert_allclose(v_diag, v_dense, rtol=1e-12)
+    np.testing.assert_allclose(g_diag, np.diagonal(np.asarray(g_dense), axis1=1, axis2=2), rtol=1e-9, atol=1e-12)

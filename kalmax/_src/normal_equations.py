@@ -207,8 +207,8 @@ def dynamics_blocks(model: StateSpace, T: int):
     :func:`measurement_precision_tangent`.
     """
     n = model.A.shape[-1]
-    Lq = chol(model.Q)
-    Wi = lsolve(Lq, jnp.eye(n, dtype=model.Q.dtype))
+    Lq = chol(transition_cov(model))  # a diagonal Q (DiagonalNoise) as its dense matrix
+    Wi = lsolve(Lq, jnp.eye(n, dtype=model.A.dtype))
     WA = lsolve(Lq, model.A)
     diag = jnp.zeros((T, n, n), model.A.dtype).at[:-1].add(gram(WA)).at[1:].add(gram(Wi))
     if model.x0_cov is not None:
