@@ -68,6 +68,22 @@ def _long_double_derivatives(g, E, md=None):
     return np.asarray(R, np.float64), np.asarray(np.abs(R - D[1]), np.float64)
 
 
+def _compare(method, grad_Q, directions, ref):
+    """kalmax's Q-gradient along each direction against the long-double derivative."""
+    B = len(CASES)
+    for name, E in directions.items():
+        R, correction = ref[name]
+        assert np.all(correction <= 1e-6 * np.abs(R)), (name, correction / np.abs(R))  # reference converged
+        terms = (grad_Q * E).reshape(B, -1)
+        got = terms.sum(axis=1)
+        if name == "log q":
+            err, tol = np.abs(got - R) / np.abs(R), 2e-3
+        else:
+            typical = np.abs(terms).sum(axis=1) / np.sqrt(terms.shape[1])
+            err, tol = np.abs(got - R) / np.maximum(np.abs(R), typical), 1e-3
+        assert np.all(err <= tol), (method, name, err)
+
+
 @pytest.fixture(scope="module")
 def problem():
     if not LONG_DOUBLE:
@@ -85,18 +101,7 @@ def test_loglik_gradient_wrt_a_small_process_noise(problem, method):
     y = np.where(g.mask, g.y, 0.0)
     grad = jax.jit(jax.vmap(jax.grad(lambda m, yy, k: kx.log_likelihood(m, yy, k, method=method))))
     Qbar = np.asarray(grad(model, y, g.mask).Q)
-    B = len(CASES)
-    for name, E in directions.items():
-        R, correction = ref[name]
-        assert np.all(correction <= 1e-6 * np.abs(R)), (name, correction / np.abs(R))  # reference converged
-        terms = (Qbar * E).reshape(B, -1)
-        got = terms.sum(axis=1)
-        if name == "log q":
-            err, tol = np.abs(got - R) / np.abs(R), 2e-3
-        else:
-            typical = np.abs(terms).sum(axis=1) / np.sqrt(terms.shape[1])
-            err, tol = np.abs(got - R) / np.maximum(np.abs(R), typical), 1e-3
-        assert np.all(err <= tol), (method, name, err)
+    _compare(method, Qbar, directions, ref)
 
 
 def _diag(v):
@@ -124,15 +129,4 @@ def test_loglik_gradient_wrt_small_diagonal_process_noise(diagonal_problem, meth
     grad = jax.jit(jax.vmap(jax.grad(lambda m, yy, k: kx.log_likelihood(m, yy, k, method=method))))
     qbar = np.asarray(grad(model, y, g.mask).Q.variances)
     assert qbar.shape == q.shape
-    B = len(CASES)
-    for name, E in directions.items():
-        R, correction = ref[name]
-        assert np.all(correction <= 1e-6 * np.abs(R)), (name, correction / np.abs(R))  # reference converged
-        terms = (qbar * E).reshape(B, -1)
-        got = terms.sum(axis=1)
-        if name == "log q":
-            err, tol = np.abs(got - R) / np.abs(R), 2e-3
-        else:
-            typical = np.abs(terms).sum(axis=1) / np.sqrt(terms.shape[1])
-            err, tol = np.abs(got - R) / np.maximum(np.abs(R), typical), 1e-3
-        assert np.all(err <= tol), (method, name, err)
+    _compare(method, qbar, directions, ref)
