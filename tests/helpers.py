@@ -1,4 +1,4 @@
-"""Small test helpers: convert reference model dicts to kalmax models."""
+"""Small test helpers: convert reference model dicts to kalmax models; central differences."""
 
 import numpy as np
 
@@ -22,3 +22,14 @@ def to_dict(model):
     g = lambda a: None if a is None else np.asarray(a, np.float64)  # noqa: E731
     return dict(A=g(model.A), C=g(model.C), Q=g(model.Q), R=g(model.R), b=g(model.b),
                 d=g(model.d), m0=g(model.x0_mean), P0=g(model.x0_cov))
+
+
+def central_differences(f, v, h=1e-6):
+    """Gradient of a scalar NumPy function of an array by central differences (common practice)."""
+    v = np.asarray(v, np.float64)
+    g = np.zeros(v.shape)
+    for i in np.ndindex(v.shape):
+        e = np.zeros(v.shape)
+        e[i] = h
+        g[i] = (f(v + e) - f(v - e)) / (2 * h)
+    return g

@@ -32,6 +32,7 @@ import pytest
 
 import kalmax as kx
 import reference as ref
+from helpers import central_differences
 from kalmax._src.backends.registry import available
 
 pytestmark = pytest.mark.skipif("cpu" not in available(), reason="the compiled kernel is not built")
@@ -77,16 +78,6 @@ def _diag(g):
     return jnp.diagonal(g, axis1=-2, axis2=-1)
 
 
-def _fd(f, v, h=1e-6):
-    """Central finite differences of a scalar NumPy function of an array (common practice)."""
-    g = np.zeros(v.shape)
-    for i in np.ndindex(v.shape):
-        e = np.zeros(v.shape)
-        e[i] = h
-        g[i] = (f(v + e) - f(v - e)) / (2 * h)
-    return g
-
-
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
 @pytest.mark.parametrize("r_dense", [False, True], ids=["R_diagonal", "R_dense"])
 @pytest.mark.parametrize("q_case", Q_CASES)
@@ -124,8 +115,8 @@ def test_variances_match_the_dense_route_and_the_references(q_case, r_dense, dty
         def ref_ll(q):
             return ref.dense_log_likelihood(dict(md, Q=q[..., :, None] * np.eye(N)), y0, mask)
 
-        np.testing.assert_allclose(gl_d, _fd(ref_loss, qv), rtol=1e-5, atol=1e-7)
-        np.testing.assert_allclose(gll_d, _fd(ref_ll, qv), rtol=1e-5, atol=1e-6)
+        np.testing.assert_allclose(gl_d, central_differences(ref_loss, qv), rtol=1e-5, atol=1e-7)
+        np.testing.assert_allclose(gll_d, central_differences(ref_ll, qv), rtol=1e-5, atol=1e-6)
 
 
 def _call_signature(text, target):

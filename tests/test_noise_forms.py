@@ -29,6 +29,7 @@ import pytest
 
 import kalmax as kx
 import reference as ref
+from helpers import central_differences
 from kalmax._src.backends.registry import available
 
 SLOW = bool(os.environ.get("KALMAX_SLOW"))
@@ -85,17 +86,6 @@ def _model(md, q, r, dtype=np.float64):
                          x0_mean=c(md["m0"]), x0_cov=c(md["P0"]))
 
 
-def _fd(f, v, h=1e-6):
-    """Central finite differences of a scalar NumPy function of an array (common practice)."""
-    v = np.asarray(v, np.float64)
-    g = np.zeros(v.shape)
-    for i in np.ndindex(v.shape):
-        e = np.zeros(v.shape)
-        e[i] = h
-        g[i] = (f(v + e) - f(v - e)) / (2 * h)
-    return g
-
-
 @pytest.mark.parametrize("method, combo", FORM_CASES)
 def test_forms_match_the_dense_reference(method, combo):
     """Smoothed means and covariances, log p(y) and its gradient w.r.t. the
@@ -121,8 +111,8 @@ def test_forms_match_the_dense_reference(method, combo):
     def ref_loglik(q=qv, r=rv):
         return ref.dense_log_likelihood(dict(md, Q=_dense(q_form, q, N), R=_dense(r_form, r, P)), y0, mask)
 
-    np.testing.assert_allclose(gq, _fd(lambda q: ref_loglik(q=q), qv), rtol=1e-5, atol=1e-6)
-    np.testing.assert_allclose(gr, _fd(lambda r: ref_loglik(r=r), rv), rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(gq, central_differences(lambda q: ref_loglik(q=q), qv), rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(gr, central_differences(lambda r: ref_loglik(r=r), rv), rtol=1e-5, atol=1e-6)
 
 
 @pytest.mark.parametrize("method", FAST_BACKENDS)
@@ -141,7 +131,7 @@ def test_gradient_of_smoothed_means_wrt_per_step_variances(method):
 
     g = jax.jit(jax.grad(loss))(jnp.asarray(rv))
     ref_loss = lambda r: float(np.sum(weights * ref.rts_smoother(dict(md, R=_dense("diag_tv", r, P)), y0, mask)[0]))  # noqa: E731
-    np.testing.assert_allclose(g, _fd(ref_loss, rv), rtol=1e-5, atol=1e-7)
+    np.testing.assert_allclose(g, central_differences(ref_loss, rv), rtol=1e-5, atol=1e-7)
 
 
 @pytest.mark.parametrize("method", FAST_BACKENDS)
@@ -160,7 +150,7 @@ def test_vmap_over_a_batch_of_per_step_diagonals(method):
     for b in range(logvar.shape[0]):
         ref_ll = lambda lv: ref.dense_log_likelihood(dict(md, Q=_dense("diag", qv, N), R=_dense("diag_tv", np.exp(lv), P)), y0, mask)  # noqa: E731
         np.testing.assert_allclose(vals[b], ref_ll(logvar[b]), rtol=1e-10)
-        np.testing.assert_allclose(grads[b], _fd(ref_ll, logvar[b]), rtol=1e-5, atol=1e-6)
+        np.testing.assert_allclose(grads[b], central_differences(ref_ll, logvar[b]), rtol=1e-5, atol=1e-6)
 
 
 @pytest.mark.parametrize("method", [m for m in ("cpu", "scan") if m in BACKENDS])
@@ -181,7 +171,7 @@ def test_float32(method):
     assert states.dtype == jnp.float32 and g.dtype == jnp.float32
     np.testing.assert_allclose(states, ref.rts_smoother(md, np.where(mask, y, 0.0), mask)[0], rtol=1e-3, atol=1e-3)
     ref_ll = lambda r: ref.dense_log_likelihood(dict(md, R=_dense("diag_tv", r, P)), np.where(mask, y, 0.0), mask)  # noqa: E731
-    np.testing.assert_allclose(g, _fd(ref_ll, rv), rtol=2e-3, atol=2e-3)
+    np.testing.assert_allclose(g, central_differences(ref_ll, rv), rtol=2e-3, atol=2e-3)
 
 
 def test_the_wrapper_not_the_shape_decides():
