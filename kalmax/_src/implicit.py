@@ -43,6 +43,7 @@ from functools import partial
 import jax
 import jax.numpy as jnp
 import numpy as np
+from jax._src import dispatch  # prim_requires_devices_during_lowering: bottom of the module
 from jax.extend.core import Primitive
 from jax.interpreters import ad, batching, mlir
 
@@ -195,3 +196,11 @@ ad.primitive_jvps[_tangent_p] = _jvp
 ad.primitive_transposes[_tangent_p] = _transpose
 batching.primitive_batchers[_tangent_p] = _batch
 mlir.register_lowering(_tangent_p, mlir.lower_fun(_evaluate, multiple_results=False))
+
+# Evaluated under vmap, the tangent lowers to batched kernel calls, which are
+# custom_partitioning calls (``kernel_calls.py``) and need the devices while
+# lowering. JAX gives a jit its devices only when it sees such a primitive in
+# the program, and it cannot see inside this one's lowering: say so here
+# (without it, jit of jacfwd of the means, or of a Hessian in y, failed in
+# custom_partitioning's lowering). JAX has no public hook for this.
+dispatch.prim_requires_devices_during_lowering.add(_tangent_p)

@@ -72,13 +72,48 @@ Derivative rules: a ``custom_jvp`` whose tangent is ⟨∇ log p, dθ⟩, the
 gradient coming from the same pass as the value (one compiled call on the
 kernel). JAX transposes that into reverse mode (the cotangent times the
 gradient: no extra work), and forward mode (jvp, jacfwd) costs one gradient.
-Second derivatives differentiate ``value_and_gradient``: plain JAX on a
-pure-JAX backend's factor, and the portable route for the fused kernel.
+Second derivatives differentiate ``value_and_gradient``. On a pure-JAX
+backend that is plain JAX on its factor (JAX differentiates the factorisation
+and the selected inversion through their recursions over time).
+
+Second derivatives on the compiled kernel, without a tape through time. The
+gradient above is a vectorised function of θ, of x* and of the band of Σ:
+
+    g(θ) = G(θ, x*(θ), Σ(θ)),
+
+G = the envelope partials of the explicit terms at x*, plus the cotangent
+−½Σ on H's band pulled back through the assembly, with Q̄ in the form without
+cancellation (``_gradient``). Its tangent needs dx* and the band of dΣ only,
+and both have tangent rules that stay on the stored factor: dx* = H⁻¹r(dθ),
+one solve (``primitive.py``), and dΣ = −band(Σ dH Σ), one band-tangent sweep
+pair (``covariance_band.py``). The fused value and gradient therefore get the
+rule
+
+    d log p = ⟨g, dθ⟩,   dg = jvp of θ ↦ G(θ, x*(θ), band Σ(θ)),
+
+and x*, Σ are recomputed inside by those two differentiable functions (the
+value and g themselves stay the kernel's). The band suffices: dH is block
+tridiagonal, so only Σ's band meets it. Check on the log-determinant part,
+⟨g_H, dθ⟩ = −½ tr(Σ dH) with dH = ∂_θH·dθ: in a second direction dθ',
+
+    d'(−½ tr(Σ dH)) = −½ tr(dΣ' dH) − ½ tr(Σ d'dH)
+                    = ½ tr(Σ dH' Σ dH) − ½ tr(Σ d²H[dθ, dθ'])
+
+with dΣ' = −Σ dH' Σ (d(H⁻¹) = −H⁻¹ dH H⁻¹): the first term is the pull-back
+of −½dΣ' (its band) through the assembly, the second the derivative of the
+pull-back itself at fixed Σ, which is exactly what the JVP of G computes from
+the band tangent and JAX's second derivative of the assembly. The explicit
+terms at x*: their partial ∂_θE(θ, x*) moves with θ and with x*, and
+dx* is the implicit tangent (the envelope theorem removed ∂_xE only, not
+∂_x∂_θE). Symmetric in dθ, dθ' (tr(AB) = tr(BA)), as a Hessian must be.
+Reverse mode (jacrev of the gradient) is JAX's transpose of the same rule:
+the solve and the band tangent are ``custom_linear_solve`` calls that
+transpose into the same kernel sweeps. Each further order comes from the
+same rules (x* and Σ are computed by the functions that own them).
 """
 
 from __future__ import annotations
 
-import functools
 import math
 from functools import partial
 
@@ -91,7 +126,8 @@ from .linalg import chol, gram, lsolve, mT
 from .model import StateSpace
 from .noise import DiagonalNoise
 from .normal_equations import assemble, masked_measurement_cov, objective, transition_cov, weighted_residuals
-from .primitive import band_inverse, get_backend, resolve_method
+from .covariance_band import posterior_band
+from .primitive import band_inverse, get_backend, resolve_method, smoothed_means
 
 
 def _logdet_spd(S):
@@ -121,6 +157,12 @@ def _log_likelihood(model, y, w, method):
     return value_and_gradient(model, y, w, method)[0]
 
 
+def _pairing(model_bar, y_bar, model_dot, y_dot):
+    """⟨∇ log p, dθ⟩: the gradient paired with a tangent of (model, y)."""
+    pairs = jax.tree_util.tree_leaves(jax.tree_util.tree_map(lambda g, d: jnp.sum(g * d), model_bar, model_dot))
+    return sum(pairs, jnp.sum(y_bar * y_dot))
+
+
 @_log_likelihood.defjvp
 def _log_likelihood_jvp(method, primals, tangents):
     # d log p = ⟨∇ log p, dθ⟩ with the gradient of the same pass (module
@@ -131,48 +173,78 @@ def _log_likelihood_jvp(method, primals, tangents):
     model, y, w = primals
     model_dot, y_dot, _ = tangents
     val, model_bar, y_bar = value_and_gradient(model, y, w, method)
-    pairs = jax.tree_util.tree_leaves(jax.tree_util.tree_map(lambda g, d: jnp.sum(g * d), model_bar, model_dot))
-    return val, sum(pairs, jnp.sum(y_bar * y_dot))
+    return val, _pairing(model_bar, y_bar, model_dot, y_dot)
 
 
-def _portable_value_and_grad(model, y, w):
-    """log p(y) and its gradient by the pure-JAX route (the oracle of compiled ones)."""
-    return value_and_gradient(model, y, w, "scan")
+@partial(jax.custom_jvp, nondiff_argnums=(3,))
+def _fused_value_and_gradient(model, y, w, method):
+    """The backend's one-pass (log p(y), model_bar, y_bar); derivatives: module docstring."""
+    backend = get_backend(method)
+    x, factor = backend.forward(model, y, w)
+    return backend.log_likelihood(model, y, w, x, factor)
 
 
-@functools.lru_cache(maxsize=None)  # one wrapper per backend, not one per trace
-def _fused(backend):
-    """backend.log_likelihood, given the portable route's derivatives for second-order AD.
+@_fused_value_and_gradient.defjvp
+def _fused_value_and_gradient_jvp(method, primals, tangents):
+    # The value's tangent is ⟨∇ log p, dθ⟩; the gradient's is the JVP of the
+    # gradient as a function of (θ, x*(θ), band of Σ(θ)), whose two implicit
+    # inputs bring their own tape-free tangent rules (module docstring).
+    # Calling this function itself for the primal keeps every higher order on
+    # the same rule.
+    model, y, w = primals
+    model_dot, y_dot, _ = tangents
+    val, model_bar, y_bar = _fused_value_and_gradient(model, y, w, method)
+    _, (model_bar_dot, y_bar_dot) = jax.jvp(lambda m, yy: _gradient_from_solution(m, yy, w, method),
+                                            (model, y), (model_dot, y_dot))
+    return (val, model_bar, y_bar), (_pairing(model_bar, y_bar, model_dot, y_dot), model_bar_dot, y_bar_dot)
 
-    x and the factor are functions of (model, y, w), which the portable route
-    recomputes, so their tangents reach the result through model and y alone.
+
+def _gradient_from_solution(model, y, w, method):
+    """(model_bar, y_bar) from x* and the band of Σ as differentiable functions of the model.
+
+    x* by the smoothing primitive (tangent: one solve with the stored factor),
+    the band by ``covariance_band`` (tangent: one band-tangent sweep pair over
+    the stored factor); neither tapes through time.
     """
-    fn = jax.custom_jvp(backend.log_likelihood)
-    fn.defjvp(lambda primals, tangents: jax.jvp(_portable_value_and_grad, primals[:3], tangents[:3]))
-    return fn
+    x = smoothed_means(model, y, w, method)
+    band = posterior_band(model, w, method)
+    return _gradient(model, y, w, x, band)[1:]
 
 
 def value_and_gradient(model, y, w, method):
     """(log p(y), model_bar, y_bar): the value and its gradient, differentiable again.
 
     A backend with a fused ``log_likelihood`` (the compiled kernel) returns
-    both from one pass over its factor. Otherwise the gradient is formed as in
-    the module docstring (envelope theorem for −J, selected inversion for
-    −½ log|H|) from plain JAX operations on the backend's factor; those are
-    differentiated directly for second derivatives (the forward pass of a
-    pure-JAX backend, and so its factor, is differentiable: ``accuracy.refine``).
+    both from one pass over its factor, and its second derivatives come from
+    the tangents of x* and of Σ's band (module docstring). Otherwise the
+    gradient is formed as in the module docstring (envelope theorem for −J,
+    selected inversion for −½ log|H|) from plain JAX operations on the
+    backend's factor; those are differentiated directly for second
+    derivatives (the forward pass of a pure-JAX backend, and so its factor,
+    is differentiable: ``accuracy.refine``).
     """
     backend = get_backend(method)
-    x, factor = backend.forward(model, y, w)
     if backend.log_likelihood is not None:
-        return _fused(backend)(model, y, w, x, factor)
-    explicit, pull = jax.vjp(lambda m, yy: _explicit_terms(m, yy, w, x), model, y)
+        return _fused_value_and_gradient(model, y, w, method)
+    x, factor = backend.forward(model, y, w)
+    explicit, model_bar, y_bar = _gradient(model, y, w, x, band_inverse(backend, factor))
     val = explicit - 0.5 * backend.logdet(factor)
     val = jnp.where(jnp.all(jnp.isfinite(x)), val, jnp.nan)
-    model_bar, y_bar = pull(jnp.ones_like(val))
+    return val, model_bar, y_bar
+
+
+def _gradient(model, y, w, x, band):
+    """(the explicit terms at x, model_bar, y_bar) from x = x* and band = (Σ_tt, Σ_{t+1,t}).
+
+    Plain, vectorised JAX (no recursion over time): the envelope-theorem
+    partials of the explicit terms, the cotangent −½ Σ on H's band pulled
+    back through the assembly, and Q̄ in the form without cancellation.
+    """
+    explicit, pull = jax.vjp(lambda m, yy: _explicit_terms(m, yy, w, x), model, y)
+    model_bar, y_bar = pull(jnp.ones_like(explicit))
 
     # −½ log|H|: the cotangent −½ Σ on H's band, pulled back through the assembly.
-    S_diag, S_sub = band_inverse(backend, factor)
+    S_diag, S_sub = band
     blocks = lambda m: assemble(m, y, w)[:2]  # noqa: E731  (diag, sub) of H; y does not enter H
     (diag, sub), pull_h = jax.vjp(blocks, model)
     sub_bar = -(S_sub if sub.ndim == 3 else jnp.sum(S_sub, axis=0))
@@ -180,7 +252,7 @@ def value_and_gradient(model, y, w, method):
     model_bar = jax.tree_util.tree_map(jnp.add, model_bar, model_bar_h)
     if y.shape[0] > 1:  # Q̄ in the form without cancellation (module docstring)
         model_bar = model_bar.replace(Q=_process_noise_gradient(model, y, w, x, S_diag, S_sub))
-    return val, model_bar, y_bar
+    return explicit, model_bar, y_bar
 
 
 def _process_noise_gradient(model: StateSpace, y, w, x, S_diag, S_sub):

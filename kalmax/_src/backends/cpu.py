@@ -465,8 +465,9 @@ def band_inverse(factor: CpuFactor):
 def log_likelihood(model: StateSpace, y, w, x, factor: CpuFactor):
     """(log p(y), model_bar, y_bar): the value and its full gradient in one compiled sweep.
 
-    No derivative rule of its own: ``likelihood.py`` supplies the portable
-    route's derivatives for second-order AD.
+    No derivative rule of its own: ``likelihood.py`` differentiates the
+    gradient through the tangents of x* (kernel solves) and of the band of
+    Σ (kernel band-tangent sweeps) for second-order AD.
     """
     return _kernel_log_likelihood(model, y, w, x, factor)
 
