@@ -31,9 +31,7 @@ FIELDS = ("A", "Q", "C", "R", "x0_cov")
 
 
 def _model_dict(rng, T, n, p, *, tv, prior=True):
-    md = ref.random_model(rng, n, p, T, time_varying=tv, full_R=True, prior=prior)
-    md["A"] = np.asarray(md["A"]) * 1.0
-    return md
+    return ref.random_model(rng, n, p, T, time_varying=tv, full_R=True, prior=prior)
 
 
 def _diag_noise(M):
@@ -43,9 +41,9 @@ def _diag_noise(M):
 def _canonical(md, y, mask, *, diag_Q, diag_R, dtype=np.float64, prior=True):
     model = to_model(md, dtype, prior=prior)
     if diag_Q:
-        model = model.replace(Q=kx.DiagonalNoise(np.diagonal(np.asarray(model.Q), axis1=-2, axis2=-1).copy()))
+        model = model.replace(Q=_diag_noise(model.Q))
     if diag_R:
-        model = model.replace(R=kx.DiagonalNoise(np.diagonal(np.asarray(model.R), axis1=-2, axis2=-1).copy()))
+        model = model.replace(R=_diag_noise(model.R))
     model, y, mask, _, _ = canonicalize(model, jnp.asarray(y, dtype), jnp.asarray(mask),
                                         keep_diagonal_R=True, keep_diagonal_Q=True)
     return model.replace(b=None, d=None, x0_mean=None), y, mask.astype(y.dtype)
@@ -81,6 +79,15 @@ def _jax_pullback(model, y, w, D_bar, S_bar):
 def _leaf(g, field):
     v = getattr(g, field)
     return np.asarray(v.variances if isinstance(v, kx.DiagonalNoise) else v)
+
+
+def _assert_fields_close(got, want, tol, dtype=None):
+    """Max abs difference per field, relative to max(1, max |want|), below tol; got's dtype checked when given."""
+    for field in FIELDS:
+        a, b = _leaf(got, field), _leaf(want, field)
+        if dtype is not None:
+            assert a.dtype == dtype, field
+        assert float(np.max(np.abs(a - b))) / max(1.0, float(np.max(np.abs(b)))) < tol, field
 
 
 CASES = [  # (tv, diag_Q, diag_R, prior, missing)
@@ -163,11 +170,8 @@ def test_pullback_float32_computes_in_double(rng):
     g32 = cpu_backend.band_pullback(cm32, w32, D_bar.astype(jnp.float32), S_bar.astype(jnp.float32))
     want = _jax_pullback(cm64, y64, w64, D_bar.astype(jnp.float32).astype(jnp.float64),
                          S_bar.astype(jnp.float32).astype(jnp.float64))
-    for field in FIELDS:
-        a, b = _leaf(g32, field), _leaf(want, field)
-        assert a.dtype == np.float32
-        # Inputs rounded to float32 (relative 6e-8) and one rounding of the result.
-        assert float(np.max(np.abs(a - b))) / max(1.0, float(np.max(np.abs(b)))) < 1e-5, field
+    # Inputs rounded to float32 (relative 6e-8) and one rounding of the result.
+    _assert_fields_close(g32, want, 1e-5, np.float32)
 
 
 def test_pullback_reports_bad_shapes(rng):
@@ -226,10 +230,7 @@ def test_covariance_gradients_on_cpu_equal_jax_pullback(rng, tv, diag_Q, diag_R)
     model = _problem_model(md, diag_Q, diag_R)
     W = jnp.asarray(rng.standard_normal((T - 1, n, n)))
     grad = jax.jit(jax.grad(_loss), static_argnums=4)
-    got, want = grad(model, y, mask, W, "cpu"), grad(model, y, mask, W, "scan")
-    for field in FIELDS:
-        a, b = _leaf(got, field), _leaf(want, field)
-        assert float(np.max(np.abs(a - b))) / max(1.0, float(np.max(np.abs(b)))) < 1e-9, field
+    _assert_fields_close(grad(model, y, mask, W, "cpu"), grad(model, y, mask, W, "scan"), 1e-9)
 
 
 def test_covariance_gradients_with_diagonal_noise_match_finite_differences(rng):
@@ -266,17 +267,11 @@ def test_covariance_gradients_vmap_and_float32(rng):
     for i in range(B):
         one = jax.grad(lambda m: _loss(m, ys[i], masks[i], W, "scan"))(model) \
             if registry.is_available("scan") else grad(model, ys[i], masks[i])
-        for field in FIELDS:
-            a, b = _leaf(batched, field)[i], _leaf(one, field)
-            assert float(np.max(np.abs(a - b))) / max(1.0, float(np.max(np.abs(b)))) < 1e-9, field
+        _assert_fields_close(jax.tree_util.tree_map(lambda a: a[i], batched), one, 1e-9)
     model32 = _problem_model(md, True, False, np.float32)
     g32 = jax.jit(jax.grad(lambda m: _loss(m, ys[0].astype(jnp.float32), masks[0], W.astype(jnp.float32), "cpu")))(
         model32)
-    g64 = grad(model, ys[0], masks[0])
-    for field in FIELDS:
-        a, b = _leaf(g32, field), _leaf(g64, field)
-        assert a.dtype == np.float32
-        assert float(np.max(np.abs(a - b))) / max(1.0, float(np.max(np.abs(b)))) < 1e-4, field
+    _assert_fields_close(g32, grad(model, ys[0], masks[0]), 1e-4, np.float32)
 
 
 def test_reverse_mode_on_cpu_calls_the_pullback(rng):

@@ -14,6 +14,7 @@
 #pragma once
 
 #include <cstddef>
+#include <initializer_list>
 #include <memory>
 #include <vector>
 
@@ -38,19 +39,9 @@ class PullbackPart {
     const std::size_t n2 = std::size_t(n_) * n_, q = std::size_t(n_ > p_ ? n_ : p_);
     buf_.resize(9 * n2 + std::size_t(p_) * p_ * 2 + 2 * std::size_t(p_) * n_ + 2 * q + 2 * std::size_t(n_) + 8);
     Arena<Real> arena(buf_.data());
-    Qinv_ = arena.take(n2);
-    Lq_ = arena.take(n2);
-    V_ = arena.take(n2);
-    Vn_ = arena.take(n2);
-    X_ = arena.take(n2);
-    AV_ = arena.take(n2);
-    E_ = arena.take(n2);
-    W1_ = arena.take(n2);
-    W2_ = arena.take(n2);
-    Rinv_ = arena.take(std::size_t(p_) * p_);
-    Lr_ = arena.take(std::size_t(p_) * p_);
-    Fk_ = arena.take(std::size_t(p_) * n_);
-    FV_ = arena.take(std::size_t(p_) * n_);
+    for (Real** block : {&Qinv_, &Lq_, &V_, &Vn_, &X_, &AV_, &E_, &W1_, &W2_}) *block = arena.take(n2);
+    for (Real** block : {&Rinv_, &Lr_}) *block = arena.take(std::size_t(p_) * p_);
+    for (Real** block : {&Fk_, &FV_}) *block = arena.take(std::size_t(p_) * n_);
     zeros_ = arena.take(q);
     cs_ = arena.take(q + 1);
     qi_ = arena.take(n_);
@@ -191,17 +182,14 @@ void band_pullback_one(const Trajectory<Real>& P, const Real* Dbar, const Real* 
     sinks.fail();
     return;
   }
-  PartScratch<Real> scratch(parts, accumulator_size(n, p), cache, idx, p);
-  const bool ok = visit_in_parts<PullbackPart<Real, NK>>(T, parts, [&](int k, bool beside) {
-    const auto s = scratch.slot(k, beside);
-    return std::unique_ptr<PullbackPart<Real, NK>>(
-        new PullbackPart<Real, NK>(P, Dbar, Sbar, G, acc, s.acc, raw, Qinv, s.idx, s.cache));
-  });
+  const bool ok = visit_parts_with_scratch<PullbackPart<Real, NK>>(
+      T, parts, n, p, acc, idx, cache, [&](const typename PartScratch<Real>::Slot& s) {
+        return new PullbackPart<Real, NK>(P, Dbar, Sbar, G, acc, s.acc, raw, Qinv, s.idx, s.cache);
+      });
   if (!ok) {
     sinks.fail();
     return;
   }
-  scratch.add_into(acc);
   if (raw && T > 1) apply_qinv_to_sums(G, Qinv, n, /*with_Q=*/true);
   sinks.finish(/*symmetrise_Q=*/true);
 }
