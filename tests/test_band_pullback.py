@@ -174,12 +174,16 @@ def test_pullback_float32_computes_in_double(rng):
     _assert_fields_close(g32, want, 1e-5, np.float32)
 
 
-def test_pullback_reports_bad_shapes(rng):
-    T, n, p = 5, 2, 2
+def _small_problem(rng, T=5, n=2, p=2):
     md = _model_dict(rng, T, n, p, tv=False)
     y, mask = ref.random_data(rng, md, T, missing=0.0)
     cm, _, w = _canonical(md, y, mask, diag_Q=False, diag_R=False)
-    D_bar, S_bar = _cotangents(rng, T, n)
+    return (cm, w) + _cotangents(rng, T, n)
+
+
+def test_pullback_reports_bad_shapes(rng):
+    T, n = 5, 2
+    cm, w, D_bar, S_bar = _small_problem(rng, T, n)
     with pytest.raises(Exception, match="D_bar has shape"):
         cpu_backend.band_pullback(cm, w, jnp.zeros((T, n, n + 1)), S_bar)
     with pytest.raises(Exception, match="S_bar has shape"):
@@ -191,11 +195,7 @@ def test_pullback_reports_bad_shapes(rng):
 
 
 def test_pullback_is_nan_for_a_bad_noise(rng):
-    T, n, p = 5, 2, 2
-    md = _model_dict(rng, T, n, p, tv=False)
-    y, mask = ref.random_data(rng, md, T, missing=0.0)
-    cm, _, w = _canonical(md, y, mask, diag_Q=False, diag_R=False)
-    D_bar, S_bar = _cotangents(rng, T, n)
+    cm, w, D_bar, S_bar = _small_problem(rng)
     g = cpu_backend.band_pullback(cm.replace(R=-cm.R), w, D_bar, S_bar)
     assert all(np.all(np.isnan(_leaf(g, f))) for f in FIELDS)
 
