@@ -49,7 +49,7 @@ if not os.environ.get("KALMAX_NO_KERNEL"):
         Extension(
             "kalmax._src._cpu_kernel",
             sources=[os.path.join(CPU_DIR, "kernel.cc")],
-            depends=[os.path.join(CPU_DIR, f) for f in ("dense.h", "patterns.h", "smoother.h", "likelihood.h", "band_tangent.h", "widen.h")],
+            depends=[os.path.join(CPU_DIR, f) for f in ("dense.h", "patterns.h", "smoother.h", "likelihood.h", "band_tangent.h", "band_pullback.h", "precision_terms.h", "widen.h")],
             include_dirs=[CPU_DIR],
             extra_compile_args=compile_args,
             extra_link_args=["-pthread"],

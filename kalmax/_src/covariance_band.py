@@ -32,6 +32,22 @@ assembly's tangent (vectorised: per-step products, no reverse pass through
 the per-step Cholesky factors).
 Two sweeps over the factor, no tape, and JAX never differentiates the sweeps.
 
+The assembly's transpose by a backend (``band_pullback``, the compiled
+kernel's one pass per step). dH = L(θ)[dθ] is linear in dθ but not square,
+and ``custom_linear_solve`` wants a square map; so the map is embedded in
+one on the pair (dθ, h), flattened into one vector:
+
+    solve([u; h]) = [u; h + L u],   its inverse  matvec([u; h]) = [u; h − L u],
+    transpose     [ū; h̄] ↦ [ū + Lᵀh̄; h̄],
+
+with right-hand side [dθ; 0] and dH the second half of the result. Forward
+mode evaluates L (JAX, as without a pull-back); reverse mode evaluates only
+the transpose, i.e. the backend's pull-back of h̄ = (D̄, S̄); and the next
+order differentiates ``matvec``, which is L in JAX: d(solve)·b =
+−solve(d(matvec)(solve b)) = [0; (dL) u], the derivative of L u w.r.t. the
+model, as it should be. Backends without ``band_pullback`` keep JAX's
+transpose of L (the oracle in the tests).
+
 How JAX is told. JAX 0.10 has no public way to attach a transpose to a linear
 map, except through ``lax.custom_linear_solve``: its value is ``solve(b)``,
 its transpose is ``transpose_solve``, and its own derivative (the next order)
@@ -73,6 +89,7 @@ from __future__ import annotations
 from functools import partial
 
 import jax
+from jax.flatten_util import ravel_pytree
 import jax.numpy as jnp
 from jax import lax
 
@@ -106,9 +123,13 @@ def _band_jvp(method, primals, tangents):
     # The function itself, so that Σ's tangent at the next order comes from this rule too.
     (S_diag, S_sub), factor = _band(model, w, method)
     T, n = S_diag.shape[0], S_diag.shape[-1]
-    dD, dS = precision_tangent_of_model(model, w, model_dot, T)
-    dS = jnp.broadcast_to(dS, (max(T - 1, 0), n, n))  # time-invariant transition: one block
-    dSigma = band_tangent(get_backend(method).band_tangent, factor, S_diag, S_sub, dD, dS)
+    backend = get_backend(method)
+    if backend.band_pullback is None:
+        dD, dS = precision_tangent_of_model(model, w, model_dot, T)
+        dS = jnp.broadcast_to(dS, (max(T - 1, 0), n, n))  # time-invariant transition: one block
+    else:
+        dD, dS = precision_tangent_with_pullback(backend.band_pullback, model, w, model_dot, T)
+    dSigma = band_tangent(backend.band_tangent, factor, S_diag, S_sub, dD, dS)
     return ((S_diag, S_sub), factor), (dSigma, _zero_tangents(factor))
 
 
@@ -125,6 +146,47 @@ def precision_tangent_of_model(model: StateSpace, w, model_dot, T: int):
     dyn = lambda *v: dynamics_blocks(model.replace(**dict(zip(names, v))), T)  # noqa: E731
     _, (dD, dS) = jax.jvp(dyn, tuple(getattr(model, f) for f in names), tuple(getattr(model_dot, f) for f in names))
     return dD + measurement_precision_tangent(model, w, model_dot.C, model_dot.R), dS
+
+
+# The fields H depends on (the offsets and the prior mean do not enter it).
+_PRECISION_FIELDS = ("A", "Q", "C", "R", "x0_cov")
+
+
+def precision_tangent_with_pullback(pullback, model: StateSpace, w, model_dot, T: int):
+    """dH as :func:`precision_tangent_of_model` (full (T-1, n, n) sub blocks), transposed by ``pullback``.
+
+    pullback: a backend's ``band_pullback``, ``(model, w, D̄, S̄) -> model_bar``,
+    used as the transpose of dθ ↦ dH (module docstring: the embedding in a
+    square ``custom_linear_solve``). Never differentiated itself.
+    """
+    n = model.A.shape[-1]
+    names = [f for f in _PRECISION_FIELDS if getattr(model, f) is not None]
+    u0, unravel = ravel_pytree([getattr(model_dot, f) for f in names])
+    m = u0.shape[0]
+    size_D, size_S = T * n * n, max(T - 1, 0) * n * n
+    fixed = lax.stop_gradient(model)
+
+    def tangent(mdl, u):  # L u, flattened
+        dD, dS = precision_tangent_of_model(mdl, w, model_dot.replace(**dict(zip(names, unravel(u)))), T)
+        dS = jnp.broadcast_to(dS, (max(T - 1, 0), n, n))
+        return jnp.concatenate([dD.reshape(-1), dS.reshape(-1)])
+
+    def solve(_, v):
+        return jnp.concatenate([v[:m], v[m:] + tangent(fixed, v[:m])])
+
+    def matvec(v):  # the model itself (not stopped): it carries the next order
+        return jnp.concatenate([v[:m], v[m:] - tangent(model, v[:m])])
+
+    def transpose_solve(_, ct):
+        D_bar = ct[m:m + size_D].reshape(T, n, n)
+        S_bar = ct[m + size_D:].reshape(max(T - 1, 0), n, n)
+        bar = pullback(fixed, w, D_bar, S_bar)
+        u_bar, _ = ravel_pytree([getattr(bar, f) for f in names])
+        return jnp.concatenate([ct[:m] + u_bar.astype(ct.dtype), ct[m:]])
+
+    rhs = jnp.concatenate([u0, jnp.zeros(size_D + size_S, u0.dtype)])
+    x = lax.custom_linear_solve(matvec, rhs, solve, transpose_solve)
+    return x[m:m + size_D].reshape(T, n, n), x[m + size_D:].reshape(max(T - 1, 0), n, n)
 
 
 def band_tangent(sweep, factor, S_diag, S_sub, dD, dS):

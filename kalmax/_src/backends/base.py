@@ -46,6 +46,11 @@ class Backend(NamedTuple):
         (dΣ_tt, dΣ_{t+1,t})``, the band of −Σ dH Σ from the factor and the
         band of Σ (``covariance_band.py``: the covariances' derivatives,
         without a tape). None: JAX differentiates ``band_inverse`` itself.
+    band_pullback: ``(model, w, D̄ (T, n, n), S̄ (T-1, n, n)) -> model_bar``,
+        a cotangent on the blocks of H (D̄ on H_tt, S̄ on H_{t+1,t}) pulled
+        back to the model (A, Q, C, R, x0_cov; the other fields None): the
+        last step of the covariances' reverse mode (a compiled kernel).
+        None: JAX's VJP of the assembly (``covariance_band.py``).
     gradients: ``(model, y, w, x, factor, x_bar) -> (model_bar, y_bar)``,
         the whole implicit-function backward pass in one call (a fused
         compiled kernel), kept as a reference and for callers that want it;
@@ -73,6 +78,7 @@ class Backend(NamedTuple):
     logdet: Callable
     band_inverse: Optional[Callable] = None
     band_tangent: Optional[Callable] = None
+    band_pullback: Optional[Callable] = None
     gradients: Optional[Callable] = None
     log_likelihood: Optional[Callable] = None
     float32_in_double: bool = False

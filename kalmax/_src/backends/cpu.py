@@ -1,7 +1,7 @@
 r"""The compiled CPU backend of the smoothing primitive (``method="cpu"``).
 
 A C++ library (sources in ``kalmax/_src/cpu``, built by ``pip install``)
-provides six XLA FFI targets:
+provides seven XLA FFI targets:
 
 * ``kalmax_cpu_forward``: assembles the block-tridiagonal normal equations
   H x = g from the model, the measurements and the mask, factorises H = L Lᵀ
@@ -27,6 +27,12 @@ provides six XLA FFI targets:
   is the oracle.
 * ``kalmax_cpu_loglik``: log p(y) and its gradient w.r.t. every input, in one
   pass over the stored factor (``cpu/likelihood.h``).
+* ``kalmax_cpu_band_pullback``: a cotangent on the blocks of H pulled back to
+  the model (A, Q, C, R, x0_cov), per step, no factor needed
+  (``cpu/band_pullback.h``, terms shared with the log-likelihood pass in
+  ``cpu/precision_terms.h``): the last step of the covariances' reverse mode;
+  JAX's VJP of ``normal_equations.dynamics_blocks`` and
+  ``measurement_precision_tangent`` is the oracle.
 
 The numerical settings of the forward pass (pivot tolerance, trusted error,
 refinement steps, stall ratio) come from ``tolerances.py`` and travel as FFI
@@ -139,6 +145,7 @@ _TARGETS = {
     "kalmax_cpu_band": "KalmaxCpuBand",
     "kalmax_cpu_band_tangent": "KalmaxCpuBandTangent",
     "kalmax_cpu_loglik": "KalmaxCpuLoglik",
+    "kalmax_cpu_band_pullback": "KalmaxCpuBandPullback",
 }
 # The custom-call targets an exported program names (``exporting.kernel_export_checks``).
 FFI_TARGETS = tuple(_TARGETS)
@@ -349,6 +356,25 @@ def band_tangent(factor: CpuFactor, S_diag, S_sub, dH_diag, dH_sub):
     return _call("kalmax_cpu_band_tangent", out, *_factor_operands(factor), *ops)
 
 
+def band_pullback(model: StateSpace, w, D_bar, S_bar):
+    """The model's cotangent for a cotangent (D̄ (T, n, n), S̄ (T-1, n, n)) on H's blocks, one compiled pass.
+
+    Returns a StateSpace with A, Q, C, R (in the model's own forms: a
+    DiagonalNoise of the variances' cotangents) and x0_cov (None for a flat
+    prior); the offsets and the prior mean, which H does not depend on, are
+    None. Linear in (D̄, S̄); ``covariance_band.py`` uses it as the transpose
+    of the assembly's tangent and never differentiates it. float32 in double.
+    """
+    dt = w.dtype
+    bare = model.replace(b=None, d=None, x0_mean=None)
+    ops = _operands(bare, w, w)  # w stands in for y: only its shape is read
+    out = tuple(_sds(o.shape, o.dtype) for o in ops[:9])
+    gA, gQ, _, gC, gR, _, _, gP0, _ = _call(
+        "kalmax_cpu_band_pullback", out, *ops, D_bar.astype(dt), S_bar.astype(dt), **_noise_attributes(model))
+    return StateSpace(A=gA, C=gC, Q=_as_model_form(model.Q, gQ), R=_as_model_form(model.R, gR),
+                      x0_cov=None if model.x0_cov is None else gP0)
+
+
 def _jax_band_tangent(factor: CpuFactor, S_diag, S_sub, dH_diag, dH_sub):
     return blocktri.selected_inverse_tangent(block_factor(factor), S_diag, S_sub, dH_diag, dH_sub)
 
@@ -473,12 +499,12 @@ def log_likelihood(model: StateSpace, y, w, x, factor: CpuFactor):
 
 
 CPU = Backend(forward=forward, adjoint=adjoint, logdet=logdet, band_inverse=band_inverse, band_tangent=band_tangent,
-              gradients=gradients, log_likelihood=log_likelihood, float32_in_double=True)
+              band_pullback=band_pullback, gradients=gradients, log_likelihood=log_likelihood, float32_in_double=True)
 
 # Same kernels, but the backward pass goes through the adjoint solve plus JAX
 # autodiff of the stationarity pairing: the reference for `gradients`.
 CPU_JAX_GRADIENTS = CPU._replace(gradients=None, log_likelihood=None, band_inverse=_jax_band,
-                                 band_tangent=_jax_band_tangent)
+                                 band_tangent=_jax_band_tangent, band_pullback=None)
 
 LOAD_ERROR: Optional[str] = _load()
 

@@ -1,6 +1,6 @@
 // XLA FFI handlers (CPU) for the smoothing primitive of kalmax.
 //
-// Six targets, each with one handler templated over the floating-point type
+// Seven targets, each with one handler templated over the floating-point type
 // and dispatched on the buffers' dtype at run time (float32, float64):
 //
 //   kalmax_cpu_forward    (A, Q, b, C, R, d, m0, P0, y, w) -> (x, Linv, M, subT, ok, lo, x_lo)
@@ -12,6 +12,10 @@
 //                         -> (dΣ_tt, dΣ_{t+1,t})                       −band(Σ dH Σ)
 //   kalmax_cpu_loglik     (Linv, M, subT, ok, lo, x, x_lo, A, Q, b, C, R, d, m0, P0, y, w)
 //                         -> (log p(y), its gradients w.r.t. A ... y)
+//   kalmax_cpu_band_pullback (A, Q, b, C, R, d, m0, P0, y, w, D̄, S̄)
+//                         -> (Ā, Q̄, b̄, C̄, R̄, d̄, m̄0, P̄0, ȳ)   a cotangent on H's
+//                            blocks (D̄_tt, S̄_{t+1,t}) pulled back to the model; y is
+//                            not read (only its shape), b̄, d̄, m̄0, ȳ are zero
 // where lo = (Linv_lo, M_lo, subT_lo), the low parts of a float32 factor, and
 // the forward also returns x_lo, the low part of a float32 x, which the
 // gradient and log-likelihood handlers take after x: their formulas use the
@@ -61,6 +65,7 @@
 #include <utility>
 #include <vector>
 
+#include "band_pullback.h"
 #include "band_tangent.h"
 #include "likelihood.h"
 #include "smoother.h"
@@ -980,6 +985,59 @@ ffi::Error LoglikImpl(ffi::AnyBuffer Linv, ffi::AnyBuffer M, ffi::AnyBuffer subT
   });
 }
 
+// The cotangents of the band pull-back: D̄ (T, n, n) fixes T and n; S̄ (T-1, n, n).
+ffi::Error BandPullbackImpl(ffi::AnyBuffer A, ffi::AnyBuffer Q, ffi::AnyBuffer b, ffi::AnyBuffer C,
+                            ffi::AnyBuffer R, ffi::AnyBuffer d, ffi::AnyBuffer m0, ffi::AnyBuffer P0,
+                            ffi::AnyBuffer y, ffi::AnyBuffer w, ffi::AnyBuffer Dbar, ffi::AnyBuffer Sbar,
+                            ffi::Result<ffi::AnyBuffer> gA, ffi::Result<ffi::AnyBuffer> gQ,
+                            ffi::Result<ffi::AnyBuffer> gb, ffi::Result<ffi::AnyBuffer> gC,
+                            ffi::Result<ffi::AnyBuffer> gR, ffi::Result<ffi::AnyBuffer> gd,
+                            ffi::Result<ffi::AnyBuffer> gm0, ffi::Result<ffi::AnyBuffer> gP0,
+                            ffi::Result<ffi::AnyBuffer> gy, int32_t r_diagonal, int32_t q_diagonal) {
+  BatchShape bs;
+  KALMAX_RETURN_IF_ERROR(batch_from_output(gy->dimensions(), 2, &bs));
+  const ffi::DataType dt = y.element_type();
+  Operand oD, oS;
+  KALMAX_RETURN_IF_ERROR(describe(Dbar, "D_bar", bs, &oD));
+  if (oD.core.size() != 3 || oD.core[1] != oD.core[2] || oD.core[0] < 1)
+    return invalid("D_bar has shape " + shape_str(oD.core) + ", expected (T, n, n)");
+  const int T = static_cast<int>(oD.core[0]), n = static_cast<int>(oD.core[1]);
+  KALMAX_RETURN_IF_ERROR(describe_band(Dbar, "D_bar", bs, T, n, dt, &oD));
+  KALMAX_RETURN_IF_ERROR(describe_band(Sbar, "S_bar", bs, T - 1, n, dt, &oS));
+  const ffi::AnyBuffer model[] = {A, Q, b, C, R, d, m0, P0, y, w};
+  ModelOperands mo;
+  KALMAX_RETURN_IF_ERROR(describe_model(model, bs, T, n, NoiseForms{r_diagonal, q_diagonal}, &mo));
+  ffi::Result<ffi::AnyBuffer>* const outs[] = {&gA, &gQ, &gb, &gC, &gR, &gd, &gm0, &gP0, &gy};
+  KALMAX_RETURN_IF_ERROR(prepare_gradient_outputs(outs, mo, bs, dt));
+  return with_real_type(dt, [&](auto real) {
+    using Real = decltype(real);
+    return with_state_size(n, [&](auto nk) {
+      constexpr int NK = decltype(nk)::value;
+      const int p = mo.p;
+      const std::size_t n2 = std::size_t(n) * n, Dn = std::size_t(T) * n2, Sn = std::size_t(T - 1) * n2;
+      const int parts = parts_per_trajectory(bs.count, T);
+      for_batches(bs.count, T, [&](int64_t begin, int64_t end) {
+        std::vector<double> acc(accumulator_size(n, p));
+        std::vector<int> idx(p + 1);
+        PatternCaches<double> caches(mo);
+        WideTrajectory wide_P;
+        Scratch dbuf, sbuf;
+        GradientOutputs<Real> grads(outs, mo, n);
+        for (int64_t bi = begin; bi < end; ++bi) {
+          const Trajectory<Real> P = trajectory<Real>(mo, bs, bi);
+          const Trajectory<double> W = as_double(P, wide_P);
+          Gradients<double> G = grads.bind(bi);
+          band_pullback_one<double, NK>(W, as_double(at<Real>(oD, bs, bi), dbuf, Dn),
+                                        as_double(at<Real>(oS, bs, bi), sbuf, Sn), G, acc.data(), idx.data(),
+                                        caches.get(W, P.C, P.R), parts);
+          grads.store(G);
+        }
+      });
+      return ffi::Error::Success();
+    });
+  });
+}
+
 // The operand groups that several handlers share, each bound in the order of
 // the handlers' parameters in one place.
 
@@ -1087,5 +1145,11 @@ XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuLoglik, kc::LoglikImpl,
                                                                           .Arg<ffi::AnyBuffer>()   // x
                                                                           .Arg<ffi::AnyBuffer>())  // x_lo
                                                            .Ret<ffi::AnyBuffer>())  // log p(y)
+                                  .Attr<int32_t>("r_diagonal")
+                                  .Attr<int32_t>("q_diagonal"));
+
+// (model, D̄, S̄) -> model gradients (ȳ zero): the pull-back of a cotangent on H's blocks
+XLA_FFI_DEFINE_HANDLER_SYMBOL(KalmaxCpuBandPullback, kc::BandPullbackImpl,
+                              kc::bind_model_gradients(kc::bind_band_pair(kc::bind_model(ffi::Ffi::Bind())))
                                   .Attr<int32_t>("r_diagonal")
                                   .Attr<int32_t>("q_diagonal"));

@@ -21,6 +21,9 @@
 //   C̄_t[K] = σ x_tᵀ − F Σ_t          R̄_t[K,K] = ½ (σσᵀ + F Σ_t Fᵀ − S)
 //   d̄_t[K] = σ                        ȳ_t[K] = −σ
 //   m̄_0 = P_0⁻¹ d_0                   P̄_0 = ½ P_0⁻¹ (d_0 d_0ᵀ + Σ_0 − P_0) P_0⁻¹
+// The terms in Σ are the pull-back of the cotangent −½Σ on H's blocks; they
+// are formed by the functions of precision_terms.h that the band pull-back
+// (band_pullback.h) shares, with the terms in x* and the log-dets passed in.
 // This is the same gradient as the envelope-theorem route of likelihood.py
 // (−∂_θJ at fixed x*, minus ½ tr(Σ ∂_θH), minus the normalising log-dets),
 // written per step: the −∂_θJ part gives the terms in x*, ½ tr(Σ ∂_θH) the
@@ -56,30 +59,10 @@
 #include <thread>
 #include <vector>
 
+#include "precision_terms.h"
 #include "smoother.h"
 
 namespace kalmax_cpu {
-
-// C = op(A) op(B) for n-by-n matrices (C must not alias A or B).
-template <class Real, int NK>
-inline void matmul(Real* C, const Real* A, bool ta, const Real* B, bool tb, int n_) {
-  const int n = fixed<NK>(n_);
-  for (int i = 0; i < n; ++i)
-    for (int j = 0; j < n; ++j) {
-      Real s = 0;
-      for (int r = 0; r < n; ++r) s += (ta ? A[r * n + i] : A[i * n + r]) * (tb ? B[j * n + r] : B[r * n + j]);
-      C[i * n + j] = s;
-    }
-}
-
-// Inverse of a symmetric positive-definite matrix, and its log-determinant
-// (L: its Cholesky factor; scratch: n entries).
-template <class Real, int NK>
-inline bool spd_inverse(Real* out, Real* logdet, const Real* S, int n, Real* L, Real* scratch) {
-  if (!sym_cholesky_inverse<Real, NK>(out, L, S, n, scratch)) return false;
-  *logdet = cholesky_logdet(L, fixed<NK>(n));
-  return true;
-}
 
 // The band sweep: calls visit(t, Σ_t, Σ_{t+1,t}, Σ_{t+1}) for t = T-1, ..., 0
 // (the last two null at t = T-1). All matrices n-by-n, row-major.
@@ -235,12 +218,7 @@ class LoglikPart {
     const Real *Sk, *Fm;
     Real ldR = 0;
     weights(m, &Sk, &Fm, &ldR);
-    for (int a = 0; a < m.k; ++a)  // F Σ_s
-      for (int j = 0; j < n; ++j) {
-        Real v = 0;
-        for (int c = 0; c < n; ++c) v += Fm[a * n + c] * S[c * n + j];
-        FS_[a * n + j] = v;
-      }
+    rows_times<Real, NK>(FS_, Fm, S, m.k, n);  // F Σ_s
     next_carry(s, m, X != nullptr);
   }
 
@@ -287,14 +265,7 @@ class LoglikPart {
       for (int i = 0; i < n; ++i) e[i] = dot<Real, NK>(Qinv + std::size_t(i) * n, r, n);  // Q⁻¹ r
       val -= 0.5 * double(dot<Real, NK>(r, e, n)) + 0.5 * double(ldQ_);
       // Raw sums where Q is fixed and the destination is too; Q⁻¹ applied now otherwise.
-      if (G.A.present()) {
-        if (raw && !G.A.tv) {
-          for (std::size_t i = 0; i < n2; ++i) G.A.acc[i] += E1[i];
-        } else {
-          matmul<Real, NK>(T2, Qinv, false, E1, false, n);
-          G.A.add_at(t, [&](auto* g) { for (std::size_t i = 0; i < n2; ++i) g[i] += T2[i]; });
-        }
-      }
+      add_transition_A<Real, NK>(G, t, raw, /*diag=*/false, Qinv, nullptr, E1, T2, n);
       if (G.Q.present()) {  // ½ (μμᵀ − Λ_t), μ = e (header comment)
         Real* Y = Y_;
         for (std::size_t i = 0; i < n2; ++i) T1[i] = X[i] - AS[i];
@@ -352,34 +323,10 @@ class LoglikPart {
       double je = 0;
       for (int a = 0; a < k; ++a) je += double(e[a]) * sigma[a];
       val -= 0.5 * je + 0.5 * double(ldR);
-      for (int a = 0; a < k; ++a)  // F Σ_t
-        for (int j = 0; j < n; ++j) {
-          Real s = 0;
-          for (int c = 0; c < n; ++c) s += Fm[a * n + c] * S[c * n + j];
-          FS[a * n + j] = s;
-        }
+      rows_times<Real, NK>(FS, Fm, S, k, n);  // F Σ_t
       Real* gy = G.y + std::size_t(t) * p;
       for (int a = 0; a < k; ++a) gy[K[a]] = -sigma[a];
-      G.C.add_at(t, [&](auto* g) {
-        for (int a = 0; a < k; ++a) {
-          auto* row = g + std::size_t(K[a]) * n;
-          for (int j = 0; j < n; ++j) row[j] += sigma[a] * xt[j] - FS[a * n + j];
-        }
-      });
-      if (G.R.diagonal) {  // only R̄_ii (dR = e_i e_iᵀ dr_i)
-        G.R.add_at(t, [&](auto* g) {
-          for (int a = 0; a < k; ++a) {
-            const Real fsf = dot<Real, NK>(FS + std::size_t(a) * n, Fm + std::size_t(a) * n, n);
-            g[K[a]] += Real(0.5) * (sigma[a] * sigma[a] + fsf - Sk[a * k + a]);
-          }
-        });
-      } else G.R.add_at(t, [&](auto* g) {
-        for (int a = 0; a < k; ++a)
-          for (int c = 0; c < k; ++c) {
-            const Real fsf = dot<Real, NK>(FS + std::size_t(a) * n, Fm + std::size_t(c) * n, n);
-            g[std::size_t(K[a]) * p + K[c]] += Real(0.5) * (sigma[a] * sigma[c] + fsf - Sk[a * k + c]);
-          }
-      });
+      add_measurement_terms<Real, NK>(G, t, n, p, m, Sk, Fm, FS, sigma, xt, Real(1));
       G.d.add_at(t, [&](auto* g) {
         for (int a = 0; a < k; ++a) g[K[a]] += sigma[a];
       });
@@ -400,12 +347,7 @@ class LoglikPart {
       if (G.P0.present()) {
         for (int i = 0; i < n; ++i)
           for (int j = 0; j < n; ++j) E2[i * n + j] = r[i] * r[j] + S[i * n + j] - P.P0[i * n + j];
-        matmul<Real, NK>(AS, T1, false, E2, false, n);
-        matmul<Real, NK>(T2, AS, false, T1, false, n);
-        G.P0.add_at(0, [&](auto* g) {
-          for (int i = 0; i < n; ++i)
-            for (int j = 0; j < n; ++j) g[i * n + j] += Real(0.25) * (T2[i * n + j] + T2[j * n + i]);
-        });
+        add_prior_cov_terms<Real, NK>(G, T1, E2, AS, T2, n);
       }
     }
   }
@@ -416,7 +358,6 @@ class LoglikPart {
   // its diagonal.
   void transition_diagonal(int t, const Real* S, const Real* X, const Real* S_next) {
     const int n = fixed<NK>(n_);
-    const std::size_t n2 = std::size_t(n) * n;
     const Trajectory<Real>& P = P_;
     Gradients<Real>& G = G_;
     const Real* xt = x_ + std::size_t(t) * n;
@@ -442,15 +383,7 @@ class LoglikPart {
       }
     for (int i = 0; i < n; ++i) e[i] = qi[i] * r[i];  // Q⁻¹ r
     val_ -= 0.5 * double(dot<Real, NK>(r, e, n)) + 0.5 * double(ldQ_);
-    if (G.A.present()) {
-      if (raw_ && !G.A.tv) {
-        for (std::size_t i = 0; i < n2; ++i) G.A.acc[i] += E1[i];
-      } else {
-        for (int i = 0; i < n; ++i)
-          for (int j = 0; j < n; ++j) T2[std::size_t(i) * n + j] = qi[i] * E1[std::size_t(i) * n + j];
-        G.A.add_at(t, [&](auto* g) { for (std::size_t i = 0; i < n2; ++i) g[i] += T2[i]; });
-      }
-    }
+    add_transition_A<Real, NK>(G, t, raw_, /*diag=*/true, nullptr, qi, E1, T2, n);
     if (G.Q.present()) {  // ½ (μ_i² − (Λ_t)_ii), μ = e: the diagonal of the dense Q̄_t
       for (int i = 0; i < n; ++i)
         for (int j = 0; j < n; ++j) {
@@ -489,34 +422,7 @@ class LoglikPart {
 
   // R_KK⁻¹ (*Sk) and R_KK⁻¹C_K (*Fm) of a measurement, and log|R_KK|.
   void weights(const Measurement<Real, NK>& m, const Real** Sk, const Real** Fm, Real* ldR) {
-    const int n = fixed<NK>(n_), k = m.k;
-    Real *Rinv = Rinv_, *Fk = Fk_;
-    const Real* Lr = Lr_;
-    *Sk = Rinv;
-    *Fm = Fk;
-    *ldR = 0;
-    if (m.memo != nullptr) {
-      *Sk = m.memo->Rinv;
-      *Fm = m.memo->F;
-      *ldR = m.memo->logdet;
-    } else if (k > 0 && m.diag) {  // Lr holds √r_K: R_KK⁻¹ and F by scaling
-      fill(Rinv, std::size_t(k) * k, Real(0));
-      for (int a = 0; a < k; ++a) {
-        const Real ri = Real(1) / (Lr[a] * Lr[a]);
-        *ldR += Real(2) * std::log(Lr[a]);
-        Rinv[a * k + a] = ri;
-        for (int j = 0; j < n; ++j) Fk[a * n + j] = ri * m.C_row(a)[j];
-      }
-    } else if (k > 0) {  // Lr holds the factor of R_KK
-      *ldR = cholesky_logdet(Lr, k);
-      inverse_from_cholesky<Real, 0>(Rinv, Lr, k, cs_);
-      for (int a = 0; a < k; ++a)
-        for (int j = 0; j < n; ++j) {
-          Real s = 0;
-          for (int c = 0; c < k; ++c) s += Rinv[a * k + c] * m.C_row(c)[j];
-          Fk[a * n + j] = s;
-        }
-    }
+    measurement_weights<Real, NK>(m, n_, Rinv_, Fk_, Lr_, cs_, Sk, Fm, ldR);
   }
 
   // Ω_tΣ_t = O_tΣ_t − A_tᵀY_t into JS_, for the visit of step t − 1: O_tΣ_t =

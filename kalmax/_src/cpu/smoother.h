@@ -1226,6 +1226,21 @@ bool visit_in_parts(int T, int parts, Make&& make_part) {
   return true;
 }
 
+// The per-step terms of a pass in `parts` (visit_in_parts), part k built by
+// make(slot) with its scratch (PartScratch: a part beside the calling thread
+// gets its own pattern cache, index scratch and accumulators); the parts'
+// accumulators are then summed into acc. False when a part failed.
+template <class Part, class Real, class Make>
+bool visit_parts_with_scratch(int T, int parts, int n, int p, double* acc, int* idx, PatternCache<Real>* cache,
+                              Make&& make) {
+  PartScratch<Real> scratch(parts, accumulator_size(n, p), cache, idx, p);
+  const bool ok = visit_in_parts<Part>(T, parts, [&](int k, bool beside) {
+    return std::unique_ptr<Part>(make(scratch.slot(k, beside)));
+  });
+  if (ok) scratch.add_into(acc);
+  return ok;
+}
+
 template <class Real, int NK>
 void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok, const Real* x,
                    const Real* xbar, Gradients<Real>& G, Real* ws, Real* u, double* acc, int* idx,
@@ -1263,17 +1278,14 @@ void gradients_one(const Trajectory<Real>& P, const FactorView<Real>& F, bool ok
   copy(u, xbar, Tn);
   forward_substitute<Real, NK>(F, u, T, n, tmp, tmp2);
   back_substitute<Real, NK>(F, u, T, n, tmp, tmp2);
-  PartScratch<Real> scratch(parts, accumulator_size(n, p), cache, idx, p);
-  const bool ok_terms = visit_in_parts<GradientPart<Real, NK>>(T, parts, [&](int k, bool beside) {
-    const auto s = scratch.slot(k, beside);
-    return std::unique_ptr<GradientPart<Real, NK>>(
-        new GradientPart<Real, NK>(P, x, u, G, acc, s.acc, raw_sums, Qinv, s.idx, s.cache));
-  });
+  const bool ok_terms = visit_parts_with_scratch<GradientPart<Real, NK>>(
+      T, parts, n, p, acc, idx, cache, [&](const typename PartScratch<Real>::Slot& s) {
+        return new GradientPart<Real, NK>(P, x, u, G, acc, s.acc, raw_sums, Qinv, s.idx, s.cache);
+      });
   if (!ok_terms) {
     sinks.fail();
     return;
   }
-  scratch.add_into(acc);
 
   if (raw_sums && T > 1) apply_qinv_to_sums(G, Qinv, n);
   sinks.finish(/*symmetrise_Q=*/true);
