@@ -45,6 +45,24 @@ What must hold.
    derivatives only where it is used (``stop_gradient`` elsewhere), which
    keeps the same guarantee at the next order.
 
+When it applies (``registry.fallback_method``): ``method="auto"`` only (an
+explicit method is taken at its word), in every dtype (float64 models beyond
+the normal equations, such as constant acceleration sampled at 100 Hz–1 kHz,
+are NaN from the kernel too, and the filter handles them), with a prior on
+x_0 (the filter needs one: with a flat prior auto stays the kernel, NaN
+included) and p ≥ 1. The filter takes everything else ``auto`` receives:
+time-varying fields, ``DiagonalNoise`` Q and R (expanded by
+``transition_cov``/``masked_measurement_cov``), and singular Q or x0_cov,
+which it handles exactly where the normal equations, holding their inverses,
+return NaN.
+
+Cost. When nothing fails: the finiteness check of the answer; in the
+derivative rule also the finiteness of the inputs and a select on their
+tangents; under reverse mode the slow route's inputs pass through the cond's
+outputs (``jax.checkpoint`` keeps its other residuals inside, at the price
+of one more filter sweep when it does run). Measured in
+``benchmarks/auto_fallback_cost.py`` (RESULTS.md, "method=auto fallback").
+
 Validity. The covariance form is not certified by a residual and would return
 finite numbers for an indefinite Q, R or prior covariance, where the normal
 equations (which factor them) return NaN. Its answer is therefore taken only
@@ -134,29 +152,43 @@ def with_fallback(fast, slow, eligible, *args):
     return _fallback(fast, slow, eligible, args)
 
 
-def _choose(bad, fast_out, slow_thunk):
-    need = batch_any(bad)
-    return lax.cond(need, lambda: _where(bad, slow_thunk(), fast_out), lambda: fast_out)
+def _choose(failed, fast_out, use_slow):
+    """``fast_out``, or ``use_slow()`` under a cond on "some trajectory failed" (module docstring, 1.)."""
+    return lax.cond(batch_any(failed), use_slow, lambda: fast_out)
 
 
 @partial(jax.custom_jvp, nondiff_argnums=(0, 1, 2))
 def _fallback(fast, slow, eligible, args):
     out = fast(*args)
-    bad = lax.stop_gradient(not_finite(out) & eligible(*args))
-    return _choose(bad, out, lambda: slow(*args))
+    failed = lax.stop_gradient(not_finite(out))
+
+    def check_eligible():  # the inputs are read only when some answer failed
+        bad = failed & eligible(*args)
+        return _choose(bad, out, lambda: _where(bad, slow(*args), out))
+
+    return _choose(failed, out, check_eligible)
 
 
 @_fallback.defjvp
 def _fallback_jvp(fast, slow, eligible, primals, tangents):
     (args,), (args_dot,) = primals, tangents
     out, fast_tangent = jax.linearize(lambda *a: fast(*a), *args)
-    bad = lax.stop_gradient(not_finite(out) & eligible(*args))
-    out_dot = fast_tangent(*_zero_where(bad, args_dot))  # double where (module docstring, 3.)
+    failed = lax.stop_gradient(not_finite(out))
+    bad = failed & lax.stop_gradient(eligible(*args))
+    # Double where (module docstring, 3.): the tangent inputs of a trajectory that takes the
+    # slow answer are zeroed before the fast route's tangent map (outside the cond: inside
+    # it, every residual of that map would pass through the cond's outputs). A failed,
+    # ineligible one keeps its NaN value and derivatives.
+    out_dot = fast_tangent(*_zero_where(bad, args_dot))
 
-    def slow_route():
+    def use_slow():
         # Derivatives reach the slow route's inputs only where its answer is used.
         primal = _where(bad, args, lax.stop_gradient(args))
-        s, s_dot = jax.jvp(lambda *a: slow(*a), tuple(primal), tuple(_zero_where(jnp.logical_not(bad), args_dot)))
+        # Rematerialised: reverse mode splits this cond into a primal and a tangent cond, and
+        # every residual of the slow route would pass between them, zeros included when
+        # nothing failed; with jax.checkpoint only its inputs do.
+        s, s_dot = jax.jvp(jax.checkpoint(lambda *a: slow(*a)), tuple(primal),
+                           tuple(_zero_where(jnp.logical_not(bad), args_dot)))
         return _where(bad, s, out), _where(bad, s_dot, out_dot)
 
-    return lax.cond(batch_any(bad), slow_route, lambda: (out, out_dot))
+    return _choose(bad, (out, out_dot), use_slow)
