@@ -220,3 +220,27 @@ def test_flat_prior_has_no_fallback(group):
     model, y, mask = _one(group, 0)
     flat = model.replace(x0_mean=None, x0_cov=None)
     assert np.all(np.isnan(np.asarray(kx.smooth(flat, y, mask).states)))
+
+
+def test_second_derivatives_through_the_fallback():
+    """Hessian (forward over reverse) of the log-likelihood for a singular Q, where
+    the kernel is NaN and auto takes the filter: it matches central differences of
+    the gradient (float64), and for an ordinary Q it equals the kernel's."""
+    with jax.enable_x64(True):
+        rng = np.random.default_rng(0)
+        m = kx.StateSpace(A=jnp.array([[1.0, 1.0], [0.0, 1.0]]), C=jnp.array([[1.0, 0.0]]),
+                          Q=jnp.diag(jnp.array([1e-2, 1e-1])), R=jnp.eye(1), x0_mean=jnp.zeros(2), x0_cov=jnp.eye(2))
+        y = jnp.asarray(rng.standard_normal((50, 1)))
+
+        def ll(model, method="auto"):
+            return lambda t: kx.log_likelihood(model.replace(R=model.R * jnp.exp(t[0]), Q=model.Q * jnp.exp(t[1])),
+                                               y, method=method)
+
+        th = jnp.zeros(2)
+        np.testing.assert_array_equal(np.asarray(jax.hessian(ll(m))(th)), np.asarray(jax.hessian(ll(m, "cpu"))(th)))
+        singular = m.replace(Q=jnp.diag(jnp.array([0.0, 1e-1])))
+        assert np.isnan(float(ll(singular, "cpu")(th)))
+        hess = np.asarray(jax.hessian(ll(singular))(th))
+        grad, h = jax.grad(ll(singular)), 1e-5
+        diff = np.stack([np.asarray(grad(th.at[i].add(h)) - grad(th.at[i].add(-h))) / (2 * h) for i in range(2)])
+        np.testing.assert_allclose(hess, diff, rtol=1e-6, atol=1e-8)

@@ -33,8 +33,10 @@ What must hold.
    gradient), reads the failure flags from its primal output, and only then
    forms the tangent. Reverse mode is the transpose that JAX derives (of the
    cond, the selects and the fast route's tangent map), forward mode the rule
-   itself; jit, grad, value_and_grad, vmap, vmap of grad, jacfwd and jacrev
-   compose.
+   itself; jit, grad, value_and_grad, vmap, vmap of grad, nested vmap,
+   jacfwd, jacrev, hessian and shard_map compose (tests/test_auto_fallback.py,
+   tests/test_shard_map.py). Second derivatives of a fallen-back trajectory
+   are JAX's through the filter (checked against differences of the gradient).
 
 3. No NaN leaks from the route that was not taken. A failed fast route has a
    NaN factor, and its tangent map turns even a zero tangent into NaN
