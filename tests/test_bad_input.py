@@ -322,13 +322,20 @@ def test_covariance_not_positive_definite(field):
 
 
 def test_time_varying_covariance_not_positive_definite_names_the_step():
+    """A singular Q at step 3: the normal equations (method="scan") return NaN and
+    validate names the step; method="auto" falls back to the covariance form,
+    which takes a singular Q exactly (tests/test_singular_noise.py)."""
     model, y, mask = good()
     Q = np.stack([0.2 * np.eye(N)] * (T - 1))
     Q[3] = np.diag([0.2, 0.0])
     model = model.replace(Q=Q)
-    _all_nan_outputs(model, y, mask)
+    assert np.all(np.isnan(np.asarray(kx.smooth(model, y, mask, method="scan").states)))
     with pytest.raises(ValueError, match=r"model\.Q is not positive definite at time index 3"):
-        kx.validate(model, y, mask)
+        kx.validate(model, y, mask, method="scan")
+    np.testing.assert_array_equal(np.asarray(kx.smooth(model, y, mask).states),
+                                  np.asarray(kx.smooth(model, y, mask, method="covariance").states))
+    Q[3] = np.diag([0.2, -0.1])  # indefinite: NaN under auto too
+    _all_nan_outputs(model.replace(Q=Q), y, mask)
 
 
 def test_covariance_not_symmetric():

@@ -29,7 +29,7 @@ import kalmax as kx
 import reference as ref
 import robust_helpers as rh
 from kalmax._src.backends.base import arithmetic_dtype
-from kalmax._src.backends.registry import get_backend
+from kalmax._src.backends.registry import get_backend, is_available
 
 SLOW = bool(os.environ.get("KALMAX_SLOW"))
 TOL, GTOL = 1e-3, 1e-2
@@ -270,8 +270,10 @@ def test_beyond_the_normal_equations_is_nan_and_validate_says_why():
     """The known limit: constant acceleration sampled every 10 ms with
     q/r = 1e-7 puts transition precisions ~1e20 beside measurement precisions
     of ~1, beyond the normal equations even in double (κ₁(H) > 1e14). The
-    float32 filter handles it; kalmax returns NaN — never finite and wrong —
-    condition_estimate returns a finite lower bound, and validate says why."""
+    float32 filter handles it; the normal equations return NaN — never finite
+    and wrong — condition_estimate returns a finite lower bound, and validate
+    says why; method="auto" falls back to the covariance-form filter there
+    (tests/test_auto_fallback.py), and validate then finds nothing to report."""
     c = fs.Case("ca", 1, 1e-2, False, 1e-7, 1.0, 1.0, 0.1, 100, 5)
     b = fs.build(c)
     md = b["md"]
@@ -281,13 +283,16 @@ def test_beyond_the_normal_equations_is_nan_and_validate_says_why():
     assert fs.rel_err(x32[0], x64[0]) <= TOL  # the filter is fine
     model = fs.kalmax_model(md, np.float32)
     y = b["y"].astype(np.float32)
-    x = np.asarray(kx.smooth(model, y, b["mask"]).states)
+    method = "cpu" if is_available("cpu") else "scan"
+    x = np.asarray(kx.smooth(model, y, b["mask"], method=method).states)
     assert np.all(np.isnan(x)) or fs.rel_err(x, x64[0]) <= TOL
     cond = kx.condition_estimate(model, y, b["mask"])
     assert np.isfinite(cond) and cond > 1e13
     if np.all(np.isnan(x)):
         with pytest.raises(ValueError, match=r"smooth returns NaN.*condition number of the normal equations is at least"):
-            kx.validate(model, y, b["mask"])
+            kx.validate(model, y, b["mask"], method=method)
+    assert fs.rel_err(np.asarray(kx.smooth(model, y, b["mask"]).states), x64[0]) <= TOL
+    kx.validate(model, y, b["mask"])
 
 
 def test_condition_estimate_is_float64_whatever_the_dtype():

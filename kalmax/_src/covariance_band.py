@@ -93,11 +93,12 @@ from jax.flatten_util import ravel_pytree
 import jax.numpy as jnp
 from jax import lax
 
+from . import fallback
 from .linalg import mT, spd_inverse
 from .model import StateSpace
 from .normal_equations import dynamics_blocks, measurement_precision_tangent
 from .primitive import _instantiate, _zero_tangents, band_inverse
-from .backends.registry import get_backend, resolve_method
+from .backends.registry import fallback_method, get_backend, resolve_method
 
 
 def _sym(X):
@@ -256,13 +257,28 @@ def precision_tangent(S_diag, S_sub, X_diag, X_sub):
 def posterior_band(model: StateSpace, w, method: str = "auto"):
     """(Σ_tt (T, n, n), Σ_{t+1,t} (T-1, n, n)) for a canonical problem, differentiable without a tape.
 
-    The result is NaN when the factor failed.
+    The result is NaN when the factor failed. ``method="auto"`` falls back to
+    the covariance-form filter's band, per trajectory, where the platform's
+    backend returns NaN for a finite problem with a prior (``fallback.py``).
     """
+    slow = fallback_method(method, flat_prior=model.x0_cov is None, p=w.shape[-1])
     method = resolve_method(method)
     # Offsets and the prior mean do not enter H: drop them, so that a
     # non-finite one cannot fail the factor through the accuracy check.
     model = model.replace(b=None, d=None, x0_mean=None)
     w = lax.stop_gradient(w)
+    if slow is None:
+        return _posterior_band(model, w, method)
+
+    def filter_band(m, ww):  # the fallback, NaN unless Q, R and x0_cov are valid covariances
+        ok = lax.stop_gradient(fallback.covariances_valid(m))
+        return jax.tree_util.tree_map(lambda a: jnp.where(ok, a, jnp.nan), taped_posterior_band(m, ww, slow))
+
+    return fallback.with_fallback(partial(_posterior_band, method=method), filter_band,
+                                  lambda m, ww: fallback.finite_problem(m, None, ww), model, w)
+
+
+def _posterior_band(model: StateSpace, w, method: str):
     if get_backend(method).band_tangent is None:
         return taped_posterior_band(model, w, method)
     return _band(model, w, method)[0]

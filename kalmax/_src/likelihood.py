@@ -68,6 +68,11 @@ only. A diagonal Q_t = diag(q_t) (``DiagonalNoise``) has as its gradient the
 diagonal of Q̄_t, dQ_t = e_ie_iᵀ dq_ti: ½ (μ_ti² − (Λ_t)_ii), with Q_t⁻¹ a
 division by q_t and only the diagonal of Λ_t formed.
 
+``method="auto"`` wraps all of this in ``fallback.py``: where the value is
+NaN for a finite problem with a prior, the covariance-form filter's
+prediction-error decomposition (``backends/covariance_form.py``) and its
+derivatives by JAX through that filter replace it, per trajectory.
+
 Derivative rules: a ``custom_jvp`` whose tangent is ⟨∇ log p, dθ⟩, the
 gradient coming from the same pass as the value (one compiled call on the
 kernel). JAX transposes that into reverse mode (the cotangent times the
@@ -120,14 +125,15 @@ from functools import partial
 import jax
 import jax.numpy as jnp
 
-from . import manual_axes
+from . import fallback, manual_axes
+from .backends import covariance_form
 from .checks import canonicalize
 from .linalg import chol, gram, lsolve, mT
 from .model import StateSpace
 from .noise import DiagonalNoise
 from .normal_equations import assemble, masked_measurement_cov, objective, transition_cov, weighted_residuals
 from .covariance_band import posterior_band
-from .primitive import band_inverse, get_backend, resolve_method, smoothed_means
+from .primitive import band_inverse, fallback_method, get_backend, resolve_method, smoothed_means
 
 
 def _logdet_spd(S):
@@ -313,7 +319,10 @@ def log_likelihood(model: StateSpace, y, mask=None, *, method: str = "auto"):
         model: :class:`StateSpace`.
         y: (T, p) measurements (NaN allowed at missing entries).
         mask: (T, p) bool, True = observed; default ``~isnan(y)``.
-        method: solver backend, as in :func:`smooth`.
+        method: solver backend, as in :func:`smooth` (``"auto"`` falls back to
+            the covariance-form filter's log-likelihood per trajectory where
+            the normal equations return NaN; its gradient is then reverse
+            mode through that filter).
 
     Returns:
         scalar log-likelihood; NaN when the states are not identified.
@@ -325,12 +334,27 @@ def log_likelihood(model: StateSpace, y, mask=None, *, method: str = "auto"):
         >>> g = jax.grad(lambda m: kx.log_likelihood(m, y))(m)
     """
     model, y, mask, _, dtype = canonicalize(model, y, mask, keep_diagonal_R=True, keep_diagonal_Q=True)
-    return _log_likelihood_checked(model, y, mask, resolve_method(method))
+    slow = fallback_method(method, flat_prior=model.x0_cov is None, p=y.shape[-1])
+    return _log_likelihood_checked(model, y, mask, resolve_method(method), slow)
 
 
 # Compiled once per shape and method, after the checks (smoothing._smooth_checked says why).
-@partial(jax.jit, static_argnums=(3,))
-def _log_likelihood_checked(model: StateSpace, y, mask, method: str):
+@partial(jax.jit, static_argnums=(3, 4))
+def _log_likelihood_checked(model: StateSpace, y, mask, method: str, slow=None):
     # One varying-axes type for all inputs under shard_map (manual_axes.py).
     model, y, w = manual_axes.like((model, y, jax.lax.stop_gradient(mask.astype(y.dtype))))
-    return _log_likelihood(model, y, w, method)
+    if slow is None:
+        return _log_likelihood(model, y, w, method)
+    return fallback.with_fallback(partial(_log_likelihood, method=method), _filter_log_likelihood,
+                                  fallback.finite_problem, model, y, w)
+
+
+def _filter_log_likelihood(model: StateSpace, y, w):
+    """log p(y) from the covariance-form filter's innovations, differentiated by JAX through the filter.
+
+    The fallback of ``method="auto"`` (``fallback.py``); NaN unless its
+    factors succeeded and Q, R and x0_cov are valid covariances.
+    """
+    _, f = covariance_form.sweep(model, y, w)
+    ok = f.ok & jax.lax.stop_gradient(fallback.covariances_valid(model))
+    return jnp.where(ok, f.log_lik, jnp.nan)

@@ -52,6 +52,11 @@ measured time on the smoothing-loss path only (``benchmarks/RESULTS.md``,
 (``likelihood.py``: its tangent is ⟨∇ log p, dθ⟩, which JAX transposes into
 the gradient the kernel already computed).
 
+``method="auto"``: the platform's backend, and per trajectory the
+covariance-form filter where that returns NaN for a finite problem with a
+prior (``fallback.py``: a ``custom_jvp`` around both routes whose rule
+linearises the fast one, so its derivatives are this module's).
+
 Backends whose ``implicit_derivatives`` is False (the covariance-form filter)
 are differentiated through their own forward recursions instead: their
 point is to avoid Q⁻¹, which the residual r contains.
@@ -76,9 +81,9 @@ import jax.numpy as jnp
 from jax.custom_derivatives import SymbolicZero
 import numpy as np
 
-from . import blocktri, implicit, manual_axes
+from . import blocktri, fallback, implicit, manual_axes
 from .backends.base import Backend
-from .backends.registry import get_backend, resolve_method
+from .backends.registry import fallback_method, get_backend, resolve_method
 from .model import StateSpace
 
 
@@ -137,9 +142,22 @@ def smoothed_means(model: StateSpace, y, w, method: str = "auto"):
         model: canonicalised StateSpace (one float dtype).
         y: (T, p) measurements (missing entries arbitrary, NaN allowed).
         w: (T, p) 0/1 mask in the float dtype (1 = observed); not differentiated.
-        method: backend name ("auto" picks the default for the platform).
+        method: backend name ("auto" picks the default for the platform and
+            falls back to the covariance-form filter, per trajectory, where
+            that returns NaN for a finite problem with a prior: ``fallback.py``).
     """
     # One varying-axes type for all inputs under shard_map, so that tangents
     # and cotangents can be typed like them (manual_axes.py).
     model, y, w = manual_axes.like((model, y, jax.lax.stop_gradient(w)))
-    return _means(model, y, w, resolve_method(method))
+    primary = resolve_method(method)
+    slow = fallback_method(method, flat_prior=model.x0_cov is None, p=y.shape[-1])
+    if slow is None:
+        return _means(model, y, w, primary)
+    return fallback.with_fallback(partial(_means, method=primary), partial(_checked_means, method=slow),
+                                  fallback.finite_problem, model, y, w)
+
+
+def _checked_means(model: StateSpace, y, w, method: str):
+    """A fallback's means, NaN unless Q, R and x0_cov are valid covariances (``fallback.py``)."""
+    x = _means(model, y, w, method)
+    return jnp.where(jax.lax.stop_gradient(fallback.covariances_valid(model)), x, jnp.nan)

@@ -63,7 +63,13 @@ def smooth(model: StateSpace, y, mask=None, *, covariances: bool = False, method
             the same factor (``covariance_band.py``): no tape through time.
         method: solver backend for the means: ``"auto"`` (the compiled
             kernel ``"cpu"`` on CPU when it is built, ``"parallel"`` on
-            GPU/TPU), ``"scan"`` (the portable pure-JAX block-Cholesky scan),
+            GPU/TPU; with a prior on x_0, a trajectory for which that returns
+            NaN although the problem is finite and its covariances positive
+            semidefinite gets the ``"covariance"`` filter's answer instead —
+            models beyond the normal equations, singular Q — with the matching
+            derivatives; under ``vmap`` the filter runs only when some
+            trajectory of the batch failed: ``fallback.py``),
+            ``"scan"`` (the portable pure-JAX block-Cholesky scan),
             ``"cpu"``, ``"parallel"`` (block cyclic reduction, O(log T) depth)
             or ``"scan-recompute"`` (re-factorises in the backward pass instead
             of storing factors). Covariances use the same backend's factor

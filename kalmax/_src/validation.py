@@ -11,7 +11,7 @@ from .backends.base import arithmetic_dtype
 from .checks import canonicalize
 from .model import StateSpace
 from .normal_equations import assemble
-from .primitive import get_backend, resolve_method
+from .primitive import fallback_method, get_backend, resolve_method
 from .smoothing import _smooth_checked
 
 
@@ -175,7 +175,8 @@ def validate(model: StateSpace, y, mask=None, *, rtol: float = 1e-6,
     - non-finite A, C, b, d or prior mean,
     - Q, R or x0_cov not symmetric (relative tolerance ``rtol``) or not
       positive definite (for ``method="covariance"``, Q and x0_cov need only
-      be positive semidefinite: that backend takes singular ones exactly; for
+      be positive semidefinite: that backend takes singular ones exactly, and
+      so does ``method="auto"`` with a prior, which falls back to it; for
       the others a singular Q or x0_cov is reported with that advice),
     - a flat prior with no observed entry at all (states not identified),
     - what ``smooth`` itself will do: the check runs the solve (``method``,
@@ -184,7 +185,10 @@ def validate(model: StateSpace, y, mask=None, *, rtol: float = 1e-6,
       problem is too ill-conditioned for the arithmetic of that backend —
       with the estimated condition number and the fixes (float64; for
       float32 on CPU, ``method="cpu"``, which computes float32 problems in
-      double; rescaling; more prior information);
+      double; rescaling; more prior information). With ``method="auto"``
+      and a prior, a trajectory whose normal-equation solve is NaN gets the
+      covariance-form filter's answer instead (``smooth``): nothing is
+      reported when that answer is finite;
     - a problem close to the limit of that arithmetic even where ``smooth``
       succeeds: the estimated condition number of the normal equations times
       the machine epsilon of the arithmetic (float64 for ``method="cpu"``,
@@ -235,8 +239,10 @@ def validate(model: StateSpace, y, mask=None, *, rtol: float = 1e-6,
         x = getattr(model, name)
         if x is not None and not np.all(np.isfinite(np.asarray(x))):
             problems.append(f"model.{name} has non-finite entries.")
-    # The covariance-form filter never inverts Q or the prior covariance: singular ones are fine there.
-    singular_ok = not get_backend(resolve_method(method)).refined
+    # The covariance-form filter never inverts Q or the prior covariance: singular ones are fine there,
+    # and so under method="auto" with a prior, which falls back to it where the normal equations fail.
+    singular_ok = (not get_backend(resolve_method(method)).refined
+                   or fallback_method(method, flat_prior=model.x0_cov is None, p=dims.p) is not None)
     for name in ("Q", "R", "x0_cov"):
         x = getattr(model, name)
         if x is not None:
@@ -262,6 +268,11 @@ def _conditioning_problems(model, y, mask, dtype, max_error_bound, method) -> li
     eps = float(np.finfo(arith).eps)
     bar = tolerances.trusted_error(dtype)
     x = _smoothed_states(model, y, mask, dtype, name)
+    fallback = fallback_method(method, flat_prior=model.x0_cov is None, p=np.shape(y)[-1])
+    if fallback is not None and not np.all(np.isfinite(x)):
+        # smooth (method="auto") replaces this NaN with the covariance-form filter's answer
+        if np.all(np.isfinite(_smoothed_states(model, y, mask, dtype, method))):
+            return []
     cond = condition_estimate(model, y, mask)
     where = f"method={name!r}, {np.dtype(dtype).name} input"
     where += f", {arith.name} arithmetic" if arith != np.dtype(dtype) else ""
@@ -283,10 +294,14 @@ def _conditioning_problems(model, y, mask, dtype, max_error_bound, method) -> li
         fixes.append("rescale the problem (units in which Q, R and the prior covariance are within a few "
                      "orders of magnitude of one another)")
         fixes.append("or add information (a prior on x_0, a floor on Q)")
-        if model.x0_cov is not None:
+        if fallback is not None:
+            fixes.append(f"(method={method!r} also tried the covariance-form filter, which never forms Q⁻¹, "
+                         "and it failed too: an innovation or predicted covariance is not positive definite "
+                         "in this precision)")
+        elif model.x0_cov is not None:
             fixes.append("or method='covariance' (the covariance-form Kalman filter and RTS smoother, which "
                          "never forms Q⁻¹: for per-step process noise far below the measurement noise, as "
-                         "with high-rate sampling)")
+                         "with high-rate sampling; method='auto' falls back to it by itself)")
         bound = " at least" if model.x0_cov is not None and cond >= 0.99 / tolerances.pivot_tolerance(
             np.float64, np.shape(model.A)[-1], flat_prior=False) else ""
         return [

@@ -64,7 +64,8 @@ def resolve_method(method: str) -> str:
     """The backend name for ``method``; ``"auto"`` picks the default for the platform.
 
     auto: "parallel" on accelerators, the compiled kernel "cpu" on CPU when it
-    loaded, otherwise the portable "scan".
+    loaded, otherwise the portable "scan". (The public entry points also give
+    "auto" a per-trajectory fallback, :func:`fallback_method`.)
     """
     if method == "auto":
         platform = jax.default_backend()
@@ -80,6 +81,23 @@ def resolve_method(method: str) -> str:
     if isinstance(entry, Unavailable):
         why = f" method={method!r} is not available here: {entry.reason}"
     raise ValueError(f"method must be one of {sorted(available() + ('auto',))}; got {method!r}.{why}")
+
+
+# The backend that ``method="auto"`` falls back to, per trajectory, where the
+# platform's backend returns NaN for a finite problem (``fallback.py``).
+FALLBACK = "covariance"
+
+
+def fallback_method(method: str, flat_prior: bool, p: int):
+    """The backend that ``method`` falls back to where its answer is NaN, or None.
+
+    Only ``"auto"`` falls back (an explicit method is taken at its word), and
+    only with a prior on x_0 (the covariance-form filter needs one) and at
+    least one measurement column (p > 0; it factors p×p innovation covariances).
+    """
+    if method != "auto" or flat_prior or p == 0 or not is_available(FALLBACK) or resolve_method(method) == FALLBACK:
+        return None
+    return FALLBACK
 
 
 def get_backend(method: str) -> Backend:
