@@ -314,3 +314,21 @@ def test_no_decomposition_outside_linalg():
             if (path.name, name) not in _ALLOWED and name not in _NOT_DECOMPOSITIONS:
                 found.append((str(path.relative_to(src)), name))
     assert found == [], f"decompositions outside linalg.py: {found}"
+
+
+@pytest.mark.parametrize("k", [1, 3, 9])
+def test_psd_within_agrees_with_numpy_eigenvalues(k):
+    """psd_within(S, s) is λ_min(S) > −s; checked against NumPy's symmetric eigensolver
+    (LAPACK syevd) on matrices whose smallest eigenvalue is set on either side of −s."""
+    rng = np.random.default_rng(k)
+    Qm, _ = np.linalg.qr(rng.standard_normal((k, k)))
+    slack = 1e-3
+    cases = []
+    for lam_min in (-10 * slack, -2 * slack, -0.5 * slack, 0.0, 1.0):
+        ev = np.concatenate([[lam_min], rng.uniform(0.5, 2.0, k - 1)])
+        cases.append((Qm * ev) @ Qm.T)
+    S = np.stack(cases)
+    want = np.linalg.eigvalsh(S)[:, 0] > -slack
+    got = np.asarray(linalg.psd_within(jnp.asarray(S), jnp.full(len(cases), slack)))
+    np.testing.assert_array_equal(got, want)
+    assert want.tolist() == [False, False, True, True, True]

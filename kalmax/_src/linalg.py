@@ -464,6 +464,21 @@ def spd_inverse(S):
     return gram(Linv)
 
 
+def psd_within(S, slack):
+    """True for each symmetric block of S (…, k, k) whose smallest eigenvalue exceeds −slack (…,).
+
+    Tested by a Cholesky factorisation of S + slack·I through :func:`chol`
+    (the written-out or chunked route, not a batched LAPACK eigensolver):
+    S + slack·I is positive definite exactly when λ_min(S) > −slack, and
+    :func:`chol` returns NaN where it is not. Rounding moves the verdict only
+    for λ_min within a few eps·|S| of −slack.
+    """
+    k = S.shape[-1]
+    sym = 0.5 * (S + mT(S))
+    shifted = sym + slack[..., None, None] * jnp.eye(k, dtype=S.dtype)
+    return jnp.all(jnp.isfinite(jnp.diagonal(chol(shifted), axis1=-2, axis2=-1)), axis=-1)
+
+
 def mT(X):
     """Transpose the last two axes."""
     return jnp.swapaxes(X, -1, -2)
