@@ -33,3 +33,22 @@ def central_differences(f, v, h=1e-6):
         e[i] = h
         g[i] = (f(v + e) - f(v - e)) / (2 * h)
     return g
+
+
+SYMMETRIC_FIELDS = ("Q", "R", "P0")
+
+
+def field_difference(loss, md, field, idx, h=1e-6):
+    """Central difference of ``loss(model dict)`` along one entry of ``md[field]`` (common practice).
+
+    For the symmetric fields (Q, R, P0) the entry and its mirror move
+    together, so the perturbed matrix stays symmetric. Returns the difference
+    quotient and the direction E, so that a gradient g is compared as Σ g·E.
+    """
+    E = np.zeros_like(md[field])
+    E[idx] = 1.0
+    if field in SYMMETRIC_FIELDS:
+        E[tuple(idx[::-1])] = 1.0
+    up = loss(dict(md, **{field: md[field] + h * E}))
+    down = loss(dict(md, **{field: md[field] - h * E}))
+    return (up - down) / (2 * h), E

@@ -21,7 +21,7 @@ import kalmax as kx
 from kalmax._src.tools import atomic_outputs, model_file as kio
 
 import reference
-from cli_helpers import read_csv, snapshot, write_csv
+from cli_helpers import cli, read_csv, snapshot, write_csv
 
 _SCRIPT = Path(sys.executable).parent / "kalmax"
 # The installed console script is the real entry point; `python -m kalmax` runs the same main().
@@ -244,19 +244,7 @@ class _Completed:
 
 
 def _in_process(args, cwd, capsys):
-    from kalmax import cli
-
-    old = os.getcwd()
-    os.chdir(cwd)
-    try:
-        try:
-            code = cli.main([str(a) for a in args])
-        except SystemExit as e:  # argparse usage errors exit
-            code = e.code
-    finally:
-        os.chdir(old)
-    out = capsys.readouterr()
-    return _Completed(code, out.out, out.err)
+    return _Completed(*cli(args, cwd, capsys))
 
 
 def test_every_error_case_has_its_exit_code_and_leaves_no_output(tmp_path, capsys):

@@ -21,7 +21,7 @@ import pytest
 
 import kalmax as kx
 import reference as ref
-from helpers import to_model
+from helpers import field_difference, to_model
 
 T, N, P = 9, 3, 2
 
@@ -154,12 +154,7 @@ def test_jit_vmap_grad_match_finite_differences_of_textbook_filter(rng):
     for i, (field, idx) in enumerate([("Q", (0, 1)), ("R", (0, 1)), ("Q", (2, 2)), ("A", (1, 0)), ("C", (1, 2)),
                                       ("b", (1,)), ("d", (0,)), ("m0", (2,)), ("P0", (0, 2))]):
         k = i % 2  # alternate between the two trajectories of the batch
-        E = np.zeros_like(md[field])
-        E[idx] = 1.0
-        if field in ("Q", "R", "P0"):
-            E[idx[::-1]] = 1.0
-        fd = (_loss_ref(dict(md, **{field: md[field] + h * E}), ys[k], masks[k])
-              - _loss_ref(dict(md, **{field: md[field] - h * E}), ys[k], masks[k])) / (2 * h)
+        fd, E = field_difference(lambda d: _loss_ref(d, ys[k], masks[k]), md, field, idx, h)
         name = {"m0": "x0_mean", "P0": "x0_cov"}.get(field, field)
         ad = float(np.sum(np.asarray(getattr(g_model, name))[k] * E))
         assert abs(ad - fd) < 1e-6 * (1 + abs(fd)), (field, idx, ad, fd)

@@ -19,7 +19,7 @@ import pytest
 
 import kalmax as kx
 import reference as ref
-from helpers import to_model
+from helpers import field_difference, to_model
 
 T, N, P, H = 9, 3, 2, 4
 
@@ -113,12 +113,7 @@ def test_jit_vmap_grad_match_finite_differences_of_textbook_predictions(rng):
         k = i % 2
         if i < 2:
             assert abs(float(values[k]) - _loss_ref(md, ys[k], masks[k])) < 1e-9 * (1 + abs(float(values[k])))
-        E = np.zeros_like(md[field])
-        E[idx] = 1.0
-        if field in ("Q", "R", "P0"):
-            E[idx[::-1]] = 1.0
-        fd = (_loss_ref(dict(md, **{field: md[field] + h * E}), ys[k], masks[k])
-              - _loss_ref(dict(md, **{field: md[field] - h * E}), ys[k], masks[k])) / (2 * h)
+        fd, E = field_difference(lambda d: _loss_ref(d, ys[k], masks[k]), md, field, idx, h)
         ad = float(np.sum(np.asarray(getattr(g_model, {"P0": "x0_cov"}.get(field, field)))[k] * E))
         assert abs(ad - fd) < 1e-6 * (1 + abs(fd)), (field, ad, fd)
     t, j = np.argwhere(masks[1])[-1]

@@ -89,17 +89,23 @@ def factor_solve(diag, sub, rhs, pivot_tol=None):
     z = jnp.concatenate([z0[None], zs], axis=0)
     ok = jnp.minimum(r0, jnp.min(ratios, initial=jnp.inf)) > tol
     factor = BlockFactor(L=L, M=Ms, ok=ok)
-    x = _back_substitute(factor, z)
+    x = back_substitute(factor, z)
     return jnp.where(ok, x, jnp.nan), factor
 
 
-def _back_substitute(factor: BlockFactor, z):
+def back_substitute(factor: BlockFactor, z):
+    """L⁻ᵀ z for the block Cholesky factor: z (T, n) one right-hand side, or (T, n, S) S at once.
+
+    The backward half of a solve with H = L Lᵀ (and, on its own, the map
+    that turns white noise into a draw with covariance H⁻¹).
+    """
     L, M = factor.L, factor.M
-    x_last = lsolve_vec(L[-1], z[-1], transpose=True)
+    solve = lsolve_vec if z.ndim == 2 else lsolve
+    x_last = solve(L[-1], z[-1], transpose=True)
 
     def step(x_next, xs):
         L_t, M_next, z_t = xs
-        x_t = lsolve_vec(L_t, z_t - mT(M_next) @ x_next, transpose=True)
+        x_t = solve(L_t, z_t - mT(M_next) @ x_next, transpose=True)
         return x_t, x_t
 
     _, xs = lax.scan(step, x_last, (L[:-1], M, z[:-1]), reverse=True)
@@ -118,7 +124,7 @@ def solve(factor: BlockFactor, rhs):
 
     _, zs = lax.scan(step, z0, (L[1:], M, rhs[1:]))
     z = jnp.concatenate([z0[None], zs], axis=0)
-    x = _back_substitute(factor, z)
+    x = back_substitute(factor, z)
     return jnp.where(factor.ok, x, jnp.nan)
 
 

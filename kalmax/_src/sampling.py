@@ -38,11 +38,9 @@ from typing import Optional
 import jax
 import jax.numpy as jnp
 import numpy as np
-from jax import lax
 
 from . import blocktri
 from .checks import canonicalize
-from .linalg import lsolve, mT
 from .model import StateSpace
 from .normal_equations import assemble
 from .primitive import resolve_method, smoothed_means
@@ -63,20 +61,6 @@ def _check_key(key) -> None:
             f"key must be a single PRNG key: jax.random.key(seed), or a raw uint32 key of shape (2,); "
             f"got dtype {key.dtype} and shape {tuple(key.shape)}. For one sample per key, use jax.vmap."
         )
-
-
-def upper_solve(factor: blocktri.BlockFactor, Z):
-    """L⁻ᵀ Z for a block Cholesky factor and Z (T, n, S): S right-hand sides at once."""
-    L, M = factor.L, factor.M
-    u_last = lsolve(L[-1], Z[-1], transpose=True)
-
-    def step(u_next, xs):
-        L_t, M_next, z_t = xs
-        u_t = lsolve(L_t, z_t - mT(M_next) @ u_next, transpose=True)
-        return u_t, u_t
-
-    _, us = lax.scan(step, u_last, (L[:-1], M, Z[:-1]), reverse=True)
-    return jnp.concatenate([us, u_last[None]], axis=0)
 
 
 def sample_states(key, model: StateSpace, y, mask=None, *, num_samples: Optional[int] = None,
@@ -146,6 +130,6 @@ def _sample(key, model: StateSpace, y, w, num_samples: int, method: str):
     _, factor = blocktri.factor_solve(system.diag, system.sub, jnp.zeros((T, n), dtype))
 
     z = jax.random.normal(key, (num_samples, T, n), dtype)
-    u = upper_solve(factor, jnp.moveaxis(z, 0, -1))  # (T, n, S)
+    u = blocktri.back_substitute(factor, jnp.moveaxis(z, 0, -1))  # (T, n, S)
     x = x_hat[None] + jnp.moveaxis(u, -1, 0)
     return jnp.where(factor.ok, x, jnp.nan)
