@@ -88,7 +88,7 @@ class LogProduct {
  public:
   void add_log_of(double v) {
     if (!(v >= std::numeric_limits<double>::min() && v <= std::numeric_limits<double>::max())) {
-      rest_ += std::log(v);
+      add_unusual(v);  // out of line, so that this stays small enough to inline (a call per entry cost 5 %)
       return;
     }
     uint64_t bits;
@@ -112,6 +112,8 @@ class LogProduct {
   }
 
  private:
+  [[gnu::noinline]] void add_unusual(double v) { rest_ += std::log(v); }
+
   double mantissa_ = 1.0;
   int64_t exponent_ = 0;
   double rest_ = 0;  // logs of the factors that are not positive normal numbers
