@@ -504,3 +504,29 @@ def test_help_names_the_missing_words(tmp_path, capsys):
     assert "--missing" in text
     for word in ("nan", "na", "n/a", "null", "none", "-"):
         assert re.search(rf"(^|[\s,(]){re.escape(word)}([\s,;)]|$)", text, re.IGNORECASE), word
+
+
+def test_written_csv_cells_read_back(tmp_path):
+    """write_table's CSV, read back by Python's csv module: every float as its repr (exact round
+    trip), NaN and None blank, text with commas, quotes and line breaks intact, ints as written
+    (common practice: RFC 4180 quoting, which csv.reader undoes)."""
+    names = ["t", "x", "label", "k"]
+    floats = [0.1, -2.5e-300, float("nan"), 1e300, 3.0]
+    text = ["plain", "a, b", 'say "hi"', "two\nlines", None]
+    ints = [1, -2, 0, 7, 12345678901234567890]
+    cols = {"t": [0.0, 1.0, 2.0, 3.0, 4.0], "x": floats, "label": text, "k": ints}
+    path = tmp_path / "out.csv"
+    with atomic_outputs.AtomicOutputs() as out:
+        tables.write_table(path, names, cols, out)
+    with open(path, newline="", encoding="utf-8") as f:
+        rows = list(csv.reader(f))
+    assert rows[0] == names
+    assert len(rows) == 6
+    for i, row in enumerate(rows[1:]):
+        x = floats[i]
+        assert row[1] == ("" if x != x else repr(x))
+        if row[1]:
+            assert float(row[1]) == x  # repr round-trips exactly
+        assert row[2] == ("" if text[i] is None else text[i])
+        assert int(row[3]) == ints[i]
+        assert float(row[0]) == cols["t"][i]

@@ -169,3 +169,37 @@ def test_one_trajectory_split_over_threads_matches_one_thread_and_the_portable_r
             scale = max(1.0, float(np.max(np.abs(r))))
             np.testing.assert_allclose(b, a, rtol=1e-11, atol=1e-12 * scale)
             np.testing.assert_allclose(b, r, rtol=1e-8, atol=1e-9 * scale)
+
+
+@pytest.mark.parametrize("p", [2, 10])  # 2: mask patterns in the kernel's 2^p table; 10: beyond it (hash map)
+@pytest.mark.parametrize("diagonal_q", [False, True])
+@pytest.mark.parametrize("scale", [1.0, 1e-20])
+def test_kernel_value_with_time_varying_q_and_missing_data_matches_a_numpy_kalman_filter(rng, p, diagonal_q,
+                                                                                          scale):
+    """Per-step Q (dense or diagonal: the log-determinants the kernel gathers as products), fixed C and
+    R (memoised mask patterns), 30 % missing: the value against the textbook filter's prediction-error
+    decomposition (tests/reference.py, Harvey 1989, Ch. 3, from memory). scale 1e-20 multiplies every
+    covariance (and y by 1e-10): the same conditioning, but the product of the factor's 60·3 diagonal
+    entries (~1e10 each) is far outside double range, so only a product kept apart from its exponent
+    can give the sum of their logs."""
+    n, T = 3, 60
+    md = random_model(rng, n, p, T, time_varying=True, full_R=True, prior=True, offsets=True)
+    md["C"], md["R"], md["d"] = md["C"][0], md["R"][0], md["d"][0]
+    if diagonal_q:
+        md["Q"] = np.stack([np.diag(np.diag(q)) for q in md["Q"]])
+    y, mask = random_data(rng, md, T, missing=0.3, n_empty=3)
+    root = np.sqrt(scale)
+    md = dict(md, Q=md["Q"] * scale, R=md["R"] * scale, P0=md["P0"] * scale, b=md["b"] * root,
+              d=md["d"] * root, m0=md["m0"] * root)
+    y = y * root
+    model = to_model(md)
+    if diagonal_q:
+        model = model.replace(Q=kx.DiagonalNoise(jnp.asarray(np.diagonal(md["Q"], axis1=-2, axis2=-1))))
+    ref = kalman_log_likelihood(md, y, mask)
+    for dtype, rtol in ((np.float64, 1e-10), (np.float32, 1e-5)):
+        if dtype == np.float32 and scale != 1.0:
+            continue  # float32 covers the ordinary scale only (1e-20 squared is below its range)
+        m = jax.tree_util.tree_map(lambda a: jnp.asarray(a, dtype), model)
+        val = kx.log_likelihood(m, jnp.asarray(np.nan_to_num(y), dtype), jnp.asarray(mask), method="cpu")
+        assert val.dtype == dtype
+        np.testing.assert_allclose(float(val), ref, rtol=rtol)

@@ -88,6 +88,11 @@ def _axis_likelihood_loss(spec: ModelSpec, t, axes, y, mask, n_obs):
     def loss(theta, y_axes, mask_axes):
         cm = spec.continuous_model(theta)
         drift = np.asarray(cm.drift)  # concrete: keeps the closed-form discretisation
+        # Every axis of a chain has the same drift block, hence the same A_t = exp(F Δ_t) (a function of
+        # the drift and the timestamps only): one copy serves the whole batch (the kernel broadcasts an
+        # operand that is not batched) instead of a stacked (axes, T-1, n, n) array per step of the fit.
+        first = drift[np.ix_(axes[0][0], axes[0][0])]
+        shared_A = all(np.array_equal(drift[np.ix_(states, states)], first) for states, _ in axes)
         models = []
         for states, cols in axes:
             pad = width - len(cols)
@@ -99,8 +104,13 @@ def _axis_likelihood_loss(spec: ModelSpec, t, axes, y, mask, n_obs):
             sub = ContinuousModel(drift=drift[np.ix_(states, states)],
                                   diffusion=cm.diffusion[np.ix_(states, states)], C=C, R=R, jitter=cm.jitter)
             models.append(sub.at_times(t))
-        stacked = jax.tree_util.tree_map(lambda *leaves: jnp.stack(leaves), *models)
-        return -jnp.sum(jax.vmap(log_likelihood)(stacked, y_axes, mask_axes)) / n_obs
+        if not shared_A:
+            stacked = jax.tree_util.tree_map(lambda *leaves: jnp.stack(leaves), *models)
+            return -jnp.sum(jax.vmap(log_likelihood)(stacked, y_axes, mask_axes)) / n_obs
+        A = models[0].A
+        stacked = jax.tree_util.tree_map(lambda *leaves: jnp.stack(leaves), *[m.replace(A=None) for m in models])
+        per_axis = jax.vmap(lambda m, y_k, mask_k: log_likelihood(m.replace(A=A), y_k, mask_k))
+        return -jnp.sum(per_axis(stacked, y_axes, mask_axes)) / n_obs
 
     return loss, (jnp.asarray(y_axes), jnp.asarray(mask_axes))
 
