@@ -308,3 +308,25 @@ def test_condition_estimate_is_float64_whatever_the_dtype():
         est_off = kx.condition_estimate(model, y, mask)
     assert exact / 3 <= est <= exact * (1 + 1e-4)  # κ·eps64 ≈ 7e-7: both carry ~1e-6 rounding
     assert est_off == pytest.approx(est, rel=1e-6)
+
+
+# Constant-acceleration cases of the seed-7 sweep (benchmarks/float32_sweep.py)
+# on which the portable backends returned finite states 2e-3–6e-2 off in the
+# small components while their whole-array error estimate ‖δ‖∞/‖x̂‖∞ was below
+# the float32 bar (the positions dominate ‖x̂‖∞). With the estimate taken per
+# state component (accuracy._relative) they are accurate or NaN.
+_SMALL_COMPONENT_CASES = ("ca1 dt=7.0e+00~ q/r=2e-06", "ca1 dt=2.0e+00 q/r=3e-04", "ca1 dt=2.5e+00 q/r=9e-06",
+                          "ca3 dt=3.6e+00 q/r=9e-06", "ca2 dt=1.7e+00 q/r=4e-04")
+
+
+def test_portable_backends_accurate_or_nan_in_small_components():
+    cases = [c for c in fs.draw_cases(7, 200, 200) if c.label().startswith(_SMALL_COMPONENT_CASES)]
+    assert len(cases) == len(_SMALL_COMPONENT_CASES)
+    methods = [m for m in ("scan", "parallel") if m in rh.backends()]
+    outcomes = fs.run(cases, methods)
+    for o in outcomes:
+        assert o.ref_agrees, o.case.label()  # the float64 reference is trustworthy here
+        for m in methods:
+            # NaN, or within the bar; the estimate is first order, so a factor 2 of slack
+            # (measured after the change: every one of these NaN or ≤ 1e-3).
+            assert not np.isfinite(o.kalmax[m]) or o.kalmax[m] <= 2 * TOL, (m, o.case.label(), o.kalmax[m])
