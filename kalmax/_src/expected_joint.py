@@ -41,7 +41,8 @@ terms, on n×n and p×p matrices when the fields are time-invariant) plus
 the tangents of x* and of Σ's band: O(T n²) per direction and no per-step
 factorisation to differentiate. (The envelope form of ``likelihood._gradient``
 differentiates per-step Cholesky factors of R̃_t, of Σ_{t+1} and the pull-back
-through the assembly in every direction: 17 times slower at T = 10⁵, n = 4.)
+through the assembly in every direction: at T = 10⁵, n = p = 4, 20 directions, ≈ 45 s
+against ≈ 0.5 s here, by difference; benchmarks/RESULTS.md.)
 
 Rounding: for the process noise the value of ∂_Qℓ is the Fisher form
 ½Q⁻¹(Σ_tM_t − (T−1)Q)Q⁻¹ whose cancellation ``likelihood.py`` documents; the

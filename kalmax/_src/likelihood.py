@@ -128,8 +128,9 @@ direction, where the envelope form above differentiates per-step Cholesky
 factors (of R̃_t, of Σ_{t+1} in the Q form) and the pull-back through the
 assembly in every direction. Measured (T = 10⁴, n = p = 4, k = 20, before
 the change): the forward derivative of the envelope form took 3.5 s against
-a 0.01 s compiled gradient; with ℓ the Hessian / gradient ratio at T = 10³
-went from 351 to 30 (same process, interleaved; benchmarks/RESULTS.md).
+a 0.01 s compiled gradient; with ℓ the Hessian / gradient ratio went from
+≈ 180 to 26–36 at T = 10³ and to 34–38 at T = 10⁵ (same process,
+interleaved; benchmarks/RESULTS.md).
 The value of ∂_θℓ is never used (the kernel's gradient is, with Q̄ in the
 form without cancellation); ``_gradient_from_solution`` is kept as the
 tests' second route.
